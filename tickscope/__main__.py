@@ -1,0 +1,6 @@
+"""``python -m tickscope``."""
+import sys
+
+from .cli import main
+
+sys.exit(main())

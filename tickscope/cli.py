@@ -1,0 +1,276 @@
+"""Command line: wires sources and sinks to the pipeline; the only place errors become exit codes.
+
+Exit codes: 0 ok, 2 bad usage or unreadable input, 3 no steps could be found,
+130 interrupted (Ctrl-C).
+"""
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import os
+import re
+import sys
+from importlib import resources
+
+from . import __version__
+from .errors import NoStepsError, ParameterError, TickscopeError
+
+DEMO_RECORDING = "kitchen-wall-clock.flac"
+
+
+def _recordings_dir() -> str:
+    here = os.path.dirname(os.path.abspath(__file__))
+    for cand in (os.path.join(here, "recordings"), os.path.join(os.path.dirname(here), "recordings")):
+        if os.path.isdir(cand):
+            return cand
+    return os.path.join(os.path.dirname(here), "recordings")
+
+
+def parse_ppm(text: str) -> tuple[float, float]:
+    """'12.5' or '12.5+-0.3' or '12.5±0.3' -> (ppm, u95)."""
+    m = re.fullmatch(r"\s*([-+]?\d+(?:\.\d*)?(?:[eE][-+]?\d+)?)\s*(?:(?:\+-|±|\+/-)\s*(\d+(?:\.\d*)?(?:[eE][-+]?\d+)?))?\s*", text)
+    if not m:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a ppm value like 12.5 or 12.5+-0.3")
+    return float(m.group(1)), float(m.group(2) or 0.0)
+
+
+# ---------------------------------------------------------------------------------------------
+def cmd_analyze(args) -> int:
+    import numpy as np  # noqa: F401  (imported here so --help stays fast)
+
+    from .export import StepsCsv, summary_to_dict
+    from .io.audiofile import blocks, choose_channel, probe
+    from .pipeline import Analyzer
+
+    path = args.path
+    demo = False
+    if path is None:
+        path = os.path.join(_recordings_dir(), DEMO_RECORDING)
+        demo = True
+    info = probe(path)
+    channel = args.channel
+    chosen_note = ""
+    if channel is None:
+        channel = choose_channel(path, info)
+        if info.channels > 1:
+            chosen_note = f"channel {channel} of {info.channels} has the clearest steps"
+    elif not 0 <= channel < info.channels:
+        raise ParameterError(f"--channel {channel}: {path} has channels 0..{info.channels - 1}")
+    clock_ppm, clock_u = args.clock_ppm if args.clock_ppm is not None else (None, 0.0)
+    an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u)
+    csv_fh = None
+    if args.steps_csv:
+        try:
+            csv_fh = open(args.steps_csv, "w", newline="")
+        except OSError as e:
+            raise ParameterError(f"cannot write {args.steps_csv}: {e.strerror}") from e
+    try:
+        writer = StepsCsv(csv_fh) if csv_fh else None
+        _run_file(an, blocks(path, info, channel), info, writer, show_progress=not args.json and not args.quiet)
+        summary = an.finish()
+        if writer:
+            for ev in an.drain_final_events():
+                writer.write(ev)
+    finally:
+        if csv_fh:
+            csv_fh.close()
+    if clock_ppm is not None:
+        summary.extras["clock_calibrated"] = True
+    if chosen_note:
+        summary.warnings.insert(0, chosen_note)
+    if demo and not args.json:
+        _console(stderr=True).print(f"[dim]no file given: analyzing the bundled demo recording {path}[/dim]")
+    if args.json:
+        d = summary_to_dict(summary, source=path)
+        sys.stdout.write(json.dumps(d, indent=1) + "\n")
+    else:
+        from .ui.textreport import render_summary
+
+        con = _console()
+        con.print(render_summary(summary, source=os.path.basename(path), width=con.width))
+    if args.plot:
+        from .ui.plots import plot_analysis
+
+        plot_analysis(summary, an, args.plot, title=os.path.basename(path))
+    if summary.pattern == "none" or summary.steps_detected == 0:
+        raise NoStepsError(f"no steps could be found in {path}: "
+                           + (summary.warnings[-1] if summary.warnings else "no stepping pattern heard"))
+    return 0
+
+
+def _run_file(an, block_iter, info, writer, *, show_progress: bool) -> None:
+    if show_progress and info.duration_s > 60:
+        from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+        with Progress(TextColumn("analyzing"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
+                      TimeRemainingColumn(), console=_console(stderr=True), transient=True) as prog:
+            task = prog.add_task("a", total=info.frames)
+            for b in block_iter:
+                evs = an.feed(b)
+                if writer:
+                    for ev in evs:
+                        writer.write(ev)
+                prog.update(task, completed=b.start_sample + len(b.samples))
+    else:
+        for b in block_iter:
+            evs = an.feed(b)
+            if writer:
+                for ev in evs:
+                    writer.write(ev)
+
+
+def cmd_simulate(args) -> int:
+    from .core.simulate import Scenario
+    from .io.simfile import truth_path_for, write_simulation
+
+    changes = {}
+    for f in dataclasses.fields(Scenario):
+        v = getattr(args, f.name, None)
+        if v is not None:
+            changes[f.name] = v
+    try:
+        sc = Scenario(**changes)
+    except TypeError as e:
+        raise ParameterError(str(e)) from e
+    truth = write_simulation(args.out, sc, description=args.description or "")
+    n = sum(1 for s in truth["steps"] if s["kind"] == "step")
+    _console(stderr=True).print(f"wrote {args.out} ({sc.duration_s:g} s, {n} steps) and {truth_path_for(args.out)}")
+    return 0
+
+
+# ---------------------------------------------------------------------------------------------
+_SIM_HELP = {
+    "samplerate_hz": "sample rate of the file, Hz",
+    "duration_s": "length of the recording, s",
+    "channels": "number of channels",
+    "step_channel": "channel that carries the movement (the others carry noise only)",
+    "movement": "the movement's voice: wallclock, wristwatch or alarmclock",
+    "step_interval_s": "nominal step interval, s (1 for most quartz movements)",
+    "rate_s_per_day": "the movement's true daily rate, s/day (positive gains)",
+    "clock_ppm": "the recording device's sample clock runs fast by this many ppm",
+    "first_step_s": "time of the first step, s",
+    "jitter_us": "RMS random timing jitter of each step, us",
+    "level_dbfs": "peak level of a step, dBFS",
+    "snr_db": "step power over its first 10 ms relative to the noise power, dB",
+    "noise": "noise colour: white or pink",
+    "hum_hz": "mains hum frequency (50 or 60; 0 = none), with 3rd and 5th harmonics",
+    "hum_db": "hum amplitude relative to the step peak, dB",
+    "missed_steps": "comma-separated step numbers that make no sound",
+    "polarity_b_freq_shift": "B-polarity resonances are higher by this fraction",
+    "polarity_b_level_db": "B-polarity level relative to A, dB",
+    "polarity_asymmetry_us": "B steps sound this many us later than the grid",
+    "variation_db": "tick-to-tick level variation (RMS), dB",
+    "variation_freq_pct": "tick-to-tick resonance frequency variation (RMS), percent",
+    "second_impact_ms": "delay of a second impact on every step (hand bounce), ms; 0 = none",
+    "second_impact_db": "level of the second impact relative to the step, dB",
+    "transients_per_min": "knocks and speech-like bursts per minute, off the step grid",
+    "transient_db": "knock peak relative to the step peak, dB",
+    "reverb_rt60_ms": "room reverberation time RT60, ms; 0 = dry",
+    "agc": "apply a phone's automatic gain control",
+    "gate_dbfs": "noise gate threshold, dBFS (phones); unset = no gate",
+    "clip_dbfs": "hard clipping level, dBFS; unset = no clipping",
+    "dc_offset": "DC offset added to the signal, full scale",
+    "second_clock_rate_s_per_day": "add a second clock in the room with this rate, s/day",
+    "second_clock_db": "level of the second clock relative to the movement, dB",
+    "second_clock_offset_s": "time of the second clock's first tick, s",
+    "inhibition_period_s": "logic-regulation period, s (0 = none)",
+    "inhibition_pulses": "oscillator pulses swallowed each inhibition period",
+    "inhibition_pulse_hz": "frequency of the divider stage the pulses are swallowed from, Hz",
+    "burst_steps": "end-of-life stepping: steps per burst (0 = regular)",
+    "burst_spacing_ms": "spacing of steps within a burst, ms",
+    "failed_steps": "comma-separated step numbers where the rotor only twitches",
+    "correction_delay_ms": "correction pulse this long after a failed step, ms (0 = none)",
+    "drive_levels_db": "adaptive drive: comma-separated level steps in dB, cycled",
+    "drive_level_period_s": "time between adaptive drive level changes, s",
+    "seed": "random seed",
+}
+
+
+def _tuple_of(conv):
+    def parse(text: str):
+        try:
+            return tuple(conv(v) for v in text.split(",") if v.strip())
+        except ValueError as e:
+            raise argparse.ArgumentTypeError(f"{text!r}: expected comma-separated numbers") from e
+    return parse
+
+
+def _add_sim_options(p: argparse.ArgumentParser) -> None:
+    from .core.simulate import Scenario
+
+    for f in dataclasses.fields(Scenario):
+        opt = "--" + f.name.replace("_", "-")
+        default = f.default
+        helptext = f"{_SIM_HELP.get(f.name, f.name)} (default: {default!r})"
+        if f.type in ("bool",) or isinstance(default, bool):
+            p.add_argument(opt, dest=f.name, action="store_true", default=None, help=helptext)
+        elif isinstance(default, tuple):
+            conv = float if f.name == "drive_levels_db" else int
+            p.add_argument(opt, dest=f.name, type=_tuple_of(conv), default=None, metavar="N,N,...", help=helptext)
+        elif isinstance(default, str):
+            p.add_argument(opt, dest=f.name, type=str, default=None, help=helptext)
+        elif isinstance(default, int) and not isinstance(default, bool):
+            p.add_argument(opt, dest=f.name, type=int, default=None, help=helptext)
+        else:
+            p.add_argument(opt, dest=f.name, type=float, default=None, help=helptext)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="tickscope", description="Time a ticking quartz movement by ear: rate in s/day, "
+                                "missed steps and ring-down, from a microphone or a recording.")
+    p.add_argument("--version", action="version", version=f"tickscope {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    a = sub.add_parser("analyze", help="analyze a saved recording (default: the bundled demo recording)",
+                       description="Find every step in a recording, fit the daily rate with a 95 % interval, "
+                       "count missed steps and measure each step's ring-down.")
+    a.add_argument("path", nargs="?", help="audio file (WAV, FLAC, OGG, MP3, ...); omitted: the bundled demo")
+    a.add_argument("--channel", type=int, default=None, help="channel to analyze (default: the clearest)")
+    a.add_argument("--clock-ppm", type=parse_ppm, default=None, metavar="X[+-U]",
+                   help="the recording device's clock runs fast by X ppm (95 %% uncertainty U); the rate is corrected")
+    a.add_argument("--json", action="store_true", help="print one JSON object instead of the report")
+    a.add_argument("--steps-csv", metavar="PATH", help="write one row per detected event to this CSV file")
+    a.add_argument("--plot", metavar="PNG", help="draw the timing residuals and ring-downs to this PNG file")
+    a.add_argument("--quiet", action="store_true", help="no progress bar")
+    a.set_defaults(func=cmd_analyze)
+
+    s = sub.add_parser("simulate", help="write a simulated recording with its truth file",
+                       description="Write a recording of a simulated stepping-motor movement (WAV, FLAC, OGG or MP3 by "
+                       "extension) and NAME.truth.json beside it with every parameter and every true step time.")
+    s.add_argument("out", help="output audio file (.wav, .flac, .ogg, .mp3)")
+    s.add_argument("--description", help="a line describing the scenario, stored in the truth file")
+    _add_sim_options(s)
+    s.set_defaults(func=cmd_simulate)
+    return p
+
+
+def _console(stderr: bool = False):
+    from rich.console import Console
+
+    return Console(stderr=stderr, highlight=False)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "command", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args.func(args) or 0)
+    except KeyboardInterrupt:
+        sys.stderr.write("tickscope: interrupted\n")
+        return 130
+    except TickscopeError as e:
+        sys.stderr.write(f"tickscope: {e}\n")
+        return e.exit_code
+    except MemoryError:
+        sys.stderr.write("tickscope: out of memory\n")
+        return 2
+    except BrokenPipeError:
+        return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,360 @@
+"""The step grid: which impacts are motor steps, which are missing, which are something else.
+
+A stepping motor steps on a regular grid: step k sounds at ``a + b*k``.  The tracker
+
+1. *acquires* the grid from the first seconds of impacts: the step interval is the
+   longest period on which the impacts line up (a phase-coherence scan, like a
+   Rayleigh test), refined by a line fit; the nominal interval is the nearest
+   interval quartz movements use (1 s, 1/2, 1/4, 1/8, 1/16 s, 2, 5, 10, 20, 30, 60 s);
+2. learns a template per polarity (even and odd steps) from the acquired steps;
+3. *tracks*: every impact is timed against its slot's template; a slot is decided once
+   the stream has passed it: the best-matching impact near the prediction is the
+   step, later impacts of the same sound are secondary, everything else is rejected;
+   a slot with no matching sound is a missed step (unless the audio had a gap there).
+"""
+from __future__ import annotations
+
+import math
+from collections import deque
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..model import Event
+from .detect import Impact
+from .ringdown import measure_ringdown
+from .timing import Template, learn_template, match, onset_of
+
+#: Step intervals of quartz movements (s): 2^-k fractions of a second for stepping
+#: sweep hands, and the PCA2002 output periods 1, 5, 10, 20, 30 s (NXP PCA2002
+#: datasheet Rev. 8, Table 7) plus 2 s and 60 s (common practice).
+QUARTZ_INTERVALS_S = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0, 2.0, 5.0, 10.0, 20.0, 30.0, 60.0)
+
+
+@dataclass(frozen=True)
+class TrackerConfig:
+    acquire_s: float = 12.0  # seconds of impacts used to find the grid
+    acquire_max_s: float = 40.0  # give up finding a grid after this much audio
+    min_coherence: float = 0.3  # impacts must line up at least this well
+    nominal_tolerance: float = 0.005  # measured interval within 0.5 % of a quartz interval
+    slot_tolerance_s: float = 0.025  # a step lies within 25 ms of its predicted time
+    cluster_s: float = 0.12  # impacts up to 120 ms after a step are part of its sound
+    min_match: float = 0.3  # below this correlation a sound is not this movement's step
+    good_match: float = 0.6  # steps below this are flagged and kept out of the rate fit
+    template_steps: int = 24  # steps per polarity averaged into a template
+    track_steps: int = 32  # steps in the moving line fit that predicts the next slot
+
+
+def find_interval(times_s: np.ndarray, weights: np.ndarray | None = None, *,
+                  min_s: float = 0.05, max_s: float | None = None) -> tuple[float, float, float] | None:
+    """Longest period on which the impact times line up.
+
+    Returns ``(interval_s, phase_s, coherence)`` or None.  The coherence of a period P is
+    ``|sum w exp(2 pi i t / P)| / sum w``: 1 when every impact sits on the same phase.
+    Fractions of the true interval (P/2, P/3 ...) line up too, so the longest period whose
+    coherence is close to the best one is taken.
+    """
+    t = np.asarray(times_s, dtype=np.float64)
+    if len(t) < 3:
+        return None
+    w = np.ones(len(t)) if weights is None else np.asarray(weights, dtype=np.float64)
+    span = float(t[-1] - t[0])
+    if span <= 0:
+        return None
+    max_s = min(max_s or span / 2, span / 2)
+    if max_s <= min_s:
+        return None
+    tt = t - t[0]
+    # relative resolution small enough that phases drift < ~0.05 cycles across the span
+    step = 0.03 * min_s / span
+    periods = np.exp(np.arange(math.log(min_s), math.log(max_s), step))
+    coh = np.empty(len(periods))
+    W = w.sum()
+    for i in range(0, len(periods), 512):
+        P = periods[i: i + 512]
+        ph = np.exp(2j * np.pi * tt[None, :] / P[:, None])
+        coh[i: i + 512] = np.abs(ph @ w) / W
+    best = float(coh.max())
+    if best <= 0:
+        return None
+    # local maxima close to the best; take the longest period among them
+    good = np.flatnonzero(coh >= 0.8 * best)
+    j = int(good[-1])
+    # climb to the local maximum around j
+    while j + 1 < len(coh) and coh[j + 1] >= coh[j]:
+        j += 1
+    while j - 1 >= 0 and coh[j - 1] > coh[j]:
+        j -= 1
+    P = float(periods[j])
+    phase = float(np.angle(np.sum(w * np.exp(2j * np.pi * tt / P)))) / (2 * np.pi) * P
+    return P, t[0] + phase % P, float(coh[j])
+
+
+def nominal_interval(measured_s: float, tolerance: float = 0.005) -> float | None:
+    """The quartz step interval within ``tolerance`` (relative) of a measured one, or None."""
+    for c in QUARTZ_INTERVALS_S:
+        if abs(measured_s / c - 1) <= tolerance:
+            return c
+    return None
+
+
+@dataclass
+class _Open:
+    imp: Impact
+    t_s: float  # best time estimate (coarse until templates exist)
+    slot: int | None = None
+    match: float = float("nan")
+
+
+class StepTracker:
+    """Classifies a stream of impacts into steps on a grid (see module docstring)."""
+
+    def __init__(self, samplerate: float, pre: int, config: TrackerConfig | None = None):
+        self.fs = float(samplerate)
+        self.pre = pre
+        self.cfg = config or TrackerConfig()
+        self.templates: dict[int, Template] = {}
+        self.acquired = False
+        self.failed = False
+        self.nominal_s: float | None = None
+        self.measured_s: float | None = None
+        self.coherence = float("nan")
+        self._buffer: list[_Open] = []
+        self._open: list[_Open] = []
+        self._a = 0.0
+        self._b = 1.0
+        self._fit: deque = deque(maxlen=self.cfg.track_steps)
+        self._next_slot = 0
+        self._last_step_t = -math.inf
+        self._gaps: list[tuple[float, float]] = []
+        self.events_out = 0
+
+    # -- public -------------------------------------------------------------------------
+    def add_gap(self, start_s: float, end_s: float) -> None:
+        """Audio between these times was lost (input overflow): slots there are not missed."""
+        self._gaps.append((start_s, end_s))
+
+    def add(self, impacts: list[Impact], position_s: float) -> list[Event]:
+        """Take new impacts (in time order) and the stream position; return decided events."""
+        out: list[Event] = []
+        for imp in impacts:
+            t = (imp.snippet_start + onset_of(imp.snippet, self.fs, search_from=max(0, self.pre - int(0.004 * self.fs)))) / self.fs
+            o = _Open(imp, t)
+            if not self.acquired:
+                self._buffer.append(o)
+            else:
+                self._time(o)
+                self._open.append(o)
+        if not self.acquired and not self.failed:
+            span = self._buffer[-1].t_s - self._buffer[0].t_s if self._buffer else 0.0
+            if span >= self.cfg.acquire_s and len(self._buffer) >= 8:
+                out += self._acquire(final=False)
+            if not self.acquired and position_s - (self._buffer[0].t_s if self._buffer else 0) > self.cfg.acquire_max_s:
+                # keep trying on a sliding window of the most recent audio
+                cut = position_s - self.cfg.acquire_max_s
+                out += [self._reject(o) for o in self._buffer if o.t_s < cut]
+                self._buffer = [o for o in self._buffer if o.t_s >= cut]
+        if self.acquired:
+            out += self._decide(position_s)
+        return out
+
+    def finish(self, position_s: float) -> list[Event]:
+        """End of stream: decide everything that can be decided."""
+        out: list[Event] = []
+        if not self.acquired:
+            out += self._acquire(final=True)
+            if not self.acquired:
+                out += [self._reject(o) for o in self._buffer]
+                self._buffer = []
+                return out
+        out += self._decide(position_s, final=True)
+        out += [self._classify_leftover(o) for o in self._open]
+        self._open = []
+        return out
+
+    def predict(self, k: int) -> float:
+        return self._a + self._b * k
+
+    # -- acquisition ---------------------------------------------------------------------
+    def _acquire(self, final: bool) -> list[Event]:
+        buf = self._buffer
+        if len(buf) < 3:
+            if final:
+                self.failed = True
+            return []
+        t = np.array([o.t_s for o in buf])
+        amp = 10 ** (np.array([o.imp.peak_dbfs for o in buf]) / 20)
+        w = np.clip(amp / np.median(amp), 0.05, 20.0)  # loud impacts count most
+        found = find_interval(t, w)
+        if found is None or found[2] < self.cfg.min_coherence:
+            if final:
+                self.failed = True
+            return []
+        P, phase, coh = found
+        # one step per slot: the earliest strong impact near each grid point
+        tol = min(0.2 * P, 0.06)
+        chosen: dict[int, _Open] = {}
+        for o in buf:
+            k = int(round((o.t_s - phase) / P))
+            r = o.t_s - (phase + k * P)
+            if abs(r) <= tol and (k not in chosen):
+                chosen[k] = o
+        if len(chosen) < 3:
+            if final:
+                self.failed = True
+            return []
+        ks = np.array(sorted(chosen))
+        ts = np.array([chosen[k].t_s for k in ks])
+        b, a = np.polyfit(ks, ts, 1)
+        res = ts - (a + b * ks)
+        keep = np.abs(res - np.median(res)) < max(0.005, 4 * np.median(np.abs(res - np.median(res))) + 1e-4)
+        if keep.sum() >= 3:
+            b, a = np.polyfit(ks[keep], ts[keep], 1)
+        self.measured_s = float(b)
+        self.nominal_s = nominal_interval(b, self.cfg.nominal_tolerance)
+        self.coherence = coh
+        k0 = int(ks[0])
+        self._a = a + b * k0
+        self._b = b
+        # templates per polarity from the acquired steps (parity of the step number)
+        by_pol: dict[int, list[np.ndarray]] = {0: [], 1: []}
+        for k in ks[keep] if keep.sum() >= 3 else ks:
+            pol = (int(k) - k0) % 2
+            if len(by_pol[pol]) < self.cfg.template_steps:
+                by_pol[pol].append(chosen[int(k)].imp.snippet)
+        for pol in (0, 1):
+            if len(by_pol[pol]) >= 2:
+                self.templates[pol] = learn_template(by_pol[pol], self.fs, pre=self.pre)
+        if not self.templates:
+            src = by_pol[0] or by_pol[1]
+            self.templates[0] = learn_template(src, self.fs, pre=self.pre)
+        for pol in (0, 1):
+            self.templates.setdefault(pol, self.templates[1 - pol])
+        self.acquired = True
+        self._next_slot = 0
+        # fine-time the acquired steps and refit the grid on the fine times
+        fine_k, fine_t = [], []
+        for k in ks:
+            o = chosen[int(k)]
+            kk = int(k) - k0
+            lag, rho = match(o.imp.snippet, self.templates[kk % 2], max_lag=int(0.002 * self.fs))
+            if rho >= self.cfg.good_match:
+                fine_k.append(kk)
+                fine_t.append((o.imp.snippet_start + self.templates[kk % 2].onset_index + lag) / self.fs)
+        if len(fine_k) >= 3:
+            self._b, self._a = np.polyfit(fine_k, fine_t, 1)
+            self._fit.extend(zip(fine_k[-self.cfg.track_steps:], fine_t[-self.cfg.track_steps:]))
+        out: list[Event] = []
+        for o in buf:
+            self._time(o)
+            self._open.append(o)
+        self._buffer = []
+        return out
+
+    # -- tracking ------------------------------------------------------------------------
+    def _time(self, o: _Open) -> None:
+        k = int(round((o.t_s - self._a) / self._b))
+        tmpl = self.templates[k % 2 if k >= 0 else 0]
+        lag, rho = match(o.imp.snippet, tmpl, max_lag=int(0.003 * self.fs))
+        o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag) / self.fs
+        o.match = rho
+        o.slot = k
+
+    def _window_after(self) -> float:
+        return max(self.cfg.slot_tolerance_s, min(self.cfg.cluster_s, 0.6 * self._b))
+
+    def _decide(self, position_s: float, final: bool = False) -> list[Event]:
+        out: list[Event] = []
+        # impacts are emitted ~post_s after their onset; allow for that delay
+        horizon = position_s - 0.12 if not final else position_s
+        while True:
+            k = self._next_slot
+            pred = self.predict(k)
+            end = pred + self._window_after()
+            if end > horizon:
+                if not final or pred + self.cfg.slot_tolerance_s > position_s:
+                    break
+            out += self._decide_slot(k, pred)
+            self._next_slot += 1
+        return out
+
+    def _decide_slot(self, k: int, pred: float) -> list[Event]:
+        cfg = self.cfg
+        tol = min(cfg.slot_tolerance_s, 0.2 * self._b)
+        out: list[Event] = []
+        cands = [o for o in self._open if abs(o.t_s - pred) <= tol and o.match >= cfg.min_match]
+        step = None
+        if cands:
+            best = max(o.match for o in cands)
+            good = [o for o in cands if o.match >= best - 0.1]
+            step = min(good, key=lambda o: o.t_s)
+        after = self._window_after()
+        rest = []
+        for o in self._open:
+            if o is step:
+                continue
+            if step is not None and step.t_s < o.t_s <= step.t_s + after:
+                out.append(self._event(o, "secondary", k))
+            elif o.t_s <= pred + after:
+                if self._last_step_t < o.t_s <= self._last_step_t + after:
+                    out.append(self._event(o, "secondary", k - 1))
+                else:
+                    out.append(self._reject(o))
+            else:
+                rest.append(o)
+        self._open = rest
+        if step is not None:
+            out.insert(0, self._step_event(step, k, out))
+            self._last_step_t = step.t_s
+            if step.match >= cfg.good_match:
+                self._fit.append((k, step.t_s))
+                if len(self._fit) >= 3:
+                    kk = np.array([p[0] for p in self._fit], dtype=np.float64)
+                    tt = np.array([p[1] for p in self._fit])
+                    b, a = np.polyfit(kk - kk[-1], tt, 1)
+                    self._b = b
+                    self._a = a - b * kk[-1]
+        elif not self._in_gap(pred):
+            out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
+        return out
+
+    def _in_gap(self, t: float) -> bool:
+        return any(a - 0.03 <= t <= b + 0.03 for a, b in self._gaps)
+
+    def _step_event(self, o: _Open, k: int, siblings: list[Event]) -> Event:
+        imp = o.imp
+        flags = []
+        if imp.clipped:
+            flags.append("clipped")
+        if o.match < self.cfg.good_match:
+            flags.append("low-match")
+        if imp.truncated:
+            flags.append("truncated")
+        # ring-down: from the onset to the next impact of the same sound (or the snippet's end)
+        i0 = int(round(o.t_s * self.fs)) - imp.snippet_start
+        nxt = [e.time_s for e in siblings if e.kind == "secondary" and e.time_s > o.t_s]
+        i1 = len(imp.snippet)
+        if nxt:
+            i1 = min(i1, int(round(min(nxt) * self.fs)) - imp.snippet_start - int(0.001 * self.fs))
+        pre_seg = imp.snippet[int(0.001 * self.fs): max(int(0.001 * self.fs) + 1, i0 - int(0.001 * self.fs))]
+        noise = float(np.mean(pre_seg**2)) if len(pre_seg) > 8 else 0.0
+        # the end of the window, too: under a phone's gain control the noise before a step
+        # is amplified more than the noise during it
+        tail = imp.snippet[max(i0, i1 - int(0.012 * self.fs)): i1]
+        if len(tail) > 8 and i1 - i0 > int(0.05 * self.fs):
+            noise = min(noise, float(np.mean(tail**2))) if noise > 0 else float(np.mean(tail**2))
+        rd = measure_ringdown(imp.snippet[max(i0, 0): max(i1, i0 + 1)], self.fs, noise_power=noise)
+        return Event("step", o.t_s, step=k, polarity="AB"[k % 2], peak_dbfs=imp.peak_dbfs,
+                     snr_db=imp.frame_snr_db, match=o.match, decay_ms=rd.decay_ms, flags=tuple(flags))
+
+    def _event(self, o: _Open, kind: str, k: int | None) -> Event:
+        return Event(kind, o.t_s, step=k, peak_dbfs=o.imp.peak_dbfs, snr_db=o.imp.frame_snr_db,
+                     match=o.match, flags=(kind,) if kind != "step" else ())
+
+    def _reject(self, o: _Open) -> Event:
+        return self._event(o, "rejected", None)
+
+    def _classify_leftover(self, o: _Open) -> Event:
+        if self._last_step_t < o.t_s <= self._last_step_t + self._window_after():
+            return self._event(o, "secondary", self._next_slot - 1)
+        return self._reject(o)

@@ -1,0 +1,330 @@
+"""The one pipeline shared by file analysis, live listening and logging.
+
+``Analyzer`` takes :class:`~tickscope.model.Block` objects of any size from any source,
+runs the impact detector and the step tracker, keeps compact per-step arrays, and
+builds a :class:`~tickscope.model.Summary` on demand (a snapshot while running, the
+final summary at the end).  It performs no I/O.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections import deque
+
+import numpy as np
+from scipy import signal
+
+from .core.detect import DetectorConfig, ImpactDetector
+from .core.grid import StepTracker, TrackerConfig
+from .core.rate import fit_rate, residuals_s
+from .errors import ParameterError
+from .model import Block, Event, RateEstimate, RingDownStats, Summary
+from .units import ppm_to_s_per_day
+
+#: Typical error of an uncalibrated consumer audio clock (common practice; sound-card
+#: oscillators are often quoted at +-100 ppm, shared/domain.md section 4.1).
+TYPICAL_DEVICE_PPM = 50.0
+HUM_ANALYSIS_S = 8.0
+LOUD_REJECT_DB = 10.0  # off-grid sounds this far above the floor are counted as rejected events
+
+
+class _Column:
+    """A growable numpy column (amortised doubling), so step history stays compact."""
+
+    def __init__(self, dtype):
+        self._a = np.zeros(256, dtype=dtype)
+        self.n = 0
+
+    def append(self, v) -> None:
+        if self.n == len(self._a):
+            self._a = np.concatenate([self._a, np.zeros_like(self._a)])
+        self._a[self.n] = v
+        self.n += 1
+
+    @property
+    def values(self) -> np.ndarray:
+        return self._a[: self.n]
+
+
+class Analyzer:
+    """Streaming analysis of one channel of audio.
+
+    Parameters
+    ----------
+    samplerate : float
+        Nominal sample rate of the device or file, Hz.
+    channel : int
+        Which channel of the source this is (reported only).
+    clock_ppm : float or None
+        The device's sample clock runs fast by this many ppm (None: uncalibrated).
+    clock_ppm_u95 : float
+        95 % half-width of ``clock_ppm``.
+    """
+
+    def __init__(self, samplerate: float, *, channel: int = 0, clock_ppm: float | None = None,
+                 clock_ppm_u95: float = 0.0, detector: DetectorConfig | None = None,
+                 tracker: TrackerConfig | None = None):
+        if not samplerate or samplerate <= 0:
+            raise ParameterError(f"samplerate={samplerate!r}: expected > 0")
+        self.samplerate = float(samplerate)
+        self.channel = channel
+        self.clock_ppm = clock_ppm
+        self.clock_ppm_u95 = clock_ppm_u95
+        self.detector = ImpactDetector(samplerate, detector)
+        self.tracker = StepTracker(samplerate, self.detector.pre, tracker)
+        self._pos = 0  # samples fed so far (including zeros fed for gaps)
+        self.step_k = _Column(np.int64)
+        self.step_t = _Column(np.float64)
+        self.step_pol = _Column(np.int8)
+        self.step_match = _Column(np.float32)
+        self.step_decay = _Column(np.float32)
+        self.step_snr = _Column(np.float32)
+        self.step_peak = _Column(np.float32)
+        self.step_flags = _Column(np.int16)
+        self.missed_t = _Column(np.float64)
+        self.n_rejected = 0
+        self.n_secondary = 0
+        self.n_clipped = 0
+        self.gaps: list[tuple[float, float]] = []
+        self._decays = {0: deque(maxlen=200), 1: deque(maxlen=200)}
+        self._hum_buf: list[np.ndarray] = []
+        self._hum_n = 0
+        self._finished = False
+        self._final_events: list[Event] = []
+
+    # -- feeding ---------------------------------------------------------------------------
+    def feed(self, block: Block) -> list[Event]:
+        """Process one block; returns the events decided by it."""
+        if self._finished:
+            raise ParameterError("Analyzer.feed after finish()")
+        x = np.asarray(block.samples, dtype=np.float32).reshape(-1)
+        out: list[Event] = []
+        if block.gap_before > 0:
+            g0 = self._pos / self.samplerate
+            self.gaps.append((g0, g0 + block.gap_before / self.samplerate))
+            self.tracker.add_gap(*self.gaps[-1])
+            out += self._run(np.zeros(block.gap_before, dtype=np.float32))
+        if self._hum_n < HUM_ANALYSIS_S * self.samplerate:
+            self._hum_buf.append(x.copy())
+            self._hum_n += len(x)
+        out += self._run(x)
+        return out
+
+    def _run(self, x: np.ndarray) -> list[Event]:
+        impacts = self.detector.process(x)
+        self._pos += len(x)
+        return self._record(self.tracker.add(impacts, self.detector.position / self.samplerate))
+
+    def finish(self) -> Summary:
+        """End of the stream: decide the last slots and return the final summary."""
+        if not self._finished:
+            impacts = self.detector.flush()
+            pos_s = self._pos / self.samplerate
+            self._final_events = self._record(self.tracker.add(impacts, pos_s))
+            self._final_events += self._record(self.tracker.finish(pos_s))
+            self._finished = True
+        return self.summary()
+
+    def drain_final_events(self) -> list[Event]:
+        """The events decided by :meth:`finish` (once)."""
+        out, self._final_events = self._final_events, []
+        return out
+
+    def _record(self, events: list[Event]) -> list[Event]:
+        out = []
+        for ev in events:
+            if ev.kind == "step":
+                pol = 0 if ev.polarity == "A" else 1
+                flags = ev.flags
+                d = ev.decay_ms
+                dq = self._decays[pol]
+                if math.isfinite(d):
+                    if len(dq) >= 20:
+                        arr = np.log(np.asarray(dq))
+                        med = float(np.median(arr))
+                        mad = 1.4826 * float(np.median(np.abs(arr - med)))
+                        if abs(math.log(d) - med) > max(5 * mad, math.log(1.5)):
+                            flags = flags + ("ringdown",)
+                    dq.append(d)
+                if flags != ev.flags:
+                    ev = dataclasses.replace(ev, flags=flags)
+                self.step_k.append(ev.step)
+                self.step_t.append(ev.time_s)
+                self.step_pol.append(pol)
+                self.step_match.append(ev.match)
+                self.step_decay.append(d)
+                self.step_snr.append(ev.snr_db)
+                self.step_peak.append(ev.peak_dbfs)
+                self.step_flags.append(_flag_bits(flags))
+                if "clipped" in flags:
+                    self.n_clipped += 1
+            elif ev.kind == "missed":
+                self.missed_t.append(ev.time_s)
+            elif ev.kind == "rejected":
+                # count loud sounds only; faint noise bursts are not events worth reporting
+                if ev.snr_db >= LOUD_REJECT_DB:
+                    self.n_rejected += 1
+            elif ev.kind == "secondary":
+                self.n_secondary += 1
+            out.append(ev)
+        return out
+
+    # -- results ---------------------------------------------------------------------------
+    @property
+    def duration_s(self) -> float:
+        return self._pos / self.samplerate
+
+    def rate(self) -> RateEstimate | None:
+        """The rate fit over the steps so far (None when it cannot be fitted yet)."""
+        nominal = self.tracker.nominal_s or self.tracker.measured_s
+        good = self._good_steps()
+        if nominal is None or good.sum() < 3:
+            return None
+        k = self.step_k.values[good]
+        if k.max() - k.min() < 2:
+            return None
+        return fit_rate(k, self.step_t.values[good], nominal, clock_ppm=self.clock_ppm or 0.0,
+                        clock_ppm_u95=self.clock_ppm_u95)
+
+    def _good_steps(self) -> np.ndarray:
+        return (self.step_match.values >= self.tracker.cfg.good_match) & ((self.step_flags.values & _FLAG_BITS["clipped"]) == 0) \
+            if self.step_k.n else np.zeros(0, dtype=bool)
+
+    def summary(self) -> Summary:
+        """A snapshot of everything found so far."""
+        fs = self.samplerate
+        tr = self.tracker
+        n_steps = self.step_k.n
+        warnings: list[str] = []
+        rate = self.rate()
+        if tr.failed or n_steps == 0:
+            pattern = "none"
+        elif tr.nominal_s is None:
+            pattern = "not-stepping"
+        else:
+            pattern = "stepping"
+        # an escapement's tick-tock: unequal alternate intervals, or large scatter
+        asym_us = self._alternation_us()
+        if pattern == "stepping" and rate is not None and (
+                (asym_us is not None and abs(asym_us) > 1000.0) or rate.jitter_us > 2000.0):
+            pattern = "not-stepping"
+        if pattern != "stepping":
+            rate_out = None
+        else:
+            rate_out = rate
+        res_us = res_t = None
+        good = self._good_steps()
+        if good.sum() >= 3:
+            res_t = self.step_t.values[good]
+            res_us = residuals_s(self.step_k.values[good], res_t) * 1e6
+        ring = {}
+        for pol, name in ((0, "A"), (1, "B")):
+            sel = (self.step_pol.values == pol) & np.isfinite(self.step_decay.values)
+            d = self.step_decay.values[sel].astype(np.float64)
+            ab = int(np.count_nonzero((self.step_flags.values[sel] & _FLAG_BITS["ringdown"]) != 0))
+            if len(d):
+                q1, med, q3 = np.percentile(d, [25, 50, 75])
+                ring[name] = RingDownStats(name, len(d), float(med), float(q3 - q1), ab)
+        hum_hz, hum_db = self._hum()
+        snr = float(np.median(self.step_snr.values)) if n_steps else float("nan")
+        dc = self.detector.sum_x / max(self.detector.samples_seen, 1)
+        peak = 20 * math.log10(max(self.detector.max_abs, 1e-12))
+        # --- plain-words warnings -----------------------------------------------------------
+        if pattern == "none":
+            warnings.append("no stepping-motor pattern was heard: move the microphone onto the case or closer "
+                            "to the movement, quiet the room, and record at least 30 s")
+        elif pattern == "not-stepping":
+            iv = tr.measured_s
+            warnings.append(f"the sound is not a quartz stepping-motor pattern (beat interval heard "
+                            f"{iv:.4f} s{'' if asym_us is None else f', alternate beats differ by {asym_us / 1000:.2f} ms'}): "
+                            "no rate is claimed for it")
+        if self.clock_ppm is None and rate_out is not None:
+            warnings.append(f"the rate is on the audio device's own, uncalibrated time base; such clocks are "
+                            f"commonly off by tens of ppm (+-{TYPICAL_DEVICE_PPM:.0f} ppm = "
+                            f"+-{ppm_to_s_per_day(TYPICAL_DEVICE_PPM):.1f} s/day): calibrate and pass --clock-ppm")
+        if rate_out is not None and (rate_out.span_s < 20 or rate_out.n_steps < 10):
+            warnings.append(f"the recording is short ({rate_out.span_s:.0f} s of steps): record at least a minute "
+                            "for a useful rate, ten for a precise one")
+        if n_steps and snr < 12:
+            warnings.append(f"steps are weak (median {snr:.0f} dB above the noise): put the microphone on the case "
+                            "or closer to the movement and quiet the room")
+        if n_steps and self.n_clipped > 0.05 * n_steps:
+            warnings.append(f"{self.n_clipped} steps clip the input: lower the input gain or move the microphone back")
+        if hum_hz:
+            warnings.append(f"mains hum at {hum_hz:.0f} Hz ({hum_db:+.0f} dB over the noise floor) was heard and ignored; "
+                            "keep the microphone cable away from mains leads")
+        if self.n_rejected > max(5, 0.1 * max(n_steps, 1)):
+            warnings.append(f"{self.n_rejected} sounds off the step grid (knocks, voices, another clock) were ignored")
+        if abs(dc) > 0.05:
+            warnings.append(f"the recording has a DC offset of {dc:+.3f} full scale (removed before analysis)")
+        if self.gaps:
+            warnings.append(f"{len(self.gaps)} gaps in the audio ({sum(b - a for a, b in self.gaps):.2f} s lost); "
+                            "steps there are not counted as missed")
+        return Summary(
+            duration_s=self.duration_s,
+            sample_rate_hz=fs,
+            channel=self.channel,
+            step_interval_s=tr.nominal_s if pattern == "stepping" else None,
+            measured_interval_s=tr.measured_s,
+            pattern=pattern,
+            steps_detected=n_steps,
+            missed_steps=self.missed_t.n,
+            missed_step_times_s=[float(v) for v in self.missed_t.values],
+            rejected_events=self.n_rejected,
+            secondary_impacts=self.n_secondary,
+            rate=rate_out,
+            ringdown=ring,
+            step_snr_db=snr,
+            clipped_steps=self.n_clipped,
+            hum_hz=hum_hz,
+            hum_db=hum_db,
+            dc_offset=float(dc),
+            peak_dbfs=peak,
+            warnings=warnings,
+            residuals_us=res_us,
+            residual_times_s=res_t,
+            extras={"alternation_us": asym_us, "coherence": tr.coherence},
+        )
+
+    def _alternation_us(self) -> float | None:
+        """Mean A->B interval minus mean B->A interval (us), from consecutive steps."""
+        k = self.step_k.values
+        if len(k) < 6:
+            return None
+        t = self.step_t.values
+        adj = np.flatnonzero(np.diff(k) == 1)
+        if len(adj) < 4:
+            return None
+        iv = t[adj + 1] - t[adj]
+        from_a = (k[adj] % 2) == 0
+        if from_a.sum() < 2 or (~from_a).sum() < 2:
+            return None
+        return float((iv[from_a].mean() - iv[~from_a].mean()) * 1e6)
+
+    def _hum(self) -> tuple[float | None, float | None]:
+        if not self._hum_buf:
+            return None, None
+        x = np.concatenate(self._hum_buf)[: int(HUM_ANALYSIS_S * self.samplerate)].astype(np.float64)
+        if len(x) < self.samplerate:
+            return None, None
+        f, p = signal.welch(x - x.mean(), fs=self.samplerate, nperseg=int(self.samplerate))
+        best = (None, None)
+        for hz in (50.0, 60.0):
+            i = int(round(hz / (f[1] - f[0])))
+            if i + 12 >= len(p):
+                continue
+            neigh = np.concatenate([p[i - 10: i - 2], p[i + 3: i + 11]])
+            lvl = 10 * math.log10(max(p[i - 1: i + 2].max(), 1e-30) / max(np.median(neigh), 1e-30))
+            if lvl >= 15 and (best[1] is None or lvl > best[1]):
+                best = (hz, lvl)
+        return best
+
+
+_FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8}
+
+
+def _flag_bits(flags) -> int:
+    v = 0
+    for f in flags:
+        v |= _FLAG_BITS.get(f, 0)
+    return v

@@ -1,0 +1,141 @@
+"""The human report of an analysis, drawn with rich (our own layout).
+
+Layout, top to bottom: a one-line headline in words; a "reading" table (each figure
+with its uncertainty and what it rests on); a residual strip (the timing residuals of
+the steps over the recording, a band from lowest to highest per column with the
+median marked); the ring-down per polarity; then the notes (warnings) in plain words.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from rich import box
+from rich.console import Group, RenderableType
+from rich.panel import Panel
+from rich.table import Table
+from rich.text import Text
+
+from ..export import rate_words
+from ..model import Summary
+
+
+def residual_strip(times_s: np.ndarray | None, res_us: np.ndarray | None, *, width: int = 60,
+                   height: int = 7) -> Text:
+    """A text chart of timing residuals (us) against time: per column, the range as a band."""
+    t = Text()
+    if times_s is None or res_us is None or len(res_us) < 3:
+        t.append("(too few steps to draw the residuals)", style="dim")
+        return t
+    lo_v, hi_v = float(np.percentile(res_us, 0.5)), float(np.percentile(res_us, 99.5))
+    span = max(hi_v - lo_v, 1e-3)
+    lo_v -= 0.05 * span
+    hi_v += 0.05 * span
+    t0, t1 = float(times_s[0]), float(times_s[-1])
+    cols = max(8, min(width, len(res_us)))
+    edges = np.linspace(t0, t1 + 1e-9, cols + 1)
+    col = np.clip(np.searchsorted(edges, times_s, side="right") - 1, 0, cols - 1)
+    grid = [[" "] * cols for _ in range(height)]
+    styles = [[""] * cols for _ in range(height)]
+
+    def row(v):
+        return int(np.clip(round((hi_v - v) / (hi_v - lo_v) * (height - 1)), 0, height - 1))
+
+    for c in range(cols):
+        v = res_us[col == c]
+        if not len(v):
+            continue
+        r_hi, r_lo, r_med = row(v.max()), row(v.min()), row(float(np.median(v)))
+        for r in range(r_hi, r_lo + 1):
+            grid[r][c], styles[r][c] = "▒", "cyan"
+        grid[r_med][c], styles[r_med][c] = "█", "bold cyan"
+    zero = row(0.0) if lo_v <= 0 <= hi_v else None
+    label_w = 9
+    for r in range(height):
+        v = hi_v - r * (hi_v - lo_v) / (height - 1)
+        t.append(f"{v:+8.1f} ", style="dim")
+        for c in range(cols):
+            ch = grid[r][c]
+            if ch == " " and r == zero:
+                t.append("┄", style="dim")
+            else:
+                t.append(ch, style=styles[r][c])
+        t.append("\n")
+    t.append(" " * label_w + f"{t0:<.0f} s".ljust(cols - 8) + f"{t1:>.0f} s", style="dim")
+    t.append("\n" + " " * label_w + "residual µs · band: range per column · block: median", style="dim")
+    return t
+
+
+def _fmt(v: float | None, fmt: str, unit: str = "") -> str:
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return "—"
+    return f"{v:{fmt}}{unit}"
+
+
+def render_summary(s: Summary, *, source: str = "", width: int = 80) -> RenderableType:
+    """The whole report as one rich renderable."""
+    parts: list[RenderableType] = []
+    r = s.rate
+    head = Text()
+    if s.pattern == "stepping" and r is not None:
+        head.append("The movement ", style="bold")
+        head.append(rate_words(r.rate_s_per_day), style="bold green" if abs(r.rate_s_per_day) < 0.5 else "bold yellow")
+        head.append(f"  ± {r.ci95_s_per_day:.3f} s/day (95 %)", style="bold")
+        head.append(f"  over {r.n_steps} steps in {r.span_s:.0f} s")
+    elif s.pattern == "not-stepping":
+        head.append("Not a quartz stepping pattern", style="bold yellow")
+        head.append(f" — beat interval heard {_fmt(s.measured_interval_s, '.5f', ' s')}; no rate claimed")
+    else:
+        head.append("No steps found", style="bold red")
+    parts.append(head)
+
+    tab = Table(box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, expand=False)
+    tab.add_column("reading", style="bold")
+    tab.add_column("value", justify="right")
+    tab.add_column("basis", style="dim")
+    if r is not None:
+        tab.add_row("rate", f"{r.rate_s_per_day:+.4f} s/day", f"95 % ± {r.ci95_s_per_day:.4f}; "
+                    f"{r.rate_s_per_day / 0.0864:+.3f} ppm; line fit, residual corr {r.residual_correlation:+.2f}")
+        tb = (f"clock corrected by {r.clock_correction_ppm:+.3f} ppm" if s.extras.get("clock_calibrated")
+              else "device clock, uncalibrated")
+        tab.add_row("time base", "", tb)
+        tab.add_row("step interval", f"{s.step_interval_s:g} s", f"measured {s.measured_interval_s:.9f} s")
+        tab.add_row("timing jitter", f"{r.jitter_us:.2f} µs", "RMS residual from the fitted line")
+        tab.add_row("polarity offset", f"{r.polarity_offset_us:+.2f} µs", "B steps relative to A steps")
+    tab.add_row("steps heard", f"{s.steps_detected}", f"{r.n_outliers} outliers left out of the fit" if r else "")
+    miss = ", ".join(f"{t:.1f}" for t in s.missed_step_times_s[:6]) + (" …" if s.missed_steps > 6 else "")
+    tab.add_row("missed steps", f"{s.missed_steps}", f"at {miss} s" if s.missed_steps else "none on the grid")
+    tab.add_row("other sounds", f"{s.rejected_events}", f"off the grid, ignored; {s.secondary_impacts} later impacts within steps")
+    tab.add_row("step level", _fmt(s.step_snr_db, ".1f", " dB"), f"above the noise floor; peak {s.peak_dbfs:.1f} dBFS")
+    if s.hum_hz:
+        tab.add_row("mains hum", f"{s.hum_hz:.0f} Hz", f"{s.hum_db:+.0f} dB over the floor")
+    parts.append(tab)
+
+    if s.residuals_us is not None and len(s.residuals_us) >= 3:
+        parts.append(Panel(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, min(width - 20, 100))),
+                           title="timing residuals", title_align="left", box=box.ROUNDED, expand=False))
+    if s.ringdown:
+        rt = Table(box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False)
+        rt.add_column("polarity")
+        rt.add_column("decay τ, median", justify="right")
+        rt.add_column("IQR", justify="right")
+        rt.add_column("T60", justify="right")
+        rt.add_column("steps", justify="right")
+        rt.add_column("abnormal", justify="right")
+        for p, v in sorted(s.ringdown.items()):
+            rt.add_row(p, f"{v.decay_ms_median:.2f} ms", f"{v.decay_ms_iqr:.2f} ms", f"{6.908 * v.decay_ms_median:.1f} ms",
+                       str(v.n), str(v.n_abnormal))
+        parts.append(Text("ring-down (amplitude e-folding time)", style="bold"))
+        parts.append(rt)
+    for k in ("diagnosis",):
+        if s.extras.get(k):
+            parts.append(Text(k, style="bold"))
+            for line in s.extras[k]:
+                parts.append(Text("  • " + line))
+    if s.warnings:
+        parts.append(Text("notes", style="bold"))
+        for w in s.warnings:
+            parts.append(Text("  ! " + w, style="yellow"))
+    title = f"tickscope · {source}" if source else "tickscope"
+    sub = f"{s.duration_s:.1f} s · {s.sample_rate_hz:g} Hz · channel {s.channel}"
+    return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.HEAVY_HEAD, width=min(width, 120))
