@@ -82,7 +82,7 @@ class Analyzer:
         self.step_peak = _Column(np.float32)
         self.step_flags = _Column(np.int16)
         self.missed_t = _Column(np.float64)
-        self.n_rejected = 0
+        self.rejected_snr = _Column(np.float32)
         self.n_secondary = 0
         self.n_clipped = 0
         self.gaps: list[tuple[float, float]] = []
@@ -103,7 +103,10 @@ class Analyzer:
             g0 = self._pos / self.samplerate
             self.gaps.append((g0, g0 + block.gap_before / self.samplerate))
             self.tracker.add_gap(*self.gaps[-1])
-            out += self._run(np.zeros(block.gap_before, dtype=np.float32))
+            impacts = self.detector.skip(block.gap_before)
+            self._pos = self.detector.position
+            out += self._record(self.tracker.add(impacts, self._pos / self.samplerate))
+            x = x[self._pos - block.start_sample:] if self._pos > block.start_sample else x
         if self._hum_n < HUM_ANALYSIS_S * self.samplerate:
             self._hum_buf.append(x.copy())
             self._hum_n += len(x)
@@ -161,9 +164,7 @@ class Analyzer:
             elif ev.kind == "missed":
                 self.missed_t.append(ev.time_s)
             elif ev.kind == "rejected":
-                # count loud sounds only; faint noise bursts are not events worth reporting
-                if ev.snr_db >= LOUD_REJECT_DB:
-                    self.n_rejected += 1
+                self.rejected_snr.append(ev.snr_db)
             elif ev.kind == "secondary":
                 self.n_secondary += 1
             out.append(ev)
@@ -185,6 +186,15 @@ class Analyzer:
             return None
         return fit_rate(k, self.step_t.values[good], nominal, clock_ppm=self.clock_ppm or 0.0,
                         clock_ppm_u95=self.clock_ppm_u95)
+
+    @property
+    def n_rejected(self) -> int:
+        """Off-grid sounds loud enough to matter: within 10 dB of the typical step, and 10 dB over the floor."""
+        snr = self.rejected_snr.values
+        if not len(snr):
+            return 0
+        step = float(np.median(self.step_snr.values)) if self.step_k.n else LOUD_REJECT_DB
+        return int(np.count_nonzero(snr >= max(LOUD_REJECT_DB, step - 10.0)))
 
     def _good_steps(self) -> np.ndarray:
         return (self.step_match.values >= self.tracker.cfg.good_match) & ((self.step_flags.values & _FLAG_BITS["clipped"]) == 0) \

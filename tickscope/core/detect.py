@@ -156,6 +156,32 @@ class ImpactDetector:
         out += self._emit_ready(final=True)
         return out
 
+    def skip(self, n: int) -> list[Impact]:
+        """Audio was lost (input overflow): finish what is buffered, then jump ``n`` samples ahead.
+
+        The envelope history is cleared so the jump itself does not look like an impact.
+        """
+        out: list[Impact] = []
+        if self._inlen:
+            buf = np.concatenate(self._inbuf)
+            if self.lag is None:
+                self._tune(buf)
+            m = (len(buf) // self.hop) * self.hop
+            if m:
+                out += self._process_chunk(buf[:m])
+            self._inbuf, self._inlen = [], 0
+            n += len(buf) - m
+        out += self._emit_ready(final=True)
+        self._consumed += n
+        self.samples_seen += n
+        pad = (-self._consumed) % self.hop  # keep frames aligned to the hop grid
+        self._consumed += pad
+        self._raw = np.zeros(0, dtype=np.float32)
+        self._raw_start = self._consumed
+        self._tail = np.zeros(0, dtype=np.float32)
+        self._prev_frames = np.full(len(self._prev_frames), np.inf)  # no onset right after the gap
+        return out
+
     @property
     def position(self) -> int:
         """Sample index up to which the stream has been examined."""
@@ -179,6 +205,7 @@ class ImpactDetector:
 
     def _tune(self, x: np.ndarray) -> None:
         """Choose the difference lag under which the loudest moments stand out most."""
+        x = x[: int(self.cfg.tune_s * self.samplerate)]  # the same audio whatever the block sizes
         best, best_lag = -np.inf, 1
         for lag in self.lag_choices:
             e = self._frame_energy(x, np.zeros(0, dtype=np.float32), lag)[lag // self.hop + 1:]

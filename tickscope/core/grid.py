@@ -140,20 +140,24 @@ class StepTracker:
         for imp in impacts:
             t = (imp.snippet_start + onset_of(imp.snippet, self.fs, search_from=max(0, self.pre - int(0.004 * self.fs)))) / self.fs
             o = _Open(imp, t)
-            if not self.acquired:
-                self._buffer.append(o)
-            else:
+            if self.acquired:
                 self._time(o)
                 self._open.append(o)
-        if not self.acquired and not self.failed:
-            span = self._buffer[-1].t_s - self._buffer[0].t_s if self._buffer else 0.0
-            if span >= self.cfg.acquire_s and len(self._buffer) >= 8:
+                continue
+            # acquisition uses exactly the impacts of the first acquire_s seconds, so the
+            # result does not depend on how the audio was cut into blocks
+            if self._buffer and t - self._buffer[0].t_s >= self.cfg.acquire_s and len(self._buffer) >= 8 \
+                    and not self.failed:
                 out += self._acquire(final=False)
-            if not self.acquired and position_s - (self._buffer[0].t_s if self._buffer else 0) > self.cfg.acquire_max_s:
-                # keep trying on a sliding window of the most recent audio
-                cut = position_s - self.cfg.acquire_max_s
-                out += [self._reject(o) for o in self._buffer if o.t_s < cut]
-                self._buffer = [o for o in self._buffer if o.t_s >= cut]
+                if not self.acquired and t - self._buffer[0].t_s > self.cfg.acquire_max_s:
+                    cut = t - self.cfg.acquire_max_s  # keep trying on the most recent audio
+                    out += [self._reject(b) for b in self._buffer if b.t_s < cut]
+                    self._buffer = [b for b in self._buffer if b.t_s >= cut]
+            if self.acquired:
+                self._time(o)
+                self._open.append(o)
+            else:
+                self._buffer.append(o)
         if self.acquired:
             out += self._decide(position_s)
         return out
@@ -183,8 +187,10 @@ class StepTracker:
                 self.failed = True
             return []
         t = np.array([o.t_s for o in buf])
-        amp = 10 ** (np.array([o.imp.peak_dbfs for o in buf]) / 20)
-        w = np.clip(amp / np.median(amp), 0.05, 20.0)  # loud impacts count most
+        # impacts that stand far above the noise floor count most (the level alone can
+        # mislead: a phone's gain control lifts the noise between steps to the steps' level)
+        snr = np.array([o.imp.frame_snr_db for o in buf])
+        w = np.clip(10 ** ((snr - np.median(snr)) / 10), 0.05, 20.0)
         found = find_interval(t, w)
         if found is None or found[2] < self.cfg.min_coherence:
             if final:
@@ -193,12 +199,15 @@ class StepTracker:
         P, phase, coh = found
         # one step per slot: the earliest strong impact near each grid point
         tol = min(0.2 * P, 0.06)
-        chosen: dict[int, _Open] = {}
+        near: dict[int, list[_Open]] = {}
         for o in buf:
             k = int(round((o.t_s - phase) / P))
-            r = o.t_s - (phase + k * P)
-            if abs(r) <= tol and (k not in chosen):
-                chosen[k] = o
+            if abs(o.t_s - (phase + k * P)) <= tol:
+                near.setdefault(k, []).append(o)
+        chosen: dict[int, _Open] = {}
+        for k, group in near.items():
+            top = max(o.imp.frame_snr_db for o in group)
+            chosen[k] = min((o for o in group if o.imp.frame_snr_db >= top - 6.0), key=lambda o: o.t_s)
         if len(chosen) < 3:
             if final:
                 self.failed = True

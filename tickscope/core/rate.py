@@ -102,6 +102,25 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         rho = min(max(rho, -0.5), 0.98)
     infl = (1 + rho) / (1 - rho)
     var_b = s2 / sxx * infl if sxx > 0 else float("inf")
+    # Second view: the two noise types of time-and-frequency metrology, white phase noise
+    # (each step time scattered independently) and white frequency noise (each interval
+    # scattered independently: the phase wanders as a random walk).  From the intervals
+    # d_k of consecutive steps: var(d) = 2 s_pm^2 + s_fm^2 and cov(d_k, d_k+1) = -s_pm^2.
+    # OLS slope variance: 12 s_pm^2 / N^3 + (6/5) s_fm^2 / N (large-N forms; from memory).
+    if len(adj) >= 8:
+        d = np.diff(tt[order])[np.diff(kk_o) == 1]
+        d = d - d.mean()
+        c1 = float(np.mean(d[:-1] * d[1:])) if len(d) > 2 else 0.0
+        s_pm2 = max(-c1, 0.0)
+        vd = float(np.mean(d * d))
+        s_fm2 = max(vd - 2 * s_pm2, 0.0)
+        if s_fm2 < 3.0 * vd * np.sqrt(2.0 / len(d)):  # not significant: sampling scatter alone
+            s_fm2 = 0.0
+        span_steps = float(kk.max() - kk.min()) + 1
+        var_mix = 12 * s_pm2 / span_steps**3 + 1.2 * s_fm2 / span_steps
+        if var_mix > var_b:
+            infl = max(infl, var_mix / (s2 / sxx)) if s2 > 0 and sxx > 0 else infl
+            var_b = var_mix
     n_eff = max(3.0, n / infl)
     q = float(stats.t.ppf(0.975, max(n_eff - 2, 1)))
     se_b = math.sqrt(var_b)

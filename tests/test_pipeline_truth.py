@@ -1,0 +1,102 @@
+"""The whole pipeline against the simulator's truth, across conditions."""
+import numpy as np
+import pytest
+
+from tickscope.core.simulate import Scenario
+from conftest import analyze_scenario, match_times, true_step_times
+
+
+def _check(sc, *, timing_tol_us=None, rate_tol=None):
+    s, an, truth, _ = analyze_scenario(sc)
+    tt = true_step_times(truth)
+    assert s.pattern == "stepping"
+    assert s.step_interval_s == sc.step_interval_s
+    # zero missed and zero extra steps
+    assert s.steps_detected == len(tt)
+    assert s.missed_steps == len(sc.missed_steps)
+    m = match_times(an.step_t.values, tt)
+    assert np.all(np.isfinite(m)), "a true step was not found within 2 ms"
+    exp = truth["expected"]["rate_device_time_s_per_day"]
+    assert abs(s.rate.rate_s_per_day - exp) <= s.rate.ci95_s_per_day, (s.rate, exp)
+    if rate_tol is not None:
+        assert abs(s.rate.rate_s_per_day - exp) <= rate_tol
+    if timing_tol_us is not None:
+        err = (m - tt) * 1e6
+        assert np.std(err) <= timing_tol_us
+    return s, an, truth
+
+
+@pytest.mark.parametrize("rate", [-20.0, -3.3, 0.0, 0.7, 20.0])
+def test_rates(rate):
+    _check(Scenario(duration_s=60, rate_s_per_day=rate, snr_db=30, seed=3), timing_tol_us=2.0, rate_tol=0.01)
+
+
+@pytest.mark.parametrize("snr", [40.0, 20.0, 10.0, 6.0])
+def test_snr(snr):
+    _check(Scenario(duration_s=60, snr_db=snr, rate_s_per_day=1.5, seed=5))
+
+
+@pytest.mark.parametrize("fs", [8000, 44100, 48000, 96000])
+def test_sample_rates(fs):
+    _check(Scenario(duration_s=40, samplerate_hz=fs, snr_db=30, rate_s_per_day=-4.0, movement="alarmclock", seed=7))
+
+
+def test_jitter_hum_transients_missed_steps():
+    sc = Scenario(duration_s=120, snr_db=20, jitter_us=15, hum_hz=60, hum_db=-10, noise="pink",
+                  transients_per_min=6, missed_steps=(17, 18, 64), rate_s_per_day=3.0, seed=9)
+    s, an, truth = _check(sc)
+    # missed steps reported at the right times
+    miss_true = [st["time_s"] for st in truth["steps"] if st["kind"] == "silent"]
+    assert np.allclose(sorted(s.missed_step_times_s), sorted(miss_true), atol=0.001)
+    assert s.hum_hz == 60
+    # timing jitter reported is the injected one (us), within sampling error
+    assert s.rate.jitter_us == pytest.approx(15, rel=0.3)
+
+
+@pytest.mark.parametrize("interval", [0.125, 0.25, 0.5, 2.0])
+def test_step_interval_found_without_being_told(interval):
+    sc = Scenario(duration_s=40 if interval < 1 else 80, step_interval_s=interval, snr_db=30,
+                  rate_s_per_day=2.0, movement="wristwatch", seed=13)
+    _check(sc)
+
+
+def test_clock_correction_recovers_true_rate():
+    sc = Scenario(duration_s=60, rate_s_per_day=1.0, clock_ppm=-41.0, snr_db=30, seed=17)
+    s, _, truth, _ = analyze_scenario(sc, clock_ppm=-41.0)
+    assert abs(s.rate.rate_s_per_day - 1.0) <= max(s.rate.ci95_s_per_day, 0.005)
+    assert s.rate.clock_correction_ppm == -41.0
+
+
+def test_ten_clean_minutes_rate_error():
+    # target: rate error <= 0.005 s/day on 10 clean minutes
+    s, _, truth = _check(Scenario(duration_s=600, rate_s_per_day=-7.77, snr_db=30, seed=19), rate_tol=0.005)
+
+
+def test_ringdown_of_the_simulated_movement():
+    # the simulated wristwatch's dominant resonance decays with tau = 3 ms (others faster)
+    s, _, _ = _check(Scenario(duration_s=30, movement="wristwatch", snr_db=35, seed=21))
+    for p in ("A", "B"):
+        assert 2.0 < s.ringdown[p].decay_ms_median < 3.2
+        assert s.ringdown[p].decay_ms_iqr < 0.3
+
+
+def test_no_steps_in_noise(rng):
+    from tickscope.model import Block
+    from tickscope.pipeline import Analyzer
+
+    an = Analyzer(48000)
+    an.feed(Block(rng.normal(0, 0.01, 48000 * 20).astype(np.float32), 0))
+    s = an.finish()
+    assert s.pattern == "none"
+    assert s.rate is None
+
+
+def test_escapement_is_not_claimed_as_quartz():
+    # a 5-beat/s escapement with a 2 ms beat error: tick and tock alternate unevenly
+    from tickscope.core.simulate import Renderer
+    sc = Scenario(duration_s=30, step_interval_s=0.2, polarity_asymmetry_us=2000, snr_db=30,
+                  movement="wristwatch", seed=2)
+    s, _, _, _ = analyze_scenario(sc)
+    assert s.pattern == "not-stepping"
+    assert s.rate is None
+    assert s.measured_interval_s == pytest.approx(0.2, rel=0.01)

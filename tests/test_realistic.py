@@ -1,0 +1,52 @@
+"""Recordings as phones and rooms make them: the counts must hold and the rate stay in its interval."""
+import os
+
+import numpy as np
+import pytest
+
+from tickscope.core.simulate import Scenario
+from tickscope.io.audiofile import blocks, probe
+from tickscope.io.simfile import write_simulation
+from tickscope.pipeline import Analyzer
+from conftest import analyze_scenario, true_step_times
+
+CASES = {
+    "reverberant": dict(reverb_rt60_ms=450, snr_db=25),
+    "phone-agc": dict(agc=True, noise="pink", snr_db=22),
+    "noise-gate": dict(gate_dbfs=-36, snr_db=30),
+    "double-impact": dict(second_impact_ms=38, second_impact_db=-3, snr_db=25),
+    "second-clock": dict(second_clock_rate_s_per_day=-250.0, second_clock_db=-6, snr_db=25),
+    "clipped": dict(clip_dbfs=-16, snr_db=30),
+    "dc-offset": dict(dc_offset=0.3, snr_db=30),
+    "varying-ticks": dict(variation_db=2.0, variation_freq_pct=1.5, jitter_us=10, snr_db=20),
+    "kitchen": dict(reverb_rt60_ms=300, agc=True, noise="pink", hum_hz=50, second_impact_ms=50,
+                    transients_per_min=3, variation_db=1.0, snr_db=20),
+}
+
+
+@pytest.mark.parametrize("name", sorted(CASES))
+def test_realistic_recording(name):
+    sc = Scenario(duration_s=90, rate_s_per_day=-2.2, seed=31, **CASES[name])
+    s, an, truth, _ = analyze_scenario(sc)
+    tt = true_step_times(truth)
+    assert s.pattern == "stepping"
+    assert s.steps_detected == len(tt)
+    assert s.missed_steps == 0
+    exp = truth["expected"]["rate_device_time_s_per_day"]
+    assert abs(s.rate.rate_s_per_day - exp) <= s.rate.ci95_s_per_day
+    assert s.rate.ci95_s_per_day < 0.2
+
+
+@pytest.mark.parametrize("ext", [".ogg", ".mp3", ".flac"])
+def test_lossy_and_lossless_files(tmp_path, ext):
+    sc = Scenario(duration_s=60, rate_s_per_day=5.5, snr_db=30, second_impact_ms=45, missed_steps=(30,), seed=37)
+    path = str(tmp_path / f"rec{ext}")
+    truth = write_simulation(path, sc)
+    info = probe(path)
+    an = Analyzer(info.samplerate)
+    for b in blocks(path, info, 0):
+        an.feed(b)
+    s = an.finish()
+    assert s.steps_detected == len(true_step_times(truth))
+    assert s.missed_steps == 1
+    assert abs(s.rate.rate_s_per_day - 5.5) <= max(s.rate.ci95_s_per_day, 0.002)
