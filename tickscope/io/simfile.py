@@ -9,8 +9,8 @@ import numpy as np
 import soundfile as sf
 
 from ..core.simulate import Renderer, Scenario
-from ..errors import InputError, ParameterError
-from .audiofile import write_audio
+from ..errors import InputError
+from .audiofile import WRITE_FRAMES, audio_format_for
 
 CHUNK_S = 10.0
 
@@ -25,38 +25,24 @@ def write_simulation(path: str, sc: Scenario, *, subtype: str | None = None,
                      progress: Callable[[float], None] | None = None, description: str = "") -> dict:
     """Render ``sc`` to ``path`` chunk by chunk and write the truth JSON beside it."""
     ext = os.path.splitext(path)[1].lower()
+    fmt, st = audio_format_for(path, subtype)
     r = Renderer(sc)
     peak = 0.0
-    if ext in (".ogg", ".mp3"):
-        # lossy encoders are given the whole signal (short scenarios only)
-        parts = []
-        while True:
-            x = r.render(int(CHUNK_S * sc.samplerate_hz))
-            if not len(x):
-                break
-            parts.append(x)
-            if progress:
-                progress(r.pos / r.n_total)
-        data = np.concatenate(parts)
-        peak = float(np.max(np.abs(data))) if len(data) else 0.0
-        write_audio(path, np.clip(data, -1, 1).astype(np.float32), sc.samplerate_hz, subtype=subtype)
-    else:
-        fmt = {".wav": "WAV", ".flac": "FLAC", ".w64": "W64", ".aiff": "AIFF", ".aif": "AIFF"}.get(ext)
-        if fmt is None:
-            raise ParameterError(f"{path}: unknown audio extension {ext!r} (use .wav, .flac, .ogg or .mp3)")
-        st = subtype or ("PCM_24" if fmt == "FLAC" else "FLOAT")
-        try:
-            with sf.SoundFile(path, "w", samplerate=sc.samplerate_hz, channels=sc.channels, format=fmt, subtype=st) as f:
-                while True:
-                    x = r.render(int(CHUNK_S * sc.samplerate_hz))
-                    if not len(x):
-                        break
-                    peak = max(peak, float(np.max(np.abs(x))))
-                    f.write(np.clip(x, -1, 1) if st != "FLOAT" else x)
-                    if progress:
-                        progress(r.pos / r.n_total)
-        except (sf.LibsndfileError, RuntimeError, OSError, ValueError) as e:
-            raise InputError(f"cannot write {path}: {e}") from e
+    try:
+        with sf.SoundFile(path, "w", samplerate=sc.samplerate_hz, channels=sc.channels, format=fmt, subtype=st) as f:
+            while True:
+                x = r.render(int(CHUNK_S * sc.samplerate_hz))
+                if not len(x):
+                    break
+                peak = max(peak, float(np.max(np.abs(x))))
+                if st != "FLOAT":
+                    x = np.clip(x, -1, 1)
+                for i in range(0, len(x), WRITE_FRAMES):  # small writes (see audiofile.write_audio)
+                    f.write(x[i: i + WRITE_FRAMES])
+                if progress:
+                    progress(r.pos / r.n_total)
+    except (sf.LibsndfileError, RuntimeError, OSError, ValueError) as e:
+        raise InputError(f"cannot write {path}: {e}") from e
     truth = dict(r.truth)
     truth["description"] = description
     truth["audio_file"] = os.path.basename(path)

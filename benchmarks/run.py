@@ -1,0 +1,204 @@
+"""tickscope benchmarks: speed, memory, timing accuracy, interval coverage, and a baseline.
+
+    python benchmarks/run.py            # everything (about 15 minutes on 2 cores)
+    python benchmarks/run.py --quick    # shorter files and fewer trials
+
+Figures are printed with their targets.  Ratios are measured within one run, so a busy
+machine moves both sides of a ratio together.  Nothing here is a pass/fail test.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+
+import numpy as np
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+sys.path.insert(0, os.path.dirname(HERE))
+
+from tickscope.core.simulate import Scenario, _waveform, render_all, step_modes  # noqa: E402
+from tickscope.core.timing import crlb_s  # noqa: E402
+from tickscope.io.simfile import write_simulation  # noqa: E402
+from tickscope.model import Block  # noqa: E402
+from tickscope.pipeline import Analyzer  # noqa: E402
+
+
+def hdr(text):
+    print(f"\n== {text}", flush=True)
+
+
+def run_cli(path):
+    """Run `tickscope analyze` as its own process; wall time and peak RSS of that process."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    t = time.perf_counter()
+    r = subprocess.run([sys.executable, "-m", "tickscope", "analyze", path, "--json", "--quiet"],
+                       capture_output=True, text=True)
+    dt = time.perf_counter() - t
+    rss_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    if r.returncode != 0:
+        print("  analyze failed:", r.stderr.strip())
+        return dt, rss_mb, None
+    return dt, max(rss_mb, before / 1024), json.loads(r.stdout)
+
+
+def read_only_seconds(path):
+    import soundfile as sf
+
+    t = time.perf_counter()
+    for _ in sf.blocks(path, blocksize=1 << 18, dtype="float32"):
+        pass
+    return time.perf_counter() - t
+
+
+def bench_throughput(tmp, hours_list):
+    hdr("throughput and memory of the whole `tickscope analyze` process (48 kHz mono, 16-bit WAV)")
+    print("  targets: >= 3000x real time for 1 h; peak memory <= 150 MB, flat with duration")
+    for hours in hours_list:
+        path = os.path.join(tmp, f"long_{hours}h.wav")
+        t = time.perf_counter()
+        write_simulation(path, Scenario(duration_s=hours * 3600.0, rate_s_per_day=1.23, snr_db=30,
+                                        missed_steps=(100, 2000), seed=5), subtype="PCM_16")
+        gen = time.perf_counter() - t
+        dur = hours * 3600.0
+        dt, rss, d = run_cli(path)
+        rd = read_only_seconds(path)
+        print(f"  {hours:g} h: analyze {dt:.2f} s = {dur / dt:,.0f}x real time; reading alone {rd:.2f} s "
+              f"= {dur / rd:,.0f}x; peak RSS {rss:.0f} MB; (generated in {gen:.0f} s)")
+        if d:
+            print(f"       steps {d['steps_detected']}, missed {d['missed_steps']} (truth 2), rate "
+                  f"{d['rate_s_per_day']:+.5f} ± {d['rate_ci95_s_per_day']:.5f} s/day (truth +1.23000)")
+        os.remove(path)
+
+
+def bench_timing(snrs, duration_s):
+    hdr("timing error vs the Cramér-Rao bound (48 kHz, no source jitter)")
+    print("  target at SNR 30 dB: <= 0.5 us RMS and within 1.5x the bound")
+    for snr in snrs:
+        sc = Scenario(duration_s=duration_s, snr_db=snr, rate_s_per_day=0.0, seed=int(snr) + 100)
+        x, truth = render_all(sc)
+        an = Analyzer(sc.samplerate_hz)
+        an.feed(Block(x[:, 0].astype(np.float32), 0))
+        an.finish()
+        tt = np.array([s["time_s"] for s in truth["steps"] if s["kind"] == "step"])
+        pol = np.array([s["polarity"] for s in truth["steps"] if s["kind"] == "step"])
+        det = an.step_t.values
+        k = an.step_k.values
+        err = []
+        for p, par in (("A", 0), ("B", 1)):
+            e = det[(k % 2) == par] - tt[pol == p][: int(np.sum((k % 2) == par))]
+            err.append(e - e.mean())  # each polarity's onset definition is a constant offset
+        rms_us = float(np.sqrt(np.mean(np.concatenate(err) ** 2)) * 1e6)
+        # the bound for the A waveform as recorded (peak at level_dbfs) in white noise of the scenario
+        fs = sc.samplerate_hz
+        t = np.arange(int(0.1 * fs)) / fs
+        w = _waveform(step_modes(sc, 0), t)
+        w *= 10 ** (sc.level_dbfs / 20) / np.max(np.abs(w))
+        from tickscope.core.simulate import Renderer
+        sigma = Renderer(sc).noise_sigma
+        bound_us = crlb_s(w, fs, sigma) * 1e6
+        print(f"  SNR {snr:4.0f} dB: RMS error {rms_us:7.3f} us; CRLB {bound_us:7.3f} us; ratio {rms_us / bound_us:5.2f}")
+
+
+def bench_coverage(trials, duration_s):
+    hdr(f"95 % interval coverage over {trials} simulated recordings ({duration_s:.0f} s each)")
+    print("  target: 93..97 %, and half-widths no wider than the jitter justifies")
+    rng = np.random.default_rng(2026)
+    hits = 0
+    ratios = []
+    misses = []
+    t0 = time.perf_counter()
+    for i in range(trials):
+        rate = float(rng.uniform(-20, 20))
+        snr = float(rng.uniform(12, 40))
+        jit = float(rng.choice([0.0, 5.0, 20.0, 50.0]))
+        sc = Scenario(duration_s=duration_s, rate_s_per_day=rate, snr_db=snr, jitter_us=jit,
+                      movement=str(rng.choice(["wallclock", "wristwatch", "alarmclock"])),
+                      second_impact_ms=float(rng.choice([0.0, 45.0])), seed=1000 + i)
+        x, truth = render_all(sc)
+        an = Analyzer(sc.samplerate_hz)
+        an.feed(Block(x[:, 0].astype(np.float32), 0))
+        s = an.finish()
+        if s.rate is None:
+            misses.append(i)
+            continue
+        ok = abs(s.rate.rate_s_per_day - rate) <= s.rate.ci95_s_per_day
+        hits += ok
+        if jit > 0:
+            n = s.rate.n_steps
+            ideal = 1.96 * jit * 1e-6 * np.sqrt(12 / (n * (n * n - 1))) * 86400
+            ratios.append(s.rate.ci95_s_per_day / ideal)
+    n_ok = trials - len(misses)
+    print(f"  coverage {hits}/{n_ok} = {100 * hits / max(n_ok, 1):.1f} %; no rate in {len(misses)} recordings; "
+          f"{(time.perf_counter() - t0) / trials:.2f} s per recording")
+    if ratios:
+        print(f"  half-width / (1.96 x OLS theory for the injected jitter): median {np.median(ratios):.2f}, "
+              f"90th percentile {np.percentile(ratios, 90):.2f}")
+
+
+def bench_librosa(tmp, duration_s):
+    hdr(f"baseline: librosa onset detection on the same recording ({duration_s:.0f} s, 48 kHz, SNR 30 dB)")
+    try:
+        import librosa
+    except ImportError:
+        print("  librosa not installed (pip install -e '.[bench]'): skipped")
+        return
+    sc = Scenario(duration_s=duration_s, snr_db=30, rate_s_per_day=3.0, second_impact_ms=45, seed=77)
+    path = os.path.join(tmp, "baseline.wav")
+    truth = write_simulation(path, sc)
+    tt = np.array([s["time_s"] for s in truth["steps"] if s["kind"] == "step"])
+
+    def score(times):
+        times = np.asarray(times)
+        idx = np.clip(np.searchsorted(times, tt), 1, len(times) - 1)
+        near = np.where(np.abs(times[idx] - tt) < np.abs(times[idx - 1] - tt), times[idx], times[idx - 1])
+        err = near - tt
+        found = np.abs(err) < 0.05  # +-50 ms onset tolerance (mir_eval default; from memory)
+        e = err[found] - np.mean(err[found])
+        k = np.arange(len(tt))[found]
+        slope = np.polyfit(k, near[found], 1)[0]
+        rate = 86400 * (1 / slope - 1)
+        return found.sum(), len(times) - found.sum(), np.sqrt(np.mean(e**2)) * 1e6, rate
+
+    for label, kw in (("librosa defaults (sr 22050, hop 512)", dict(sr=22050, hop=512)),
+                      ("librosa native rate, hop 32", dict(sr=None, hop=32))):
+        t = time.perf_counter()
+        y, sr = librosa.load(path, sr=kw["sr"])
+        on = librosa.onset.onset_detect(y=y, sr=sr, hop_length=kw["hop"], units="time")
+        dt = time.perf_counter() - t
+        f, extra, rms, rate = score(on)
+        print(f"  {label:40s}: {duration_s / dt:8.0f}x real time; found {f}/{len(tt)}, extra {extra}; "
+              f"timing RMS {rms:9.1f} us; rate {rate:+8.3f} s/day (truth +3.000)")
+    t = time.perf_counter()
+    dt, rss, d = run_cli(path)
+    an_t = None
+    import csv  # noqa: F401
+    print(f"  {'tickscope analyze (whole process)':40s}: {duration_s / dt:8.0f}x real time; found "
+          f"{d['steps_detected']}/{len(tt)}; jitter {d['timing_jitter_us']:9.3f} us; rate {d['rate_s_per_day']:+8.4f} "
+          f"± {d['rate_ci95_s_per_day']:.4f} s/day")
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--quick", action="store_true", help="short files, few trials (a smoke run)")
+    a = ap.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        if a.quick:
+            bench_throughput(tmp, [0.1])
+            bench_timing([30, 10], 30)
+            bench_coverage(20, 30)
+            bench_librosa(tmp, 60)
+        else:
+            bench_throughput(tmp, [1.0, 4.0])
+            bench_timing([40, 30, 20, 10], 120)
+            bench_coverage(200, 60)
+            bench_librosa(tmp, 600)
+
+
+if __name__ == "__main__":
+    main()
