@@ -11,7 +11,7 @@ def _check(sc, *, timing_tol_us=None, rate_tol=None):
     # a step in the last 0.1 s cannot be confirmed: its sound is cut off by the end of the file
     tt = true_step_times(truth)
     tt = tt[tt < sc.duration_s - 0.1]
-    assert s.pattern == "stepping"
+    assert s.sound == "stepping"
     assert s.step_interval_s == sc.step_interval_s
     # zero missed and zero extra steps
     assert s.steps_detected == len(tt)
@@ -92,7 +92,7 @@ def test_no_steps_in_noise(rng):
     an = Analyzer(48000)
     an.feed(Block(rng.normal(0, 0.01, 48000 * 20).astype(np.float32), 0))
     s = an.finish()
-    assert s.pattern == "none"
+    assert s.sound == "none"
     assert s.rate is None
 
 
@@ -102,6 +102,6 @@ def test_escapement_is_not_claimed_as_quartz():
     sc = Scenario(duration_s=30, step_interval_s=0.2, polarity_asymmetry_us=2000, snr_db=30,
                   movement="wristwatch", seed=2)
     s, _, _, _ = analyze_scenario(sc)
-    assert s.pattern == "not-stepping"
+    assert s.sound == "not-stepping"
     assert s.rate is None
     assert s.measured_interval_s == pytest.approx(0.2, rel=0.01)

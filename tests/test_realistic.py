@@ -29,12 +29,16 @@ def test_realistic_recording(name):
     sc = Scenario(duration_s=90, rate_s_per_day=-2.2, seed=31, **CASES[name])
     s, an, truth, _ = analyze_scenario(sc)
     tt = true_step_times(truth)
-    assert s.pattern == "stepping"
+    assert s.sound == "stepping"
     assert s.steps_detected == len(tt)
     assert s.missed_steps == 0
     exp = truth["expected"]["rate_device_time_s_per_day"]
-    assert abs(s.rate.rate_s_per_day - exp) <= s.rate.ci95_s_per_day
-    assert s.rate.ci95_s_per_day < 0.2
+    # 90 s is shorter than two logic-regulation periods: the reported interval includes an unseen
+    # correction; the fit's own interval must still cover the truth and be narrow
+    stat = s.extras["rate_ci95_statistical_s_per_day"]
+    assert s.extras["rate_provisional"] is True
+    assert abs(s.rate.rate_s_per_day - exp) <= stat < 0.2
+    assert s.rate.ci95_s_per_day >= stat
 
 
 @pytest.mark.parametrize("ext", [".ogg", ".mp3", ".flac"])

@@ -93,7 +93,7 @@ def cmd_analyze(args) -> int:
         from .ui.plots import plot_analysis
 
         plot_analysis(summary, an, args.plot, title=os.path.basename(path))
-    if summary.pattern == "none" or summary.steps_detected == 0:
+    if summary.sound == "none" or summary.steps_detected == 0:
         raise NoStepsError(f"no steps could be found in {path}: "
                            + (summary.warnings[-1] if summary.warnings else "no stepping pattern heard"))
     return 0

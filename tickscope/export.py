@@ -28,7 +28,7 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
         "duration_s": _num(s.duration_s, 6),
         "sample_rate_hz": _num(s.sample_rate_hz),
         "channel": s.channel,
-        "pattern": s.pattern,
+        "sound": s.sound,
         "step_interval_s": _num(s.step_interval_s),
         "measured_interval_s": _num(s.measured_interval_s, 9),
         "steps_detected": s.steps_detected,
@@ -54,6 +54,8 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
     }
     for k, v in s.extras.items():
         if k not in d and k not in ("clock_calibrated", "alternation_us", "coherence"):
+            if k == "diagnosis":
+                v = list(v)
             d[k] = v
     return d
 

@@ -80,7 +80,7 @@ class Summary:
     channel: int
     step_interval_s: float | None
     measured_interval_s: float | None
-    pattern: str  # "stepping" | "not-stepping" | "none"
+    sound: str  # "stepping" | "not-stepping" | "none"
     steps_detected: int
     missed_steps: int
     missed_step_times_s: list[float]

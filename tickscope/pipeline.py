@@ -16,15 +16,17 @@ from scipy import signal
 
 from .core.detect import DetectorConfig, ImpactDetector
 from .core.grid import StepTracker, TrackerConfig
+from .core import diagnose as dg
 from .core.rate import fit_rate, residuals_s
 from .errors import ParameterError
 from .model import Block, Event, RateEstimate, RingDownStats, Summary
-from .units import ppm_to_s_per_day
+from .units import SECONDS_PER_DAY, ppm_to_s_per_day
 
 #: Typical error of an uncalibrated consumer audio clock (common practice; sound-card
 #: oscillators are often quoted at +-100 ppm, shared/domain.md section 4.1).
 TYPICAL_DEVICE_PPM = 50.0
 HUM_ANALYSIS_S = 8.0
+ASYMMETRY_FLOOR_US = 300.0
 LOUD_REJECT_DB = 10.0  # off-grid sounds this far above the floor are counted as rejected events
 
 
@@ -82,6 +84,12 @@ class Analyzer:
         self.step_peak = _Column(np.float32)
         self.step_flags = _Column(np.int16)
         self.missed_t = _Column(np.float64)
+        self.missed_k = _Column(np.int64)
+        self.failed_k = _Column(np.int64)
+        self.failed_t = _Column(np.float64)
+        self.correction_k = _Column(np.int64)
+        self.sec_k = _Column(np.int64)  # step-like later sounds within a slot (bursts)
+        self.sec_delay = _Column(np.float64)
         self.rejected_snr = _Column(np.float32)
         self.n_secondary = 0
         self.n_clipped = 0
@@ -163,10 +171,19 @@ class Analyzer:
                     self.n_clipped += 1
             elif ev.kind == "missed":
                 self.missed_t.append(ev.time_s)
+                self.missed_k.append(ev.step)
+            elif ev.kind == "failed":
+                self.failed_k.append(ev.step)
+                self.failed_t.append(ev.time_s)
+            elif ev.kind == "correction":
+                self.correction_k.append(ev.step)
             elif ev.kind == "rejected":
                 self.rejected_snr.append(ev.snr_db)
             elif ev.kind == "secondary":
                 self.n_secondary += 1
+                if ev.match >= self.tracker.cfg.good_match and self.step_k.n and self.step_k.values[-1] == ev.step:
+                    self.sec_k.append(ev.step)
+                    self.sec_delay.append(ev.time_s - self.step_t.values[-1])
             out.append(ev)
         return out
 
@@ -222,6 +239,9 @@ class Analyzer:
             rate_out = None
         else:
             rate_out = rate
+        diag = self._diagnose(rate_out) if pattern == "stepping" else {}
+        if diag.get("rate") is not None:
+            rate_out = diag["rate"]
         res_us = res_t = None
         good = self._good_steps()
         if good.sum() >= 3:
@@ -267,6 +287,7 @@ class Analyzer:
             warnings.append(f"{self.n_rejected} sounds off the step grid (knocks, voices, another clock) were ignored")
         if abs(dc) > 0.05:
             warnings.append(f"the recording has a DC offset of {dc:+.3f} full scale (removed before analysis)")
+        warnings += diag.get("warnings", [])
         if self.gaps:
             warnings.append(f"{len(self.gaps)} gaps in the audio ({sum(b - a for a, b in self.gaps):.2f} s lost); "
                             "steps there are not counted as missed")
@@ -276,7 +297,7 @@ class Analyzer:
             channel=self.channel,
             step_interval_s=tr.nominal_s if pattern == "stepping" else None,
             measured_interval_s=tr.measured_s,
-            pattern=pattern,
+            sound=pattern,
             steps_detected=n_steps,
             missed_steps=self.missed_t.n,
             missed_step_times_s=[float(v) for v in self.missed_t.values],
@@ -293,8 +314,121 @@ class Analyzer:
             warnings=warnings,
             residuals_us=res_us,
             residual_times_s=res_t,
-            extras={"alternation_us": asym_us, "coherence": tr.coherence},
+            extras={"alternation_us": asym_us, "coherence": tr.coherence, **diag.get("json", {}),
+                    "diagnosis": diag.get("lines", [])},
         )
+
+    def _diagnose(self, rate: RateEstimate | None) -> dict:
+        """Quartz diagnostics (see core/diagnose.py): rate over whole inhibition periods and the reading."""
+        tr = self.tracker
+        nominal = tr.nominal_s
+        good = self._good_steps()
+        k, t = self.step_k.values[good], self.step_t.values[good]
+        out: dict = {"json": {}, "lines": [], "warnings": []}
+        js, lines = out["json"], out["lines"]
+        if rate is None or nominal is None:
+            return out
+        cp, cu = self.clock_ppm or 0.0, self.clock_ppm_u95
+        b = dg.detect_bursts(self.step_k.values, self.sec_k.values, self.sec_delay.values, nominal)
+        inh = None if b else dg.detect_inhibition(k, t, nominal, clock_ppm=cp, clock_ppm_u95=cu)
+        provisional = False
+        if inh is not None and math.isfinite(inh.regulated_rate_s_per_day):
+            out["rate"] = dataclasses.replace(rate, rate_s_per_day=inh.regulated_rate_s_per_day,
+                                              ci95_s_per_day=inh.regulated_ci95_s_per_day)
+            js["inhibition"] = {
+                "period_s": _r(inh.period_s, 3), "correction_us": _r(inh.correction_us, 2),
+                "correction_ci95_us": _r(inh.correction_ci95_us, 2), "pulses_32768": _r(inh.pulses_32768, 2),
+                "pulses_8192": _r(inh.pulses_8192, 2), "crystal_rate_s_per_day": _r(inh.crystal_rate_s_per_day, 4),
+                "regulated_rate_s_per_day": _r(inh.regulated_rate_s_per_day, 5), "periods_observed": inh.periods_observed}
+            lines.append(f"logic regulation: every {inh.period_s:g} s one step comes {inh.correction_us:.1f} µs late "
+                         f"(≈ {inh.pulses_32768:.1f} pulses of 32768 Hz); the crystal alone "
+                         f"{'gains' if inh.crystal_rate_s_per_day >= 0 else 'loses'} {abs(inh.crystal_rate_s_per_day):.2f} s/day, "
+                         f"regulated {inh.regulated_rate_s_per_day:+.3f} s/day over {inh.periods_observed} whole periods")
+            if inh.periods_observed < 2:
+                provisional = True
+        else:
+            js["inhibition"] = None
+            if rate.span_s < 2 * dg.LONGEST_KNOWN_PERIOD_S:
+                # an unseen correction could still come: widen the interval by its largest usual size
+                provisional = True
+                sys_ = SECONDS_PER_DAY * dg.UNSEEN_CORRECTION_S / max(rate.span_s, 1.0)
+                out["rate"] = dataclasses.replace(rate, ci95_s_per_day=math.hypot(rate.ci95_s_per_day, sys_))
+        js["rate_provisional"] = provisional
+        js["rate_ci95_statistical_s_per_day"] = _r(rate.ci95_s_per_day, 6)
+        if provisional:
+            need = max(0.0, 2 * dg.LONGEST_KNOWN_PERIOD_S - rate.span_s)
+            out["warnings"].append(f"the rate is provisional: logic-regulated movements correct once every 60 or 120 s, "
+                                   f"so record {need:.0f} s more (4 minutes in all) to see whole correction periods")
+        # stepping pattern
+        js["pattern"] = "burst" if b else "regular"
+        js["burst_period_s"] = b.burst_period_s if b else None
+        js["steps_per_burst"] = b.steps_per_burst if b else None
+        if b:
+            js["steps_in_bursts"] = int(self.step_k.n + self.sec_k.n)
+        if b:
+            out["warnings"].append(f"end-of-life stepping: {b.steps_per_burst} steps every {b.burst_period_s:g} s — "
+                                   "replace the cell (keep button cells away from children)")
+            lines.append(f"the cell is at end of life: the circuit steps in bursts of {b.steps_per_burst} every "
+                         f"{b.burst_period_s:g} s ({b.spacing_ms:.0f} ms apart); the rate above is burst to burst")
+        # failed steps, correction pulses
+        fk = self.failed_k.values
+        ck = set(int(v) for v in self.correction_k.values)
+        mk = set(int(v) for v in self.missed_k.values)
+        lost_steps = sum(0 if int(x) in ck else (2 if int(x) + 1 in mk else 1) for x in fk)
+        span = max(rate.span_s, 1.0)
+        js["failed_steps"] = int(len(fk))
+        js["failed_step_times_s"] = [round(float(v), 6) for v in self.failed_t.values]
+        js["seconds_lost"] = round(lost_steps * nominal, 3)
+        js["seconds_lost_per_day"] = _r(lost_steps * nominal / span * SECONDS_PER_DAY, 2)
+        js["correction_pulses"] = len(ck)
+        if len(fk):
+            lines.append(f"the motor failed {len(fk)} steps ({len(ck)} recovered by a correction pulse), losing "
+                         f"{lost_steps * nominal:g} s — about {lost_steps * nominal / span * SECONDS_PER_DAY:.0f} s/day at this "
+                         "rate of failure: the motor works at its margin (worn or dirty train, thick oil, weak cell)")
+        if ck:
+            out["warnings"].append(f"{len(ck)} correction pulses: the movement is working at its margin")
+        # drive levels
+        levels, changes = dg.drive_levels(self.step_peak.values)
+        js["drive_levels"] = ({"levels_dbfs": [round(lv.level_dbfs, 1) for lv in levels],
+                               "shares": [round(lv.share, 3) for lv in levels], "changes": changes}
+                              if len(levels) >= 2 else None)
+        if len(levels) >= 2:
+            lines.append(f"{len(levels)} drive levels heard ({', '.join(f'{lv.level_dbfs:.0f} dBFS' for lv in levels)}), "
+                         f"{changes} changes: an adaptive motor drive, not a fault by itself")
+        # anomalies locked to a wheel position
+        rk = self.step_k.values[(self.step_flags.values & _FLAG_BITS["ringdown"]) != 0]
+        anomalies = np.unique(np.concatenate([fk, np.array(sorted(ck), dtype=np.int64), rk]))
+        k_all = self.step_k.values
+        pl = dg.position_locked(anomalies, int(k_all.max() - k_all.min()) if len(k_all) else 0)
+        js["position_locked"] = ({"period_steps": pl.period_steps, "positions": pl.positions, "count": pl.count}
+                                 if pl else None)
+        if pl:
+            lines.append(f"anomalies repeat at step {', '.join(map(str, pl.positions))} of every {pl.period_steps} "
+                         f"({pl.count} times, counted from the first step heard): look for a damaged tooth or a hand "
+                         "touching the dial, another hand or the glass there")
+        # polarity asymmetry
+        pa = dg.polarity_asymmetry(k, t)
+        if pa:
+            js["polarity_asymmetry_us"] = _r(pa[0], 2)
+            js["polarity_asymmetry_ci95_us"] = _r(pa[1], 2)
+            rd = self.summary_ringdown_diff()
+            js["ringdown_polarity_diff_ms"] = _r(rd, 3) if rd is not None else None
+            # the two polarities' templates are aligned by their envelopes; on simulated movements
+            # whose polarities ring 3 % apart that alignment leaves up to ~110 us, so only a
+            # difference well beyond it is reported as uneven stepping
+            if abs(pa[0]) > max(2 * pa[1], ASYMMETRY_FLOOR_US):
+                lines.append(f"the two coil polarities step unevenly (A→B minus B→A {pa[0]:+.0f} ± {pa[1]:.0f} µs): "
+                             "the rotor may sit off-centre in its detent, or one polarity drives weaker (common "
+                             "practice, no source)")
+        return out
+
+    def summary_ringdown_diff(self) -> float | None:
+        d = self.step_decay.values
+        p = self.step_pol.values
+        a, b = d[(p == 0) & np.isfinite(d)], d[(p == 1) & np.isfinite(d)]
+        if len(a) < 3 or len(b) < 3:
+            return None
+        return float(np.median(b) - np.median(a))
 
     def _alternation_us(self) -> float | None:
         """Mean A->B interval minus mean B->A interval (us), from consecutive steps."""
@@ -328,6 +462,10 @@ class Analyzer:
             if lvl >= 15 and (best[1] is None or lvl > best[1]):
                 best = (hz, lvl)
         return best
+
+
+def _r(v, digits):
+    return None if v is None or not math.isfinite(v) else round(float(v), digits)
 
 
 _FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8}

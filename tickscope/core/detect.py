@@ -263,10 +263,7 @@ class ImpactDetector:
             if fi - self._last_onset_frame < self.refractory_frames:
                 continue
             self._last_onset_frame = fi + ns - 1
-            j = P + int(c)
-            seg = ext[j - ns + 1: j + 6]
-            snr = 10 * math.log10(max(float(np.max(seg)), 1e-30) / max(floor, 1e-30))
-            self._waiting.append((fi * self.hop, snr))
+            self._waiting.append((fi * self.hop, floor))
         self._append_raw(x)
         self._consumed += len(x)
         return self._emit_ready(final=False)
@@ -292,14 +289,28 @@ class ImpactDetector:
         return out
 
     def _cut(self, onset: int, snr: float) -> Impact:
+        """The impact's snippet and levels (``snr`` comes in as the floor's power, goes out in dB)."""
         a = onset - self.pre
         b = onset + self.post
         ra = max(a, self._raw_start)
         rb = min(b, self._raw_start + len(self._raw))
         raw = np.zeros(b - a, dtype=np.float64)
         raw[ra - a: rb - a] = self._raw[ra - self._raw_start: rb - self._raw_start]
-        peak = float(np.max(np.abs(raw))) if len(raw) else 0.0
-        clipped = _flat_top(raw, peak)
+        # the level of this impact only: the first 10 ms (a later sound in the snippet is another impact)
+        head = raw[max(0, self.pre - int(0.001 * self.samplerate)): self.pre + int(0.010 * self.samplerate)]
+        peak = float(np.max(np.abs(head))) if len(head) else 0.0
+        clipped = _flat_top(head, peak)
+        # level over the floor, measured the way the floor was (lagged difference, frame energy)
+        # on the first 10 ms of this impact
+        lag = self.lag or 1
+        hd = raw[self.pre - int(0.001 * self.samplerate): self.pre + int(0.010 * self.samplerate)].astype(np.float32)
+        if len(hd) > lag + self.hop:
+            dd = hd[lag:] - hd[:-lag]
+            m = (len(dd) // self.hop) * self.hop
+            fe = np.einsum("ij,ij->i", dd[:m].reshape(-1, self.hop), dd[:m].reshape(-1, self.hop)) / self.hop
+            snr = 10 * math.log10(max(float(fe.max()), 1e-30) / max(snr, 1e-30))
+        else:
+            snr = 0.0
         hp = signal.sosfiltfilt(self._sos, raw) if len(raw) > 30 else raw
         wh = signal.lfilter(self.whitener, [1.0], hp) if len(self.whitener) > 1 else hp
         return Impact(

@@ -28,8 +28,9 @@ from .timing import Template, envelope_lag, learn_template, match, onset_of
 
 #: Step intervals of quartz movements (s): 2^-k fractions of a second for stepping
 #: sweep hands, and the PCA2002 output periods 1, 5, 10, 20, 30 s (NXP PCA2002
-#: datasheet Rev. 8, Table 7) plus 2 s and 60 s (common practice).
-QUARTZ_INTERVALS_S = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0, 2.0, 5.0, 10.0, 20.0, 30.0, 60.0)
+#: datasheet Rev. 8, Table 7) plus 2 s and 60 s (common practice), and 4 s: the end-of-life
+#: burst period of the Philips PCA16xx ("bursts of 4 pulses are produced every 4 s").
+QUARTZ_INTERVALS_S = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0, 2.0, 4.0, 5.0, 10.0, 20.0, 30.0, 60.0)
 
 
 @dataclass(frozen=True)
@@ -41,10 +42,14 @@ class TrackerConfig:
     nominal_tolerance: float = 0.005  # measured interval within 0.5 % of a quartz interval
     slot_tolerance_s: float = 0.025  # a step lies within 25 ms of its predicted time
     cluster_s: float = 0.12  # impacts up to 120 ms after a step are part of its sound
+    burst_cluster_s: float = 0.35  # the same for step intervals of 2 s and more (bursts)
     min_match: float = 0.3  # below this correlation a sound is not this movement's step
     good_match: float = 0.6  # steps below this are flagged and kept out of the rate fit
     template_steps: int = 24  # steps per polarity averaged into a template
     track_steps: int = 32  # steps in the moving line fit that predicts the next slot
+    weak_db: float = 9.0  # a step this much quieter than usual is a failed step (a twitch)
+    correction_min_s: float = 0.008  # a correction pulse follows a failed step after 8 ...
+    correction_max_s: float = 0.085  # ... to 85 ms
 
 
 def find_interval(times_s: np.ndarray, weights: np.ndarray | None = None, *,
@@ -109,7 +114,8 @@ class _Open:
     imp: Impact
     t_s: float  # best time estimate (coarse until templates exist)
     slot: int | None = None
-    match: float = float("nan")
+    match: float = float("nan")  # against the template of its slot's polarity
+    match_any: float = float("nan")  # against either polarity's template
 
 
 class StepTracker:
@@ -134,6 +140,7 @@ class StepTracker:
         self._last_step_t = -math.inf
         self._gaps: list[tuple[float, float]] = []
         self._next_try_s = -math.inf
+        self._peaks: deque = deque(maxlen=64)  # levels of recent steps (what a normal step sounds like)
 
     # -- public -------------------------------------------------------------------------
     def add_gap(self, start_s: float, end_s: float) -> None:
@@ -206,10 +213,14 @@ class StepTracker:
         P, phase, coh = found
         # one step per slot: the earliest strong impact near each grid point
         tol = min(0.2 * P, 0.06)
+        # the coherence phase is a weighted mean over the whole sound of a slot (a bounce, or a
+        # burst of steps), so the slot's first sound may lie well before it
+        back = min(0.25 * P, 0.35) if P >= 1.5 else tol
         near: dict[int, list[_Open]] = {}
         for o in buf:
-            k = int(round((o.t_s - phase) / P))
-            if abs(o.t_s - (phase + k * P)) <= tol:
+            k = int(round((o.t_s - phase + 0.5 * (back - tol)) / P))
+            r = o.t_s - (phase + k * P)
+            if -back <= r <= tol:
                 near.setdefault(k, []).append(o)
         chosen: dict[int, _Open] = {}
         for k, group in near.items():
@@ -245,7 +256,8 @@ class StepTracker:
             src = by_pol[0] or by_pol[1]
             self.templates[0] = learn_template(src, self.fs, pre=self.pre)
         for pol in (0, 1):
-            self.templates.setdefault(pol, self.templates[1 - pol])
+            if pol not in self.templates:
+                self.templates[pol] = self.templates[1 - pol]
         if self.templates[1] is not self.templates[0]:
             # Each template's onset came from its own envelope threshold, which noise or a
             # phone's gain control can push around.  Tie B's onset to A's by aligning the
@@ -282,9 +294,13 @@ class StepTracker:
         o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag) / self.fs
         o.match = rho
         o.slot = k
+        other = self.templates[1 - (k % 2 if k >= 0 else 0)]
+        o.match_any = rho if other is tmpl else max(rho, match(o.imp.wsnippet, other, max_lag=int(0.003 * self.fs))[1])
 
     def _window_after(self) -> float:
-        return max(self.cfg.slot_tolerance_s, min(self.cfg.cluster_s, 0.6 * self._b))
+        # long intervals (end-of-life bursts every 2-4 s) gather up to 0.35 s of sound per slot
+        cluster = self.cfg.cluster_s if self._b < 1.5 else self.cfg.burst_cluster_s
+        return max(self.cfg.slot_tolerance_s, min(cluster, 0.6 * self._b))
 
     def _decide(self, position_s: float, final: bool = False) -> list[Event]:
         out: list[Event] = []
@@ -305,18 +321,39 @@ class StepTracker:
         cfg = self.cfg
         tol = min(cfg.slot_tolerance_s, 0.2 * self._b)
         out: list[Event] = []
-        cands = [o for o in self._open if abs(o.t_s - pred) <= tol and o.match >= cfg.min_match]
+        in_slot = [o for o in self._open if abs(o.t_s - pred) <= tol]
+        cands = [o for o in in_slot if o.match >= cfg.min_match]
         step = None
         if cands:
             best = max(o.match for o in cands)
             good = [o for o in cands if o.match >= best - 0.1]
             step = min(good, key=lambda o: o.t_s)
+        # A failed step: the rotor only twitches (a weak sound at the slot); some circuits
+        # then send a stronger correction pulse 10-80 ms later.  A hand's bounce on every
+        # step is not this: it follows a step that sounded normal.
+        failed = correction = None
+        typical = float(np.median(self._peaks)) if len(self._peaks) >= 8 else None
+        if step is not None and step.t_s - pred > cfg.correction_min_s:
+            early = [o for o in in_slot if o.t_s < step.t_s - 0.005]
+            if early:
+                failed, correction, step = min(early, key=lambda o: o.t_s), step, None
+        elif step is not None and typical is not None and step.imp.peak_dbfs < typical - cfg.weak_db:
+            failed, step = step, None
+        if step is None and typical is not None:
+            if failed is None and in_slot:
+                failed = min(in_slot, key=lambda o: o.t_s)
+            if failed is not None and correction is None:
+                cors = [o for o in self._open if failed.t_s + cfg.correction_min_s <= o.t_s <= failed.t_s + cfg.correction_max_s
+                        and o.match >= cfg.good_match and o.imp.peak_dbfs > failed.imp.peak_dbfs + 3]
+                if cors:
+                    correction = min(cors, key=lambda o: o.t_s)
         after = self._window_after()
+        anchor = step or correction or failed
         rest = []
         for o in self._open:
-            if o is step:
+            if o is step or o is failed or o is correction:
                 continue
-            if step is not None and step.t_s < o.t_s <= step.t_s + after:
+            if anchor is not None and anchor.t_s < o.t_s <= anchor.t_s + after:
                 out.append(self._event(o, "secondary", k))
             elif o.t_s <= pred + after:
                 if self._last_step_t < o.t_s <= self._last_step_t + after:
@@ -326,9 +363,18 @@ class StepTracker:
             else:
                 rest.append(o)
         self._open = rest
-        if step is not None:
+        if failed is not None:
+            out.insert(0, Event("failed", failed.t_s, step=k, polarity="AB"[k % 2], peak_dbfs=failed.imp.peak_dbfs,
+                                snr_db=failed.imp.frame_snr_db, match=failed.match, flags=("failed",)))
+            if correction is not None:
+                out.insert(1, Event("correction", correction.t_s, step=k, polarity="AB"[k % 2],
+                                    peak_dbfs=correction.imp.peak_dbfs, snr_db=correction.imp.frame_snr_db,
+                                    match=correction.match, flags=("correction",)))
+                self._last_step_t = correction.t_s
+        elif step is not None:
             out.insert(0, self._step_event(step, k, out))
             self._last_step_t = step.t_s
+            self._peaks.append(step.imp.peak_dbfs)
             if step.match >= cfg.good_match:
                 self._fit.append((k, step.t_s))
                 if len(self._fit) >= 3:
@@ -372,7 +418,7 @@ class StepTracker:
 
     def _event(self, o: _Open, kind: str, k: int | None) -> Event:
         return Event(kind, o.t_s, step=k, peak_dbfs=o.imp.peak_dbfs, snr_db=o.imp.frame_snr_db,
-                     match=o.match, flags=(kind,) if kind != "step" else ())
+                     match=o.match_any, flags=(kind,) if kind != "step" else ())
 
     def _reject(self, o: _Open) -> Event:
         return self._event(o, "rejected", None)

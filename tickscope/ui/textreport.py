@@ -77,12 +77,12 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
     parts: list[RenderableType] = []
     r = s.rate
     head = Text()
-    if s.pattern == "stepping" and r is not None:
+    if s.sound == "stepping" and r is not None:
         head.append("The movement ", style="bold")
         head.append(rate_words(r.rate_s_per_day), style="bold green" if abs(r.rate_s_per_day) < 0.5 else "bold yellow")
         head.append(f"  ± {r.ci95_s_per_day:.3f} s/day (95 %)", style="bold")
         head.append(f"  over {r.n_steps} steps in {r.span_s:.0f} s")
-    elif s.pattern == "not-stepping":
+    elif s.sound == "not-stepping":
         head.append("Not a quartz stepping pattern", style="bold yellow")
         head.append(f" — beat interval heard {_fmt(s.measured_interval_s, '.5f', ' s')}; no rate claimed")
     else:
@@ -102,6 +102,19 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
         tab.add_row("step interval", f"{s.step_interval_s:g} s", f"measured {s.measured_interval_s:.9f} s")
         tab.add_row("timing jitter", f"{r.jitter_us:.2f} µs", "RMS residual from the fitted line")
         tab.add_row("polarity offset", f"{r.polarity_offset_us:+.2f} µs", "B steps relative to A steps")
+    ex = s.extras
+    inh = ex.get("inhibition")
+    if inh:
+        tab.add_row("logic regulation", f"{inh['correction_us']:.1f} µs", f"every {inh['period_s']:g} s "
+                    f"(≈ {inh['pulses_32768']:.1f} pulses of 32768 Hz); crystal alone {inh['crystal_rate_s_per_day']:+.3f} s/day")
+    elif r is not None and "inhibition" in ex:
+        tab.add_row("logic regulation", "none heard", "provisional: record 4 min" if ex.get("rate_provisional") else "")
+    if ex.get("pattern") == "burst":
+        tab.add_row("stepping", "bursts", f"{ex['steps_per_burst']} steps every {ex['burst_period_s']:g} s: cell at end of life")
+    if ex.get("failed_steps"):
+        tab.add_row("failed steps", str(ex["failed_steps"]), f"{ex['correction_pulses']} corrected; {ex['seconds_lost']:g} s lost")
+    if "polarity_asymmetry_us" in ex:
+        tab.add_row("A→B − B→A", f"{ex['polarity_asymmetry_us']:+.1f} µs", f"± {ex['polarity_asymmetry_ci95_us']:.1f} (95 %)")
     tab.add_row("steps heard", f"{s.steps_detected}", f"{r.n_outliers} outliers left out of the fit" if r else "")
     miss = ", ".join(f"{t:.1f}" for t in s.missed_step_times_s[:6]) + (" …" if s.missed_steps > 6 else "")
     tab.add_row("missed steps", f"{s.missed_steps}", f"at {miss} s" if s.missed_steps else "none on the grid")
@@ -127,11 +140,14 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
                        str(v.n), str(v.n_abnormal))
         parts.append(Text("ring-down (amplitude e-folding time)", style="bold"))
         parts.append(rt)
-    for k in ("diagnosis",):
-        if s.extras.get(k):
-            parts.append(Text(k, style="bold"))
-            for line in s.extras[k]:
-                parts.append(Text("  • " + line))
+    if s.extras.get("diagnosis"):
+        parts.append(Text("the repairer's reading", style="bold"))
+        for line in s.extras["diagnosis"]:
+            parts.append(Text("  • " + line))
+        if any(w in " ".join(s.extras["diagnosis"]) for w in ("cell", "margin", "tooth")):
+            parts.append(Text("  Before opening the case or changing the cell: keep button cells away from children, "
+                              "expect to re-test a water-resistant case, unplug mains clocks, work antistatic.",
+                              style="dim"))
     if s.warnings:
         parts.append(Text("notes", style="bold"))
         for w in s.warnings:

@@ -1,0 +1,257 @@
+"""Quartz movement diagnostics from the step record (pure functions over arrays).
+
+* Inhibition (logic regulation): once per period the divider swallows oscillator pulses,
+  so one step interval is longer by n/32768 s (or n/8192 s) and the others are short:
+  the crystal runs fast on purpose (NXP PCA2002 datasheet Rev. 8, word A: "number of the
+  8192 Hz pulses to be removed", calibration period 1 or 2 minutes; Philips PCA16xx:
+  "Every minute a jitter occurs as a result of time calibration").
+* End-of-life stepping: steps in bursts (PCA16xx: "bursts of 4 pulses are produced every
+  4 s"; two steps every 2 s is also documented in consumer watch manuals).
+* Failed steps, correction pulses, adaptive drive levels, anomalies locked to a wheel's
+  position, polarity asymmetry; and the plain-words reading built from them.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from ..units import CRYSTAL_HZ, SECONDS_PER_DAY
+from .rate import fit_rate
+
+#: Longest logic-regulation period in the watch-IC datasheets we know (PCA2002: 2 minutes).
+LONGEST_KNOWN_PERIOD_S = 120.0
+#: Largest correction a crystal within +-20 ppm needs per 120 s period (20e-6 * 120 s = 2.4 ms;
+#: +-20 ppm is the usual tuning-fork crystal tolerance, CTS TF20 / Epson FC-135 datasheets).
+UNSEEN_CORRECTION_S = 20e-6 * LONGEST_KNOWN_PERIOD_S
+
+
+@dataclass(frozen=True)
+class Inhibition:
+    period_s: float
+    period_steps: int
+    correction_us: float
+    correction_ci95_us: float
+    pulses_32768: float
+    pulses_8192: float
+    crystal_rate_s_per_day: float
+    regulated_rate_s_per_day: float
+    regulated_ci95_s_per_day: float
+    periods_observed: int
+    z_score: float
+    phase_step: int  # step number (mod period) whose interval carries the correction
+
+
+def detect_inhibition(k: np.ndarray, t: np.ndarray, nominal_s: float, *, clock_ppm: float = 0.0,
+                      clock_ppm_u95: float = 0.0, z_min: float = 7.0, min_periods: int = 2) -> Inhibition | None:
+    """Find a periodic lengthening of one step interval (logic regulation).
+
+    The intervals of consecutive steps are folded at every candidate period M (2 s up to a
+    fifth of the record, in steps); at the true period one phase holds all corrections.
+    The score is that phase's mean excess over the other phases in standard errors; the
+    period with the highest score wins, and it must exceed ``z_min`` (many periods and
+    phases are tried, so the bar is high).
+    """
+    k = np.asarray(k)
+    t = np.asarray(t, dtype=np.float64)
+    if len(k) < 20:
+        return None
+    adj = np.flatnonzero(np.diff(k) == 1)
+    if len(adj) < 20:
+        return None
+    d = t[adj + 1] - t[adj]
+    kd = k[adj + 1]  # the interval ending at step kd
+    # the two coil polarities may sound a little apart: remove the A->B / B->A difference first
+    par = kd % 2
+    if np.any(par == 0) and np.any(par == 1):
+        m0, m1, mall = np.mean(d[par == 0]), np.mean(d[par == 1]), np.mean(d)
+        d = d - np.where(par == 0, m0, m1) + mall
+    span_steps = int(k.max() - k.min())
+    best = None
+    max_m = max(2, (span_steps + 1) // 5)
+    step_s = nominal_s
+    # Periods from 3 steps up: a 2-step period cannot be told from the two polarities sounding apart.
+    for m in range(max(3, int(math.ceil(2.0 / step_s))), max_m + 1):
+        ph = kd % m
+        sums = np.bincount(ph, weights=d, minlength=m)
+        cnt = np.bincount(ph, minlength=m)
+        ok = cnt > 0
+        if ok.sum() < 2:
+            continue
+        means = np.where(ok, sums / np.maximum(cnt, 1), -np.inf)
+        j = int(np.argmax(means))
+        if cnt[j] < min_periods:
+            continue
+        others = (ph != j)
+        dj, do = d[ph == j], d[others]
+        excess = float(dj.mean() - do.mean())
+        if m % 2 == 0:
+            excess /= 1.0 - 2.0 / m  # the polarity step above took 2/m of it away
+        # within-group scatter: at a wrong period the corrections spread over the phases and
+        # inflate it; at the true period both groups are as tight as the timing jitter
+        floor2 = (0.1e-6) ** 2
+        se = math.sqrt(max(dj.var(), floor2) / len(dj) + max(do.var(), floor2) / len(do))
+        z = excess / se
+        if best is None or z > best[0]:
+            best = (z, m, j, excess, se)
+    if best is None or best[0] < z_min:
+        return None
+    # The smallest correction a 32768 Hz divider can make is one pulse, 30.5 us; anything
+    # under half of that is not logic regulation.
+    if best[3] < 0.5 / CRYSTAL_HZ:
+        return None
+    z, m, j, excess, se = best
+    # One least-squares model of the step times: t = a + b_fast k + J n(k) + c [k odd], with
+    # n(k) the number of corrections before step k.  The regulated (mean) interval is
+    # b_fast + J/m, and its variance comes from the model's covariance.
+    kk = k.astype(np.float64)
+    ncorr = np.floor((k - j) / m) - np.floor((k.min() - j) / m)
+    X = np.vstack([np.ones_like(kk), kk - kk.mean(), ncorr - ncorr.mean(), (k % 2) - 0.5]).T
+    coef, *_ = np.linalg.lstsq(X, t, rcond=None)
+    res = t - X @ coef
+    dof = max(len(t) - 4, 1)
+    s2 = float(res @ res) / dof
+    cov = np.linalg.pinv(X.T @ X) * s2
+    g = np.array([0.0, 1.0, 1.0 / m, 0.0])  # d(mean interval)/d(coef)
+    mean_iv = coef[1] + coef[2] / m
+    var_iv = float(g @ cov @ g)
+    scale = 1.0 + clock_ppm * 1e-6
+    reg = SECONDS_PER_DAY * (nominal_s * scale / mean_iv - 1)
+    q = float(stats.t.ppf(0.975, dof))
+    reg_ci = math.hypot(q * math.sqrt(var_iv) * SECONDS_PER_DAY * nominal_s * scale / mean_iv**2,
+                        clock_ppm_u95 * 1e-6 * SECONDS_PER_DAY)
+    reg_ci = max(reg_ci, 0.001)
+    crystal = SECONDS_PER_DAY * (nominal_s * scale / coef[1] - 1)
+    excess = float(coef[2])
+    se = math.sqrt(float(cov[2, 2]))
+    J = excess
+    return Inhibition(
+        period_s=m * nominal_s,
+        period_steps=m,
+        correction_us=J * 1e6,
+        correction_ci95_us=1.96 * se * 1e6,
+        pulses_32768=J * CRYSTAL_HZ,
+        pulses_8192=J * 8192,
+        crystal_rate_s_per_day=crystal,
+        regulated_rate_s_per_day=reg,
+        regulated_ci95_s_per_day=reg_ci,
+        periods_observed=int(np.count_nonzero((kd % m) == j)),
+        z_score=float(z),
+        phase_step=j,
+    )
+
+
+@dataclass(frozen=True)
+class Bursts:
+    steps_per_burst: int
+    burst_period_s: float
+    spacing_ms: float
+
+
+def detect_bursts(step_k: np.ndarray, sec_k: np.ndarray, sec_delay_s: np.ndarray, interval_s: float) -> Bursts | None:
+    """Steps delivered in groups: every slot of a 2-4 s grid holds 1-3 more step-like sounds at a fixed spacing."""
+    if interval_s < 1.5 or len(step_k) < 3:
+        return None
+    if not len(sec_k):
+        return None
+    per_slot = np.array([np.count_nonzero(sec_k == kk) for kk in step_k])
+    extra = int(np.median(per_slot))
+    if extra < 1 or np.mean(per_slot == extra) < 0.7:
+        return None
+    n = extra + 1
+    if abs(interval_s / n - 1.0) > 0.02:  # bursts of n one-second steps every n seconds
+        return None
+    firsts = [float(np.min(sec_delay_s[sec_k == kk])) for kk in step_k if np.any(sec_k == kk)]
+    return Bursts(n, interval_s, float(np.median(firsts)) * 1e3)
+
+
+@dataclass(frozen=True)
+class DriveLevel:
+    level_dbfs: float
+    share: float
+    steps: int
+
+
+def drive_levels(peaks_dbfs: np.ndarray, *, min_gap_db: float = 2.0, min_share: float = 0.05) -> tuple[list[DriveLevel], int]:
+    """Cluster step levels into drive levels; returns the levels and the number of level changes."""
+    p = np.asarray(peaks_dbfs, dtype=np.float64)
+    p = p[np.isfinite(p)]
+    if len(p) < 10:
+        return [], 0
+    order = np.sort(p)
+    gaps = np.flatnonzero(np.diff(order) >= min_gap_db)
+    edges = [order[0] - 1] + [0.5 * (order[g] + order[g + 1]) for g in gaps] + [order[-1] + 1]
+    levels = []
+    for a, b in zip(edges[:-1], edges[1:]):
+        sel = (p > a) & (p <= b)
+        if sel.sum() >= max(3, min_share * len(p)):
+            levels.append(DriveLevel(float(np.median(p[sel])), float(sel.mean()), int(sel.sum())))
+    if len(levels) < 2:
+        return levels, 0
+    centers = np.array([lv.level_dbfs for lv in levels])
+    lab = np.argmin(np.abs(np.asarray(peaks_dbfs)[:, None] - centers[None, :]), axis=1)
+    # count changes that last at least 5 steps
+    changes = 0
+    cur = lab[0]
+    run = 0
+    for v in lab[1:]:
+        if v != cur:
+            run += 1
+            if run >= 5:
+                changes += 1
+                cur = v
+                run = 0
+        else:
+            run = 0
+    return levels, changes
+
+
+@dataclass(frozen=True)
+class PositionLock:
+    period_steps: int
+    positions: list[int]
+    count: int
+
+
+def position_locked(anomaly_k: np.ndarray, span_steps: int, *, periods=(60,), min_count: int = 3) -> PositionLock | None:
+    """Anomalies that repeat at the same step number modulo a wheel's revolution.
+
+    Chance coincidence is judged with a binomial tail: with n anomalies spread over P
+    positions, how likely is one position to collect this many?
+    """
+    a = np.asarray(anomaly_k, dtype=np.int64)
+    if len(a) < min_count:
+        return None
+    best = None
+    for P in periods:
+        if span_steps < 2 * P:
+            continue
+        cnt = np.bincount(a % P, minlength=P)
+        top = np.flatnonzero(cnt >= max(min_count, 0.25 * len(a)))
+        if not len(top):
+            continue
+        c = int(cnt[top].sum())
+        # probability that some position gets >= max count by chance
+        pval = min(1.0, P * float(stats.binom.sf(int(cnt.max()) - 1, len(a), 1.0 / P)))
+        if pval < 1e-3 and (best is None or c > best.count):
+            best = PositionLock(P, [int(x) for x in top], c)
+    return best
+
+
+def polarity_asymmetry(k: np.ndarray, t: np.ndarray) -> tuple[float, float] | None:
+    """Mean A->B interval minus mean B->A interval (us) and its 95 % half-width."""
+    k = np.asarray(k)
+    t = np.asarray(t, dtype=np.float64)
+    adj = np.flatnonzero(np.diff(k) == 1)
+    if len(adj) < 8:
+        return None
+    d = t[adj + 1] - t[adj]
+    from_a = (k[adj] % 2) == 0
+    a, b = d[from_a], d[~from_a]
+    if len(a) < 3 or len(b) < 3:
+        return None
+    diff = float(a.mean() - b.mean())
+    se = math.sqrt(a.var(ddof=1) / len(a) + b.var(ddof=1) / len(b))
+    return diff * 1e6, 1.96 * se * 1e6
