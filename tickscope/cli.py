@@ -139,6 +139,112 @@ def cmd_simulate(args) -> int:
     return 0
 
 
+def cmd_devices(args) -> int:
+    from .io.capture import list_devices
+
+    devs = list_devices()
+    if args.json:
+        sys.stdout.write(json.dumps([dataclasses.asdict(d) for d in devs], indent=1) + "\n")
+        return 0
+    from rich.table import Table
+
+    t = Table(title="input devices", title_justify="left")
+    for c in ("", "index", "name", "host API", "default rate", "channels"):
+        t.add_column(c)
+    for d in devs:
+        t.add_row("*" if d.is_default else "", str(d.index), d.name, d.hostapi, f"{d.default_samplerate_hz:g} Hz",
+                  str(d.input_channels))
+    con = _console()
+    if not devs:
+        con.print("no input devices found (is a microphone connected, and the sound server running?)")
+        return 2
+    con.print(t)
+    con.print("[dim]* = default input; choose with --device INDEX or a part of the name[/dim]")
+    return 0
+
+
+def cmd_listen(args) -> int:
+    import time
+
+    from .errors import DeviceError
+    from .export import summary_to_dict
+    from .io.audiofile import LiveRecorder
+    from .io.capture import Capture, resolve_device
+    from .pipeline import Analyzer
+
+    if not 8000 <= args.rate_hz <= 192000:
+        raise ParameterError(f"--rate-hz {args.rate_hz}: expected 8000..192000")
+    dev = resolve_device(args.device)
+    clock_ppm, clock_u = args.clock_ppm if args.clock_ppm is not None else (None, 0.0)
+    an = Analyzer(args.rate_hz, channel=args.channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u)
+    rec = LiveRecorder(args.save, args.rate_hz) if args.save else None
+    cap = Capture(dev, args.rate_hz, channel=args.channel)
+    src = args.device if args.device is not None else "default input"
+    stop_note = None
+    level = -120.0
+    t0 = time.monotonic()
+    live = None
+    try:
+        with cap:
+            if not args.json:
+                from rich.live import Live
+
+                from .ui.dashboard import LiveStatus, render_live
+
+                con = _console()
+                live = Live(console=con, refresh_per_second=4, transient=False, auto_refresh=False)
+                live.start()
+            last_draw = 0.0
+            peak_win: list[tuple[float, float]] = []
+            for b in cap.blocks():
+                an.feed(b)
+                if rec:
+                    rec.write(b)
+                now = time.monotonic()
+                pk = float(abs(b.samples).max()) if len(b.samples) else 0.0
+                peak_win = [(t, v) for t, v in peak_win if now - t < 0.5] + [(now, pk)]
+                level = 20 * __import__("math").log10(max(max(v for _, v in peak_win), 1e-6))
+                if live is not None and now - last_draw >= 0.5:
+                    st = LiveStatus(str(src), args.rate_hz, args.channel, an.duration_s, level,
+                                    cap.overflows + (1 if cap.dropped_frames else 0), args.save)
+                    live.update(render_live(an.summary(), st, width=min(con.width, 160)), refresh=True)
+                    last_draw = now
+                if args.duration and an.duration_s >= args.duration:
+                    break
+    except KeyboardInterrupt:
+        stop_note = "stopped by Ctrl-C"
+    except DeviceError as e:
+        stop_note = f"capture ended: {e}"
+    finally:
+        if live is not None:
+            live.stop()
+        if rec:
+            rec.close()
+    summary = an.finish()
+    if clock_ppm is not None:
+        summary.extras["clock_calibrated"] = True
+    summary.extras["capture"] = {"device": str(src), "overflows": cap.overflows, "dropped_frames": cap.dropped_frames,
+                                 "wall_seconds": round(time.monotonic() - t0, 3), "ended": stop_note or "completed"}
+    d = summary_to_dict(summary, source=f"device:{src}")
+    if args.save:
+        try:
+            with open(args.save + ".json", "w") as f:
+                json.dump(d, f, indent=1)
+        except OSError as e:
+            sys.stderr.write(f"tickscope: cannot write {args.save}.json: {e.strerror}\n")
+    if args.json:
+        sys.stdout.write(json.dumps(d, indent=1) + "\n")
+    else:
+        from .ui.textreport import render_summary
+
+        con = _console()
+        con.print(render_summary(summary, source=f"{src} (live)", width=con.width))
+    if stop_note and stop_note.startswith("capture ended"):
+        sys.stderr.write(f"tickscope: {stop_note}; everything up to then is kept\n")
+        return 2
+    return 0
+
+
 # ---------------------------------------------------------------------------------------------
 _SIM_HELP = {
     "samplerate_hz": "sample rate of the file, Hz",
@@ -234,6 +340,25 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--plot", metavar="PNG", help="draw the timing residuals and ring-downs to this PNG file")
     a.add_argument("--quiet", action="store_true", help="no progress bar")
     a.set_defaults(func=cmd_analyze)
+
+    d = sub.add_parser("devices", help="list audio input devices", description="List the audio input devices "
+                       "PortAudio can use: index, name, host API, default sample rate, channels; * marks the default.")
+    d.add_argument("--json", action="store_true", help="print the list as JSON")
+    d.set_defaults(func=cmd_devices)
+
+    li = sub.add_parser("listen", help="listen to a movement through a microphone, with a live screen",
+                        description="Capture from a microphone and analyze as the steps arrive: the same analysis as "
+                        "`analyze`, shown live; Ctrl-C ends with the final report.")
+    li.add_argument("--device", default=None, help="input device index or part of its name (default: the default input)")
+    li.add_argument("--rate-hz", type=int, default=48000, help="sample rate to ask the device for, Hz (default 48000)")
+    li.add_argument("--channel", type=int, default=0, help="input channel to analyze (default 0)")
+    li.add_argument("--duration", type=float, default=None, metavar="S", help="stop after S seconds of audio")
+    li.add_argument("--save", metavar="PATH", help="also record the audio (FLAC or WAV by extension), the per-block "
+                    "clock readings to PATH.blocks.csv and the summary to PATH.json")
+    li.add_argument("--clock-ppm", type=parse_ppm, default=None, metavar="X[+-U]",
+                    help="the device's clock runs fast by X ppm (95 %% uncertainty U); the rate is corrected")
+    li.add_argument("--json", action="store_true", help="no live screen; print the final summary as JSON")
+    li.set_defaults(func=cmd_listen)
 
     s = sub.add_parser("simulate", help="write a simulated recording with its truth file",
                        description="Write a recording of a simulated stepping-motor movement (WAV, FLAC, OGG or MP3 by "

@@ -99,6 +99,7 @@ class Analyzer:
         self._hum_n = 0
         self._finished = False
         self._final_events: list[Event] = []
+        self.trailing_silence_slots = 0
 
     # -- feeding ---------------------------------------------------------------------------
     def feed(self, block: Block) -> list[Event]:
@@ -134,6 +135,15 @@ class Analyzer:
             self._final_events = self._record(self.tracker.add(impacts, pos_s))
             self._final_events += self._record(self.tracker.finish(pos_s))
             self._finished = True
+            # slots after the last step heard are not missed steps: the sound stopped (the
+            # recording outlasted the ticking, or the microphone was moved away)
+            if self.step_t.n and self.missed_t.n:
+                last = self.step_t.values[-1]
+                keep = int(np.count_nonzero(self.missed_t.values <= last))
+                self.trailing_silence_slots = self.missed_t.n - keep
+                self.missed_t.n = keep
+                self.missed_k.n = keep
+                self._final_events = [e for e in self._final_events if not (e.kind == "missed" and e.time_s > last)]
         return self.summary()
 
     def drain_final_events(self) -> list[Event]:
@@ -288,6 +298,9 @@ class Analyzer:
         if abs(dc) > 0.05:
             warnings.append(f"the recording has a DC offset of {dc:+.3f} full scale (removed before analysis)")
         warnings += diag.get("warnings", [])
+        if self.trailing_silence_slots:
+            warnings.append(f"the steps stopped {self.trailing_silence_slots} slots before the end "
+                            "(not counted as missed)")
         if self.gaps:
             warnings.append(f"{len(self.gaps)} gaps in the audio ({sum(b - a for a, b in self.gaps):.2f} s lost); "
                             "steps there are not counted as missed")

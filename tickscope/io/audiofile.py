@@ -140,3 +140,38 @@ def audio_format_for(path: str, subtype: str | None = None) -> tuple[str, str]:
     if fmt in ("OGG", "MP3") and subtype not in ("VORBIS", "OPUS", "MPEG_LAYER_III"):
         raise ParameterError(f"{path}: subtype {subtype} does not fit a lossy {fmt} file")
     return fmt, subtype
+
+
+class LiveRecorder:
+    """Records captured blocks: the audio (FLAC/WAV by extension, written as it comes, so a crash
+    leaves what was captured) and one CSV row of clock readings per block (PATH.blocks.csv)."""
+
+    def __init__(self, path: str, samplerate: int):
+        if os.path.exists(path):
+            raise ParameterError(f"--save {path}: the file exists; choose a new name (nothing is overwritten)")
+        fmt, st = audio_format_for(path, None)
+        if fmt in ("OGG", "MP3"):
+            raise ParameterError(f"--save {path}: use .flac or .wav (lossless) for recordings to be measured")
+        if fmt == "WAV":
+            st = "FLOAT"
+        try:
+            self._f = sf.SoundFile(path, "x", samplerate=samplerate, channels=1, format=fmt, subtype=st)
+            self._csv = open(path + ".blocks.csv", "x")
+        except (sf.LibsndfileError, RuntimeError, OSError) as e:
+            raise InputError(f"cannot record to {path}: {_short(e)}") from e
+        self._csv.write("start_sample,frames,host_time_s,wall_time_s,adc_time_s,gap_before\n")
+        self._written = 0
+
+    def write(self, b: Block) -> None:
+        if b.gap_before:
+            # keep the file's sample count equal to the stream's: lost audio becomes silence
+            self._f.write(np.zeros(b.gap_before, dtype=np.float32))
+        self._f.write(b.samples)
+        self._csv.write(f"{b.start_sample},{len(b.samples)},{b.host_time_s!r},{b.wall_time_s!r},"
+                        f"{b.adc_time_s!r},{b.gap_before}\n")
+
+    def close(self) -> None:
+        try:
+            self._f.close()
+        finally:
+            self._csv.close()

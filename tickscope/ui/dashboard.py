@@ -1,0 +1,143 @@
+"""The live screen (rich), our own layout: one column, most important first.
+
+1. the rate in words and figures, with its 95 % interval;
+2. an interval ruler: a number line in s/day on which the interval is a bar that narrows as
+   steps arrive and the estimate a mark on it;
+3. counts: steps, missed, failed, other sounds, audio gaps;
+4. the residual strip (timing residuals over the session);
+5. the input: level bar, noise floor, step level, clipping and placement hints;
+6. the movement: ring-down per polarity, logic regulation, stepping pattern;
+7. notes.
+
+``render_live`` is pure (snapshot in, renderable out); the Live loop lives in the CLI.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+from rich import box
+from rich.console import Group, RenderableType
+from rich.panel import Panel
+from rich.text import Text
+
+from ..export import rate_words
+from ..model import Summary
+from .textreport import residual_strip
+
+
+@dataclass(frozen=True)
+class LiveStatus:
+    source: str
+    samplerate_hz: float
+    channel: int
+    elapsed_s: float
+    level_dbfs: float  # peak of the last half second
+    overflows: int = 0
+    saving_to: str | None = None
+
+
+def _nice_span(v: float) -> float:
+    for s in (0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1, 2, 5, 10, 20, 50, 100, 200, 500):
+        if v <= s:
+            return float(s)
+    return float(10 ** math.ceil(math.log10(v)))
+
+
+def interval_ruler(rate: float, ci: float, width: int) -> Text:
+    """A number line (s/day) with the 95 % interval as a bar and the estimate as a mark."""
+    span = _nice_span(max(abs(rate) + ci, 0.01) * 1.2)
+    w = max(20, width - 16)
+
+    def col(v):
+        return int(round((v + span) / (2 * span) * (w - 1)))
+
+    line = ["┄"] * w
+    style = ["dim"] * w
+    zero = col(0.0)
+    line[zero], style[zero] = "┼", "dim"
+    a, b = max(0, col(rate - ci)), min(w - 1, col(rate + ci))
+    for i in range(a, b + 1):
+        line[i], style[i] = "━", "green" if ci < 0.5 else "yellow"
+    m = min(w - 1, max(0, col(rate)))
+    line[m], style[m] = "◆", "bold white"
+    t = Text(f"{-span:+g} ".rjust(7), style="dim")
+    for ch, st in zip(line, style):
+        t.append(ch, style=st)
+    t.append(f" {span:+g} s/day", style="dim")
+    return t
+
+
+def level_bar(level_dbfs: float, width: int = 24) -> Text:
+    lo = -90.0
+    frac = 0.0 if not math.isfinite(level_dbfs) else min(1.0, max(0.0, (level_dbfs - lo) / -lo))
+    n = int(round(frac * width))
+    t = Text("▕")
+    style = "red" if level_dbfs > -1 else ("yellow" if level_dbfs > -6 else "cyan")
+    t.append("█" * n, style=style)
+    t.append("░" * (width - n), style="dim")
+    t.append("▏")
+    return t
+
+
+def render_live(s: Summary, st: LiveStatus, *, width: int = 80) -> RenderableType:
+    parts: list[RenderableType] = []
+    ex = s.extras
+    r = s.rate
+    head = Text()
+    if r is not None:
+        head.append(rate_words(r.rate_s_per_day), style="bold")
+        head.append(f"   ± {r.ci95_s_per_day:.3f} s/day (95 %)")
+        if ex.get("rate_provisional"):
+            head.append("   provisional", style="yellow")
+        parts.append(head)
+        parts.append(interval_ruler(r.rate_s_per_day, r.ci95_s_per_day, width))
+    elif s.sound == "not-stepping":
+        head.append(f"not a quartz stepping pattern (beat {s.measured_interval_s or 0:.4f} s)", style="yellow")
+        parts.append(head)
+    else:
+        head.append("listening for steps…" if s.steps_detected < 3 else "finding the step grid…", style="bold")
+        parts.append(head)
+    counts = Text()
+    counts.append(f"steps {s.steps_detected}", style="bold")
+    counts.append(f" · missed {s.missed_steps}", style="red" if s.missed_steps else "")
+    if ex.get("failed_steps"):
+        counts.append(f" · failed {ex['failed_steps']}", style="red")
+    counts.append(f" · other sounds {s.rejected_events}")
+    counts.append(f" · gaps {st.overflows}", style="red" if st.overflows else "")
+    if r is not None:
+        counts.append(f" · jitter {r.jitter_us:.1f} µs", style="dim")
+    parts.append(counts)
+    if s.residuals_us is not None and len(s.residuals_us) >= 3:
+        parts.append(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, width - 14), height=5))
+    lv = Text("input ")
+    lv.append_text(level_bar(st.level_dbfs, 20 if width < 100 else 32))
+    lv.append(f" {st.level_dbfs:5.1f} dBFS")
+    if math.isfinite(s.step_snr_db):
+        lv.append(f" · steps {s.step_snr_db:+.0f} dB over the noise")
+    parts.append(lv)
+    if st.level_dbfs > -1:
+        parts.append(Text("  ! clipping: lower the input gain", style="red"))
+    elif s.steps_detected >= 3 and math.isfinite(s.step_snr_db) and s.step_snr_db < 15:
+        parts.append(Text("  ! steps are weak: put the microphone on the case, near the motor", style="yellow"))
+    mv = Text()
+    for p in ("A", "B"):
+        if p in s.ringdown:
+            mv.append(f"ring-down {p} {s.ringdown[p].decay_ms_median:.2f} ms  ")
+    inh = ex.get("inhibition")
+    if inh:
+        mv.append(f"· regulation {inh['correction_us']:.0f} µs every {inh['period_s']:g} s  ")
+    elif r is not None:
+        mv.append("· regulation: none heard yet  ", style="dim")
+    if ex.get("pattern") == "burst":
+        mv.append(f"· bursts of {ex['steps_per_burst']}: cell at end of life", style="red")
+    if len(mv):
+        parts.append(mv)
+    for w in s.warnings[:3 if width < 100 else 6]:
+        if "uncalibrated" in w:
+            w = "device clock uncalibrated (±4 s/day typical): pass --clock-ppm"
+        parts.append(Text("! " + w, style="yellow", overflow="ellipsis", no_wrap=True))
+    elapsed = f"{int(st.elapsed_s // 3600):02d}:{int(st.elapsed_s % 3600 // 60):02d}:{int(st.elapsed_s % 60):02d}"
+    title = f"tickscope · listening · {st.source}"
+    sub = f"{st.samplerate_hz:g} Hz · ch {st.channel} · {elapsed}" + (f" · saving {st.saving_to}" if st.saving_to else "")
+    return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.ROUNDED, width=width)
