@@ -47,7 +47,7 @@ def _nice_span(v: float) -> float:
 def interval_ruler(rate: float, ci: float, width: int) -> Text:
     """A number line (s/day) with the 95 % interval as a bar and the estimate as a mark."""
     span = _nice_span(max(abs(rate) + ci, 0.01) * 1.2)
-    w = max(20, width - 16)
+    w = max(20, width - 24)  # panel borders, the two labels
 
     def col(v):
         return int(round((v + span) / (2 * span) * (w - 1)))
