@@ -158,3 +158,22 @@ def test_ctrl_c_keeps_a_valid_file_and_summary(loopback, tmp_path):
     info = sf.info(save)  # a complete, readable file
     assert info.frames > 0.2 * 48000
     assert os.path.exists(save + ".json")
+
+
+def test_missing_portaudio_is_one_clear_line(monkeypatch, capsys):
+    import builtins
+
+    from tickscope.cli import main
+
+    real_import = builtins.__import__
+
+    def fake_import(name, *a, **k):
+        if name == "sounddevice":
+            raise OSError("PortAudio library not found")
+        return real_import(name, *a, **k)
+
+    monkeypatch.setattr(builtins, "__import__", fake_import)
+    for cmd in (["devices"], ["listen", "--duration", "1"]):
+        assert main(cmd) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and "PortAudio" in err and "apt-get install libportaudio2" in err

@@ -36,6 +36,36 @@ def parse_ppm(text: str) -> tuple[float, float]:
 
 
 # ---------------------------------------------------------------------------------------------
+def _clock(args, device_name: str | None = None) -> tuple[float | None, float, str]:
+    """(ppm, u95, time-base statement) from --clock-ppm / --clock-profile (or a device's own profile)."""
+    from .io import profiles
+    from .pipeline import TYPICAL_DEVICE_PPM
+    from .units import ppm_to_s_per_day
+
+    if getattr(args, "clock_ppm", None) is not None and getattr(args, "clock_profile", None):
+        raise ParameterError("give either --clock-ppm or --clock-profile, not both")
+    if getattr(args, "clock_ppm", None) is not None:
+        ppm, u = args.clock_ppm
+        return ppm, u, f"corrected by --clock-ppm {ppm:+g} (± {u:g} ppm, 95 %)"
+    name = getattr(args, "clock_profile", None)
+    auto = False
+    if not name and device_name:
+        if device_name in profiles.load_all():
+            name, auto = device_name, True
+    if name:
+        pr = profiles.get(name)
+        stale = " — STALE, recalibrate" if pr.age_days() > STALE_DAYS else ""
+        how = {"host-clock": "against the host clock", "reference": "against a reference recording",
+               "saved-capture": "against the host clock (saved capture)"}.get(pr.method, pr.method)
+        return pr.ppm, pr.u95_ppm, (f"calibrated {how} on {pr.created[:10]} ({pr.ppm:+.2f} ± {pr.u95_ppm:.2f} ppm, "
+                                    f"profile {pr.name}{', used by default for this device' if auto else ''}){stale}")
+    return None, 0.0, (f"device clock, uncalibrated (typical ±{TYPICAL_DEVICE_PPM:.0f} ppm ≈ "
+                       f"±{ppm_to_s_per_day(TYPICAL_DEVICE_PPM):.1f} s/day)")
+
+
+STALE_DAYS = 90.0
+
+
 def cmd_analyze(args) -> int:
     import numpy as np  # noqa: F401  (imported here so --help stays fast)
 
@@ -57,7 +87,7 @@ def cmd_analyze(args) -> int:
             chosen_note = f"channel {channel} of {info.channels} has the clearest steps"
     elif not 0 <= channel < info.channels:
         raise ParameterError(f"--channel {channel}: {path} has channels 0..{info.channels - 1}")
-    clock_ppm, clock_u = args.clock_ppm if args.clock_ppm is not None else (None, 0.0)
+    clock_ppm, clock_u, time_base = _clock(args)
     an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u)
     csv_fh = None
     if args.steps_csv:
@@ -75,8 +105,8 @@ def cmd_analyze(args) -> int:
     finally:
         if csv_fh:
             csv_fh.close()
-    if clock_ppm is not None:
-        summary.extras["clock_calibrated"] = True
+    summary.extras["clock_calibrated"] = clock_ppm is not None
+    summary.extras["time_base"] = time_base
     if chosen_note:
         summary.warnings.insert(0, chosen_note)
     if demo and not args.json:
@@ -175,7 +205,7 @@ def cmd_listen(args) -> int:
     if not 8000 <= args.rate_hz <= 192000:
         raise ParameterError(f"--rate-hz {args.rate_hz}: expected 8000..192000")
     dev = resolve_device(args.device)
-    clock_ppm, clock_u = args.clock_ppm if args.clock_ppm is not None else (None, 0.0)
+    clock_ppm, clock_u, time_base = _clock(args, device_name=args.device)
     an = Analyzer(args.rate_hz, channel=args.channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u)
     rec = LiveRecorder(args.save, args.rate_hz) if args.save else None
     cap = Capture(dev, args.rate_hz, channel=args.channel)
@@ -204,7 +234,7 @@ def cmd_listen(args) -> int:
                 pk = float(abs(b.samples).max()) if len(b.samples) else 0.0
                 peak_win = [(t, v) for t, v in peak_win if now - t < 0.5] + [(now, pk)]
                 level = 20 * __import__("math").log10(max(max(v for _, v in peak_win), 1e-6))
-                if live is not None and now - last_draw >= 0.5:
+                if live is not None and now - last_draw >= 0.4:  # at least twice a second
                     st = LiveStatus(str(src), args.rate_hz, args.channel, an.duration_s, level,
                                     cap.overflows + (1 if cap.dropped_frames else 0), args.save)
                     live.update(render_live(an.summary(), st, width=min(con.width, 160)), refresh=True)
@@ -221,8 +251,8 @@ def cmd_listen(args) -> int:
         if rec:
             rec.close()
     summary = an.finish()
-    if clock_ppm is not None:
-        summary.extras["clock_calibrated"] = True
+    summary.extras["clock_calibrated"] = clock_ppm is not None
+    summary.extras["time_base"] = time_base
     summary.extras["capture"] = {"device": str(src), "overflows": cap.overflows, "dropped_frames": cap.dropped_frames,
                                  "wall_seconds": round(time.monotonic() - t0, 3), "ended": stop_note or "completed"}
     d = summary_to_dict(summary, source=f"device:{src}")
@@ -242,6 +272,131 @@ def cmd_listen(args) -> int:
     if stop_note and stop_note.startswith("capture ended"):
         sys.stderr.write(f"tickscope: {stop_note}; everything up to then is kept\n")
         return 2
+    return 0
+
+
+def cmd_calibrate(args) -> int:
+    import csv as _csv
+    import time
+
+    import numpy as np
+
+    from .core.clockfit import fit_device_clock
+    from .io import profiles
+
+    con = _console()
+    if args.list:
+        allp = profiles.load_all()
+        if args.json:
+            sys.stdout.write(json.dumps({k: dataclasses.asdict(v) | {"age_days": round(v.age_days(), 2),
+                                        "stale": v.age_days() > args.max_age_days} for k, v in allp.items()},
+                                        indent=1) + "\n")
+            return 0
+        if not allp:
+            con.print(f"no clock profiles yet in {profiles.config_dir()} (run: tickscope calibrate NAME --device ...)")
+            return 0
+        from rich.table import Table
+
+        t = Table(title=f"clock profiles ({profiles.config_dir()})", title_justify="left")
+        for c in ("name", "ppm", "± 95 %", "s/day", "method", "date", "run", "host clock", "age"):
+            t.add_column(c)
+        for v in allp.values():
+            age = v.age_days()
+            t.add_row(v.name, f"{v.ppm:+.3f}", f"{v.u95_ppm:.3f}", f"{v.ppm * 0.0864:+.3f}", v.method, v.created[:10],
+                      f"{v.duration_s:.0f} s", v.host_sync,
+                      f"{age:.0f} d" + (" [red]stale[/red]" if age > args.max_age_days else ""))
+        con.print(t)
+        return 0
+    if not args.name:
+        raise ParameterError("calibrate needs a profile NAME (or --list)")
+    sync = profiles.host_sync_status()
+    if args.reference:
+        if args.known_rate is None:
+            raise ParameterError("--reference needs --known-rate R[+-U] (s/day)")
+        from .io.audiofile import blocks, choose_channel, probe
+        from .pipeline import Analyzer
+
+        info = probe(args.reference)
+        ch = choose_channel(args.reference, info)
+        an = Analyzer(info.samplerate, channel=ch, clock_ppm=0.0)
+        for b in blocks(args.reference, info, ch):
+            an.feed(b)
+        sm = an.finish()
+        if sm.rate is None:
+            raise NoStepsError(f"no rate could be measured in {args.reference}")
+        known, known_u = args.known_rate
+        # a device fast by X ppm makes a movement read slow by 0.0864 X s/day
+        ppm = (known - sm.rate.rate_s_per_day) / 0.0864
+        stat = sm.extras.get("rate_ci95_statistical_s_per_day") or sm.rate.ci95_s_per_day
+        u = float(np.hypot(stat, known_u)) / 0.0864
+        method, dur, device = "reference", sm.duration_s, args.device or ""
+        note = f"reference {os.path.basename(args.reference)} of known rate {known:+g} ± {known_u:g} s/day"
+    else:
+        if args.from_blocks:
+            rows = []
+            try:
+                with open(args.from_blocks) as f:
+                    for r in _csv.DictReader(f):
+                        rows.append((float(r["start_sample"]), float(r["host_time_s"])))
+            except (OSError, KeyError, ValueError) as e:
+                raise ParameterError(f"{args.from_blocks}: not a tickscope blocks file ({e})") from e
+            rate_hz = args.rate_hz
+            audio = args.from_blocks[: -len(".blocks.csv")] if args.from_blocks.endswith(".blocks.csv") else None
+            if audio and os.path.exists(audio):
+                import soundfile as sf
+
+                rate_hz = sf.info(audio).samplerate
+            method, device = "saved-capture", args.device or ""
+        else:
+            from .io.capture import Capture, resolve_device
+
+            dev = resolve_device(args.device)
+            latency = float(args.latency) if re.fullmatch(r"[0-9.]+", args.latency) else args.latency
+            cap = Capture(dev, args.rate_hz, latency=latency)
+            rows = []
+            t0 = time.monotonic()
+            from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+            try:
+                with cap, Progress(TextColumn("calibrating"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
+                                   TimeRemainingColumn(), console=_console(stderr=True), transient=True,
+                                   disable=args.json) as prog:
+                    task = prog.add_task("c", total=args.seconds)
+                    for b in cap.blocks():
+                        rows.append((float(b.start_sample), float(b.host_time_s)))
+                        el = time.monotonic() - t0
+                        prog.update(task, completed=min(el, args.seconds))
+                        if el >= args.seconds:
+                            break
+            except KeyboardInterrupt:
+                sys.stderr.write("tickscope: interrupted; fitting what was captured\n")
+            rate_hz = args.rate_hz
+            method, device = "host-clock", str(args.device or "default input")
+        arr = np.array(rows)
+        if len(arr) < 16:
+            raise ParameterError("too few blocks were captured to calibrate")
+        fit = fit_device_clock(arr[:, 0], arr[:, 1], rate_hz)
+        ppm, u, dur = fit.ppm, fit.ci95_ppm, fit.span_s
+        note = (f"{fit.n_blocks} blocks, delay scatter {fit.delay_rms_ms:.2f} ms rms"
+                + (f"; {len(fit.steps)} host clock steps removed" if fit.steps else ""))
+    pr = profiles.ClockProfile(args.name, float(ppm), float(u), method, profiles.now_iso(), float(dur), device, sync, note)
+    path = profiles.save(pr)
+    out = dataclasses.asdict(pr) | {"profile_file": path, "s_per_day": round(ppm * 0.0864, 4)}
+    if method != "reference":
+        out["seconds_for_1ppm"] = round(fit.needed_span_s(1.0), 0)
+        out["seconds_for_0.1ppm"] = round(fit.needed_span_s(0.1), 0)
+    if args.json:
+        sys.stdout.write(json.dumps(out, indent=1) + "\n")
+    else:
+        con.print(f"[bold]{args.name}[/bold]: the device clock runs {'fast' if ppm >= 0 else 'slow'} by "
+                  f"{abs(ppm):.3f} ± {u:.3f} ppm (95 %) = {ppm * 0.0864:+.3f} s/day on every rate it measures")
+        con.print(f"method: {method}; {note}; host clock: {sync}; saved to {path}")
+        if method != "reference":
+            con.print(f"for ±1 ppm capture about {out['seconds_for_1ppm']:.0f} s, for ±0.1 ppm about "
+                      f"{out['seconds_for_0.1ppm']:.0f} s; the host clock itself should be disciplined (NTP or GPS)")
+        if sync != "synchronised (NTP)" and sync != "synchronised (chrony)" and method != "reference":
+            con.print("[yellow]the system does not say its clock is synchronised: the result is only as good as "
+                      "the host clock[/yellow]")
     return 0
 
 
@@ -335,6 +490,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--channel", type=int, default=None, help="channel to analyze (default: the clearest)")
     a.add_argument("--clock-ppm", type=parse_ppm, default=None, metavar="X[+-U]",
                    help="the recording device's clock runs fast by X ppm (95 %% uncertainty U); the rate is corrected")
+    a.add_argument("--clock-profile", metavar="NAME", help="correct the rate with a saved clock profile (see calibrate)")
     a.add_argument("--json", action="store_true", help="print one JSON object instead of the report")
     a.add_argument("--steps-csv", metavar="PATH", help="write one row per detected event to this CSV file")
     a.add_argument("--plot", metavar="PNG", help="draw the timing residuals and ring-downs to this PNG file")
@@ -357,8 +513,29 @@ def build_parser() -> argparse.ArgumentParser:
                     "clock readings to PATH.blocks.csv and the summary to PATH.json")
     li.add_argument("--clock-ppm", type=parse_ppm, default=None, metavar="X[+-U]",
                     help="the device's clock runs fast by X ppm (95 %% uncertainty U); the rate is corrected")
+    li.add_argument("--clock-profile", metavar="NAME", help="correct the rate with a saved clock profile (default: "
+                    "the profile named like --device, if there is one)")
     li.add_argument("--json", action="store_true", help="no live screen; print the final summary as JSON")
     li.set_defaults(func=cmd_listen)
+
+    c = sub.add_parser("calibrate", help="measure the audio device's clock and keep it as a named profile",
+                       description="Measure how fast the audio device's sample clock runs, in ppm with a 95 % interval: "
+                       "against the host clock (capture for --seconds), from a saved capture's block readings "
+                       "(--from-blocks), or from a recording of a reference movement of known rate (--reference). "
+                       "The result is kept as a named profile for --clock-profile.")
+    c.add_argument("name", nargs="?", help="profile name (use the device's name to have listen use it by default)")
+    c.add_argument("--device", default=None, help="input device index or part of its name")
+    c.add_argument("--seconds", type=float, default=600.0, help="capture length for the host-clock method (default 600)")
+    c.add_argument("--rate-hz", type=int, default=48000, help="sample rate, Hz (default 48000)")
+    c.add_argument("--latency", default="high", help="PortAudio latency: high, low or seconds (default high)")
+    c.add_argument("--from-blocks", metavar="CSV", help="calibrate from a saved capture's PATH.blocks.csv")
+    c.add_argument("--reference", metavar="AUDIO", help="a recording, through the device, of a movement of known rate")
+    c.add_argument("--known-rate", type=parse_ppm, default=None, metavar="R[+-U]",
+                   help="the reference movement's rate and its 95 %% uncertainty, s/day")
+    c.add_argument("--list", action="store_true", help="list the saved profiles")
+    c.add_argument("--max-age-days", type=float, default=90.0, help="profiles older than this are flagged stale")
+    c.add_argument("--json", action="store_true", help="print the result as JSON")
+    c.set_defaults(func=cmd_calibrate)
 
     s = sub.add_parser("simulate", help="write a simulated recording with its truth file",
                        description="Write a recording of a simulated stepping-motor movement (WAV, FLAC, OGG or MP3 by "

@@ -41,6 +41,7 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
         "rate_ppm": _num(r.rate_s_per_day / 0.0864, 4) if r else None,
         "clock_correction_ppm": _num(r.clock_correction_ppm if r else 0.0),
         "clock_calibrated": bool(s.extras.get("clock_calibrated", False)),
+        "time_base": s.extras.get("time_base"),
         "timing_jitter_us": _num(r.jitter_us, 3) if r else None,
         "polarity_offset_us": _num(r.polarity_offset_us, 3) if r else None,
         "steps_in_fit": r.n_steps if r else 0,

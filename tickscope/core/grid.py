@@ -294,8 +294,7 @@ class StepTracker:
         o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag) / self.fs
         o.match = rho
         o.slot = k
-        other = self.templates[1 - (k % 2 if k >= 0 else 0)]
-        o.match_any = rho if other is tmpl else max(rho, match(o.imp.wsnippet, other, max_lag=int(0.003 * self.fs))[1])
+        o.match_any = rho  # raised against the other polarity only when the sound is not a step (_event)
 
     def _window_after(self) -> float:
         # long intervals (end-of-life bursts every 2-4 s) gather up to 0.35 s of sound per slot
@@ -417,6 +416,11 @@ class StepTracker:
                      snr_db=imp.frame_snr_db, match=o.match, decay_ms=rd.decay_ms, flags=tuple(flags))
 
     def _event(self, o: _Open, kind: str, k: int | None) -> Event:
+        if kind == "secondary" and o.slot is not None:
+            # a later sound of a slot may be a step of the other polarity (end-of-life bursts)
+            other = self.templates[1 - (o.slot % 2 if o.slot >= 0 else 0)]
+            if other is not self.templates[o.slot % 2 if o.slot >= 0 else 0]:
+                o.match_any = max(o.match, match(o.imp.wsnippet, other, max_lag=int(0.003 * self.fs))[1])
         return Event(kind, o.t_s, step=k, peak_dbfs=o.imp.peak_dbfs, snr_db=o.imp.frame_snr_db,
                      match=o.match_any, flags=(kind,) if kind != "step" else ())
 

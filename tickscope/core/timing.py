@@ -108,7 +108,11 @@ def match(snippet: np.ndarray, template: Template, *, max_lag: int) -> tuple[flo
     if not len(lags):
         return 0.0, 0.0
     j = int(lags[np.argmax(c[lags])])
-    tau, val = _newton_peak(C, nfft, float(j))
+    # start Newton from the three-point parabola: two or three steps then suffice
+    y0, y1, y2 = c[j - 1], c[j], c[(j + 1) % nfft]
+    den = y0 - 2 * y1 + y2
+    start = j + (0.5 * (y0 - y2) / den if den < 0 else 0.0)
+    tau, val = _newton_peak(C, nfft, float(start), iters=3)
     if abs(tau - j) > 1.0:  # Newton wandered: keep the integer peak
         tau, val = float(j), float(c[j])
     lag = a + tau - s0

@@ -96,9 +96,9 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
     if r is not None:
         tab.add_row("rate", f"{r.rate_s_per_day:+.4f} s/day", f"95 % ± {r.ci95_s_per_day:.4f}; "
                     f"{r.rate_s_per_day / 0.0864:+.3f} ppm; line fit, residual corr {r.residual_correlation:+.2f}")
-        tb = (f"clock corrected by {r.clock_correction_ppm:+.3f} ppm" if s.extras.get("clock_calibrated")
-              else "device clock, uncalibrated")
-        tab.add_row("time base", "", tb)
+        tb = s.extras.get("time_base") or (f"clock corrected by {r.clock_correction_ppm:+.3f} ppm"
+                                           if s.extras.get("clock_calibrated") else "device clock, uncalibrated")
+        tab.add_row("time base", f"{r.clock_correction_ppm:+.2f} ppm" if s.extras.get("clock_calibrated") else "", tb)
         tab.add_row("step interval", f"{s.step_interval_s:g} s", f"measured {s.measured_interval_s:.9f} s")
         tab.add_row("timing jitter", f"{r.jitter_us:.2f} µs", "RMS residual from the fitted line")
         tab.add_row("polarity offset", f"{r.polarity_offset_us:+.2f} µs", "B steps relative to A steps")
