@@ -34,7 +34,8 @@ class DetectorConfig:
     """Settings of the impact detector (times in seconds, levels in dB)."""
 
     hop_s: float = 0.0005  # envelope frame: 0.5 ms
-    chunk_s: float = 0.25  # internal processing chunk (sets the live latency floor)
+    chunk_s: float = 4.0  # processing chunk: long for files (fast), 0.25 s for live audio (prompt)
+    stats_block_s: float = 0.25  # floor and spread statistics per block of this length (any chunk size)
     floor_window_s: float = 4.0  # memory of the noise floor
     floor_quantile: float = 0.3  # the floor is this quantile of frame energies
     threshold_db: float = 4.0  # an impact's 2 ms energy stands this far above the floor ...
@@ -86,7 +87,8 @@ class ImpactDetector:
         self.samplerate = float(samplerate)
         self.cfg = cfg = config or DetectorConfig()
         self.hop = max(2, int(round(cfg.hop_s * samplerate)))
-        self.chunk = self.hop * max(1, int(round(cfg.chunk_s * samplerate / self.hop)))
+        self.sub = max(1, int(round(cfg.stats_block_s * samplerate / self.hop)))  # frames per statistics block
+        self.chunk = self.hop * self.sub * max(1, int(round(cfg.chunk_s / cfg.stats_block_s)))
         self.pre = int(round(cfg.pre_s * samplerate))
         self.post = int(round(cfg.post_s * samplerate))
         self.refractory_frames = max(1, int(round(cfg.refractory_s * samplerate / self.hop)))
@@ -106,9 +108,10 @@ class ImpactDetector:
         self.whitener = np.ones(1)  # FIR that whitens the background noise (set with the lag)
         self._tail = np.zeros(0, dtype=np.float32)  # last `lag` samples before this chunk
         self._prev_frames = np.zeros(16)  # energies of the 16 frames before this chunk
-        self._floors: deque = deque(maxlen=max(1, int(round(self.cfg.floor_window_s / (self.chunk / self.samplerate)))))
+        self._floors: deque = deque(maxlen=max(1, int(round(self.cfg.floor_window_s / self.cfg.stats_block_s))))
         self._spreads: deque = deque(maxlen=self._floors.maxlen)
         self._last_onset_frame = -(10**12)
+        self._quiet_until_frame = -1
         self._raw = np.zeros(0, dtype=np.float32)  # recent raw audio
         self._raw_start = 0
         self._waiting: list[tuple[int, float]] = []  # (onset sample, frame snr) awaiting their snippet
@@ -143,37 +146,31 @@ class ImpactDetector:
 
     def flush(self) -> list[Impact]:
         """End of stream: process what is left and return the remaining impacts."""
-        out: list[Impact] = []
-        if self._inlen:
-            buf = np.concatenate(self._inbuf)
-            if self.lag is None:
-                self._tune(buf)
-            n = (len(buf) // self.hop) * self.hop
-            if n:
-                out += self._process_chunk(buf[:n])
-            tail = buf[n:]
-            if len(tail):  # too short for a frame: keep it only as audio for snippets
-                self._append_raw(tail)
-                self._consumed += len(tail)
-            self._inbuf, self._inlen = [], 0
+        out, tail = self._drain()
+        if len(tail):  # too short for a frame: keep it only as audio for snippets
+            self._append_raw(tail)
+            self._consumed += len(tail)
         out += self._emit_ready(final=True)
         return out
+
+    def _drain(self) -> tuple[list[Impact], np.ndarray]:
+        """Process the buffered input's whole frames now; returns the impacts and the leftover samples."""
+        if not self._inlen:
+            return [], np.zeros(0, dtype=np.float32)
+        buf = np.concatenate(self._inbuf)
+        self._inbuf, self._inlen = [], 0
+        if self.lag is None:
+            self._tune(buf)
+        n = (len(buf) // self.hop) * self.hop
+        return (self._process_chunk(buf[:n]) if n else []), buf[n:]
 
     def skip(self, n: int) -> list[Impact]:
         """Audio was lost (input overflow): finish what is buffered, then jump ``n`` samples ahead.
 
         The envelope history is cleared so the jump itself does not look like an impact.
         """
-        out: list[Impact] = []
-        if self._inlen:
-            buf = np.concatenate(self._inbuf)
-            if self.lag is None:
-                self._tune(buf)
-            m = (len(buf) // self.hop) * self.hop
-            if m:
-                out += self._process_chunk(buf[:m])
-            self._inbuf, self._inlen = [], 0
-            n += len(buf) - m
+        out, tail = self._drain()
+        n += len(tail)  # a part-frame before the gap is dropped with it
         out += self._emit_ready(final=True)
         self._consumed += n
         self.samples_seen += n
@@ -182,7 +179,9 @@ class ImpactDetector:
         self._raw = np.zeros(0, dtype=np.float32)
         self._raw_start = self._consumed
         self._tail = np.zeros(0, dtype=np.float32)
-        self._prev_frames = np.full(len(self._prev_frames), np.inf)  # no onset right after the gap
+        self._prev_frames = np.zeros(len(self._prev_frames))
+        # the audio resumes abruptly: no onset in the first frames after the gap
+        self._quiet_until_frame = self._consumed // self.hop + len(self._prev_frames)
         return out
 
     @property
@@ -232,11 +231,6 @@ class ImpactDetector:
         self.sum_x += float(np.sum(x, dtype=np.float64))
         e = self._frame_energy(x, self._tail, self.lag)
         self._tail = np.concatenate([self._tail, x])[-self.lag:] if self.lag > len(x) else x[-self.lag:].copy()
-        # noise floor: a low quantile of this chunk, smoothed over the last seconds
-        q = _quick_quantile(e, self.cfg.floor_quantile)
-        self._floors.append(q)
-        floor = _small_median(self._floors)
-        self.floor_db = 10 * math.log10(max(floor, 1e-30))
         P = len(self._prev_frames)
         ext = np.concatenate([self._prev_frames, e])
         cs = np.concatenate([[0.0], np.cumsum(ext)])
@@ -245,26 +239,38 @@ class ImpactDetector:
         # mean power over the nsum frames ending at each frame, and over 5..12 frames before
         now = (cs[idx + 1] - cs[idx + 1 - ns]) / ns
         bg = (cs[idx - 4] - cs[idx - 12]) / 8.0
-        # How much the background itself fluctuates over 2 ms: white noise barely (many
-        # degrees of freedom), low-frequency noise a lot.  The threshold rises with it so
-        # that noise alone seldom starts an impact.
-        fin = now if np.isfinite(now[0]) and np.isfinite(now[-1]) else now[np.isfinite(now)]
-        if len(fin) >= 16:
-            part = np.partition(fin, [len(fin) // 2, int(0.9 * (len(fin) - 1))])
-            q50, q90 = part[len(fin) // 2], part[int(0.9 * (len(fin) - 1))]
-            self._spreads.append(q90 / q50 if q50 > 0 else 1.0)
-        spread = _small_median(self._spreads) if self._spreads else 1.0
-        thr_ratio = max(10 ** (self.cfg.threshold_db / 10), spread ** 3)
-        thr = max(floor * thr_ratio, 10 ** (self.cfg.min_level_dbfs / 10))
-        cand = np.flatnonzero((now > thr) & (now > bg * 10 ** (self.cfg.rise_db / 10) + 0.5 * floor))
+        nf = len(e)
+        thr = np.empty(nf)
+        fl = np.empty(nf)
+        # Statistics per fixed block of frames (0.25 s), whatever the processing chunk: files are
+        # processed in long chunks (fast), live audio in short ones (prompt), with equal results.
+        for s0 in range(0, nf, self.sub):
+            s1 = min(nf, s0 + self.sub)
+            # noise floor: a low quantile of this block, smoothed over the last seconds
+            self._floors.append(_quick_quantile(e[s0:s1], self.cfg.floor_quantile))
+            floor = _small_median(self._floors)
+            # How much the background itself fluctuates over 2 ms: white noise barely (many
+            # degrees of freedom), low-frequency noise a lot.  The threshold rises with it so
+            # that noise alone seldom starts an impact.
+            seg = now[s0:s1]
+            if len(seg) >= 16:
+                i50, i90 = len(seg) // 2, int(0.9 * (len(seg) - 1))
+                part = np.partition(seg, [i50, i90])
+                self._spreads.append(part[i90] / part[i50] if part[i50] > 0 else 1.0)
+            spread = _small_median(self._spreads) if self._spreads else 1.0
+            thr[s0:s1] = max(floor * max(10 ** (self.cfg.threshold_db / 10), spread ** 3),
+                             10 ** (self.cfg.min_level_dbfs / 10))
+            fl[s0:s1] = floor
+        self.floor_db = 10 * math.log10(max(fl[-1], 1e-30))
+        cand = np.flatnonzero((now > thr) & (now > bg * 10 ** (self.cfg.rise_db / 10) + 0.5 * fl))
         self._prev_frames = ext[-P:]
         first_frame = n0 // self.hop
         for c in cand:
             fi = first_frame + int(c) - ns + 1  # the summed window starts here
-            if fi - self._last_onset_frame < self.refractory_frames:
+            if fi - self._last_onset_frame < self.refractory_frames or first_frame + int(c) < self._quiet_until_frame:
                 continue
             self._last_onset_frame = fi + ns - 1
-            self._waiting.append((fi * self.hop, floor))
+            self._waiting.append((fi * self.hop, float(fl[c])))
         self._append_raw(x)
         self._consumed += len(x)
         return self._emit_ready(final=False)
