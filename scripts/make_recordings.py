@@ -16,7 +16,7 @@ SCENES = {
         "The round kitchen clock above Ilse Marwood's stove, recorded on a phone held 10 cm "
         "below it: the second hand bounces 52 ms after every step, the tiled room rings, the "
         "phone's gain control pumps, the fridge hums at 50 Hz and someone puts down two cups.",
-        Scenario(samplerate_hz=44100, duration_s=120.0, movement="wallclock", rate_s_per_day=2.7,
+        Scenario(samplerate_hz=44100, duration_s=250.0, movement="wallclock", rate_s_per_day=2.7,
                  snr_db=24.0, noise="pink", hum_hz=50.0, hum_db=-26.0, second_impact_ms=52.0,
                  second_impact_db=-8.0, reverb_rt60_ms=250.0, agc=True, transients_per_min=1.0,
                  variation_db=0.8, jitter_us=3.0, level_dbfs=-14.0, seed=11),
