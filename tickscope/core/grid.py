@@ -151,6 +151,12 @@ class StepTracker:
         """Take new impacts (in time order) and the stream position; return decided events."""
         out: list[Event] = []
         for imp in impacts:
+            if self.acquired:
+                # the frame-level onset is enough to find the slot; the template match times it
+                o = _Open(imp, imp.onset_sample / self.fs)
+                self._time(o)
+                self._open.append(o)
+                continue
             t = (imp.snippet_start + onset_of(imp.snippet, self.fs, search_from=max(0, self.pre - int(0.004 * self.fs)))) / self.fs
             o = _Open(imp, t)
             if self.acquired:
