@@ -123,8 +123,14 @@ def test_listen_through_the_loopback(loopback, tmp_path):
     wav = str(tmp_path / "play.wav")
     truth = write_simulation(wav, sc)
     save = str(tmp_path / "cap.flac")
-    p = _listen(["--duration", "21", "--json", "--save", save])
-    time.sleep(3.0)  # the idle sink needs up to 2 s before the first block arrives
+    p = _listen(["--duration", "24", "--json", "--save", save])
+    # play only once audio is flowing (start-up imports plus up to 2 s for the idle sink's first block)
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < 20:
+        if os.path.exists(save + ".blocks.csv") and sum(1 for _ in open(save + ".blocks.csv")) > 5:
+            break
+        time.sleep(0.1)
+    time.sleep(0.3)
     subprocess.run(["paplay", f"--device={loopback}", wav], check=True, timeout=60)
     out, err = p.communicate(timeout=60)
     assert p.returncode == 0, err

@@ -73,7 +73,8 @@ class Analyzer:
         self.clock_ppm = clock_ppm
         self.clock_ppm_u95 = clock_ppm_u95
         self.detector = ImpactDetector(samplerate, detector)
-        self.tracker = StepTracker(samplerate, self.detector.pre, tracker)
+        self.tracker = StepTracker(samplerate, self.detector.pre, tracker,
+                                   emit_delay_s=(self.detector.post + 2 * self.detector.hop) / samplerate)
         self._pos = 0  # samples fed so far (including zeros fed for gaps)
         self.step_k = _Column(np.int64)
         self.step_t = _Column(np.float64)

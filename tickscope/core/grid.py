@@ -121,8 +121,11 @@ class _Open:
 class StepTracker:
     """Classifies a stream of impacts into steps on a grid (see module docstring)."""
 
-    def __init__(self, samplerate: float, pre: int, config: TrackerConfig | None = None):
+    def __init__(self, samplerate: float, pre: int, config: TrackerConfig | None = None, *,
+                 emit_delay_s: float = 0.12):
         self.fs = float(samplerate)
+        # the detector hands over an impact this long after its onset (its snippet must be complete)
+        self.emit_delay_s = emit_delay_s
         self.pre = pre
         self.cfg = config or TrackerConfig()
         self.templates: dict[int, Template] = {}
@@ -209,8 +212,9 @@ class StepTracker:
         t = np.array([o.t_s for o in buf])
         # impacts that stand far above the noise floor count most (the level alone can
         # mislead: a phone's gain control lifts the noise between steps to the steps' level)
-        snr = np.array([o.imp.frame_snr_db for o in buf])
-        w = np.clip(10 ** ((snr - np.median(snr)) / 10), 0.05, 4.0)  # no single sound dominates
+        # (a sound out of digital silence can stand 200 dB over its "floor": capped at 60 dB)
+        snr = np.minimum(np.array([o.imp.frame_snr_db for o in buf]), 60.0)
+        w = np.clip(10 ** ((snr - np.median(snr)) / 10), 0.05, 2.0)  # no single sound dominates
         found = find_interval(t, w)
         if found is None or found[2] < self.cfg.min_coherence:
             if final:
@@ -221,7 +225,7 @@ class StepTracker:
         # (nearly) empty, the interval is twice as long.
         for _ in range(3):
             kk = np.round((t - phase) / P).astype(np.int64)
-            near = np.abs(t - (phase + kk * P)) <= min(0.2 * P, 0.06)
+            near = np.abs(t - (phase + kk * P)) <= 0.3 * P  # wide: the phase may be pulled by a bounce
             w_even = float(np.sum(w[near & (kk % 2 == 0)]))
             w_odd = float(np.sum(w[near & (kk % 2 == 1)]))
             if min(w_even, w_odd) < 0.2 * max(w_even, w_odd) and t[-1] - t[0] >= 4 * P:
@@ -323,7 +327,7 @@ class StepTracker:
     def _decide(self, position_s: float, final: bool = False) -> list[Event]:
         out: list[Event] = []
         # impacts are emitted ~post_s after their onset; allow for that delay
-        horizon = position_s - 0.12 if not final else position_s
+        horizon = position_s - self.emit_delay_s if not final else position_s
         while True:
             k = self._next_slot
             pred = self.predict(k)
