@@ -180,8 +180,6 @@ def bench_librosa(tmp, duration_s):
               f"timing RMS {rms:9.1f} us; rate {rate:+8.3f} s/day (truth +3.000)")
     t = time.perf_counter()
     dt, rss, d = run_cli(path)
-    an_t = None
-    import csv  # noqa: F401
     print(f"  {'tickscope analyze (whole process)':40s}: {duration_s / dt:8.0f}x real time; found "
           f"{d['steps_detected']}/{len(tt)}; jitter {d['timing_jitter_us']:9.3f} us; rate {d['rate_s_per_day']:+8.4f} "
           f"± {d['rate_ci95_s_per_day']:.4f} s/day")

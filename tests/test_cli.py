@@ -1,8 +1,6 @@
 """The command line end to end: outputs, exit codes and bad input (never a traceback)."""
 import csv
 import json
-import os
-import struct
 import subprocess
 import sys
 
@@ -144,7 +142,6 @@ def test_header_claims_more_data_than_it_holds(tmp_path, capsys):
 
 
 def test_clipped_dc_and_two_channels(tmp_path, capsys):
-    fs = 48000
     sc = Scenario(duration_s=30, channels=2, step_channel=1, snr_db=30, clip_dbfs=-16, seed=8)
     p = str(tmp_path / "st.wav")
     write_simulation(p, sc)

@@ -23,7 +23,6 @@ if "PULSE_SERVER" not in os.environ and os.path.exists(f"{LOOPBACK_DIR}/native")
 from tickscope.core.simulate import Scenario  # noqa: E402
 from tickscope.io.capture import Capture  # noqa: E402
 from tickscope.io.simfile import write_simulation  # noqa: E402
-from tickscope.model import Block  # noqa: E402
 
 
 # -- the callback, driven by hand ------------------------------------------------------------------

@@ -98,7 +98,6 @@ def test_no_steps_in_noise(rng):
 
 def test_escapement_is_not_claimed_as_quartz():
     # a 5-beat/s escapement with a 2 ms beat error: tick and tock alternate unevenly
-    from tickscope.core.simulate import Renderer
     sc = Scenario(duration_s=30, step_interval_s=0.2, polarity_asymmetry_us=2000, snr_db=30,
                   movement="wristwatch", seed=2)
     s, _, _, _ = analyze_scenario(sc)

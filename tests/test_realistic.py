@@ -1,7 +1,5 @@
 """Recordings as phones and rooms make them: the counts must hold and the rate stay in its interval."""
-import os
 
-import numpy as np
 import pytest
 
 from tickscope.core.simulate import Scenario

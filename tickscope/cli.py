@@ -8,10 +8,10 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import json
+import math
 import os
 import re
 import sys
-from importlib import resources
 
 from . import __version__
 from .errors import NoStepsError, ParameterError, TickscopeError
@@ -67,8 +67,6 @@ STALE_DAYS = 90.0
 
 
 def cmd_analyze(args) -> int:
-    import numpy as np  # noqa: F401  (imported here so --help stays fast)
-
     from .export import StepsCsv, summary_to_dict
     from .io.audiofile import blocks, choose_channel, probe
     from .pipeline import Analyzer
@@ -238,7 +236,7 @@ def cmd_listen(args) -> int:
                 now = time.monotonic()
                 pk = float(abs(b.samples).max()) if len(b.samples) else 0.0
                 peak_win = [(t, v) for t, v in peak_win if now - t < 0.5] + [(now, pk)]
-                level = 20 * __import__("math").log10(max(max(v for _, v in peak_win), 1e-6))
+                level = 20 * math.log10(max(max(v for _, v in peak_win), 1e-6))
                 # redraw as soon as a step is decided, and at least twice a second
                 if live is not None and (new_step or now - last_draw >= 0.4):
                     st = LiveStatus(str(src), args.rate_hz, args.channel, an.duration_s, level,

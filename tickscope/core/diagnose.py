@@ -19,7 +19,6 @@ import numpy as np
 from scipy import stats
 
 from ..units import CRYSTAL_HZ, SECONDS_PER_DAY
-from .rate import fit_rate
 
 #: Longest logic-regulation period in the watch-IC datasheets we know (PCA2002: 2 minutes).
 LONGEST_KNOWN_PERIOD_S = 120.0
