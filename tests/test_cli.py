@@ -1,6 +1,7 @@
 """The command line end to end: outputs, exit codes and bad input (never a traceback)."""
 import csv
 import json
+import os
 import subprocess
 import sys
 
@@ -186,3 +187,14 @@ def test_core_does_not_import_io_libraries():
             "if m in sys.modules]; print(bad); sys.exit(1 if bad else 0)")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert r.returncode == 0, r.stdout + r.stderr
+
+
+def test_full_disk_is_one_line(tmp_path, capsys):
+    # /dev/full fails every write with ENOSPC, like a full disk
+    if not os.path.exists("/dev/full"):
+        pytest.skip("no /dev/full on this system")
+    rec = str(tmp_path / "w.wav")
+    write_simulation(rec, Scenario(duration_s=10, snr_db=30, seed=5))
+    code = main(["analyze", rec, "--json", "--steps-csv", "/dev/full"])
+    err = capsys.readouterr().err
+    assert code == 2 and err.startswith("tickscope: ") and err.count("\n") == 1 and "No space left" in err

@@ -214,6 +214,7 @@ def cmd_listen(args) -> int:
     cap = Capture(dev, args.rate_hz, channel=args.channel, blocksize=2048)
     src = args.device if args.device is not None else "default input"
     stop_note = None
+    rec_error = None
     level = -120.0
     t0 = time.monotonic()
     live = None
@@ -232,7 +233,15 @@ def cmd_listen(args) -> int:
             for b in cap.blocks():
                 new_step = any(ev.kind == "step" for ev in an.feed(b))
                 if rec:
-                    rec.write(b)
+                    try:
+                        rec.write(b)
+                    except (OSError, RuntimeError) as e:  # a full disk: stop recording, keep listening
+                        rec_error = f"recording stopped at {an.duration_s:.1f} s: {e}"
+                        try:
+                            rec.close()
+                        except (OSError, RuntimeError):
+                            pass
+                        rec = None
                 now = time.monotonic()
                 pk = float(abs(b.samples).max()) if len(b.samples) else 0.0
                 peak_win = [(t, v) for t, v in peak_win if now - t < 0.5] + [(now, pk)]
@@ -259,6 +268,8 @@ def cmd_listen(args) -> int:
     summary.extras["time_base"] = time_base
     summary.extras["capture"] = {"device": str(src), "overflows": cap.overflows, "dropped_frames": cap.dropped_frames,
                                  "wall_seconds": round(time.monotonic() - t0, 3), "ended": stop_note or "completed"}
+    if rec_error:
+        summary.warnings.append(rec_error)
     d = summary_to_dict(summary, source=f"device:{src}")
     if args.save:
         try:
@@ -573,6 +584,10 @@ def main(argv: list[str] | None = None) -> int:
         return e.exit_code
     except MemoryError:
         sys.stderr.write("tickscope: out of memory\n")
+        return 2
+    except OSError as e:  # a full disk, a vanished directory: say which file, never a traceback
+        where = f" ({e.filename})" if getattr(e, "filename", None) else ""
+        sys.stderr.write(f"tickscope: cannot write or read{where}: {e.strerror or e}\n")
         return 2
     except BrokenPipeError:
         return 0
