@@ -5,7 +5,6 @@ import csv
 import math
 
 from .model import Event, Summary
-from .units import ppm_to_s_per_day
 
 CSV_HEADER = ["index", "step", "time_s", "polarity", "interval_s", "peak_dbfs", "decay_ms", "flags"]
 
@@ -94,7 +93,3 @@ class StepsCsv:
 def rate_words(rate_s_per_day: float) -> str:
     """'gains 2.71 s/day' / 'loses 0.40 s/day'."""
     return f"{'gains' if rate_s_per_day >= 0 else 'loses'} {abs(rate_s_per_day):.3f} s/day"
-
-
-def typical_device_error_s_per_day(ppm: float) -> float:
-    return ppm_to_s_per_day(ppm)

@@ -445,19 +445,11 @@ class Analyzer:
         return float(np.median(b) - np.median(a))
 
     def _alternation_us(self) -> float | None:
-        """Mean A->B interval minus mean B->A interval (us), from consecutive steps."""
-        k = self.step_k.values
-        if len(k) < 6:
+        """Mean A->B interval minus mean B->A interval (us), over all steps (an escapement's tick-tock)."""
+        if self.step_k.n < 6:
             return None
-        t = self.step_t.values
-        adj = np.flatnonzero(np.diff(k) == 1)
-        if len(adj) < 4:
-            return None
-        iv = t[adj + 1] - t[adj]
-        from_a = (k[adj] % 2) == 0
-        if from_a.sum() < 2 or (~from_a).sum() < 2:
-            return None
-        return float((iv[from_a].mean() - iv[~from_a].mean()) * 1e6)
+        pa = dg.polarity_asymmetry(self.step_k.values, self.step_t.values, min_pairs=4, min_group=2)
+        return None if pa is None else pa[0]
 
     def _hum(self) -> tuple[float | None, float | None]:
         if not self._hum_buf:

@@ -239,17 +239,21 @@ def position_locked(anomaly_k: np.ndarray, span_steps: int, *, periods=(60,), mi
     return best
 
 
-def polarity_asymmetry(k: np.ndarray, t: np.ndarray) -> tuple[float, float] | None:
-    """Mean A->B interval minus mean B->A interval (us) and its 95 % half-width."""
+def polarity_asymmetry(k: np.ndarray, t: np.ndarray, *, min_pairs: int = 8,
+                       min_group: int = 3) -> tuple[float, float] | None:
+    """Mean A->B interval minus mean B->A interval (us) and its 95 % half-width.
+
+    None with fewer than ``min_pairs`` consecutive step pairs or ``min_group`` in either direction.
+    """
     k = np.asarray(k)
     t = np.asarray(t, dtype=np.float64)
     adj = np.flatnonzero(np.diff(k) == 1)
-    if len(adj) < 8:
+    if len(adj) < min_pairs:
         return None
     d = t[adj + 1] - t[adj]
     from_a = (k[adj] % 2) == 0
     a, b = d[from_a], d[~from_a]
-    if len(a) < 3 or len(b) < 3:
+    if len(a) < max(min_group, 2) or len(b) < max(min_group, 2):
         return None
     diff = float(a.mean() - b.mean())
     se = math.sqrt(a.var(ddof=1) / len(a) + b.var(ddof=1) / len(b))

@@ -114,22 +114,8 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
             raise InputError(f"{path}: cannot read audio ({_short(e)})") from e
 
 
-def write_audio(path: str, data: np.ndarray, samplerate: int, *, subtype: str | None = None) -> None:
-    """Write audio; the format follows the extension (.wav .flac .ogg .mp3 ...)."""
-    fmt, subtype = audio_format_for(path, subtype)
-    data = np.asarray(data)
-    channels = 1 if data.ndim == 1 else data.shape[1]
-    try:
-        with sf.SoundFile(path, "w", samplerate=samplerate, channels=channels, format=fmt, subtype=subtype) as f:
-            # small writes: libsndfile's Vorbis encoder crashed here on one 60 s write
-            for i in range(0, len(data), WRITE_FRAMES):
-                f.write(data[i: i + WRITE_FRAMES])
-    except (sf.LibsndfileError, RuntimeError, OSError, ValueError) as e:
-        raise InputError(f"cannot write {path}: {_short(e)}") from e
-
-
 def audio_format_for(path: str, subtype: str | None = None) -> tuple[str, str]:
-    """(format, subtype) that ``path``'s extension asks for (lossless defaults: 24-bit)."""
+    """(format, subtype) that ``path``'s extension asks for (lossless defaults: 24-bit, WAV float)."""
     ext = os.path.splitext(path)[1].lower()
     fmt = {".wav": "WAV", ".flac": "FLAC", ".ogg": "OGG", ".oga": "OGG", ".mp3": "MP3", ".aiff": "AIFF",
            ".aif": "AIFF", ".w64": "W64", ".caf": "CAF"}.get(ext)

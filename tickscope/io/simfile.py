@@ -37,7 +37,7 @@ def write_simulation(path: str, sc: Scenario, *, subtype: str | None = None,
                 peak = max(peak, float(np.max(np.abs(x))))
                 if st != "FLOAT":
                     x = np.clip(x, -1, 1)
-                for i in range(0, len(x), WRITE_FRAMES):  # small writes (see audiofile.write_audio)
+                for i in range(0, len(x), WRITE_FRAMES):  # small writes: libsndfile's Vorbis encoder crashed on one 60 s write
                     f.write(x[i: i + WRITE_FRAMES])
                 if progress:
                     progress(r.pos / r.n_total)
