@@ -290,6 +290,305 @@ def cmd_listen(args) -> int:
     return 0
 
 
+def cmd_log(args) -> int:
+    import time
+
+    from .errors import DeviceError, StoreError
+    from .io.store import LogStore
+    from .logsession import HISTORY_STEPS, ClipKeeper, LogSession
+    from .pipeline import Analyzer
+
+    if (args.source is None) == (args.device is None):
+        if args.source is None and args.device is None:
+            raise ParameterError("give a source: --device DEVICE (a microphone) or --source PATH (a recording)")
+        raise ParameterError("give either --device or --source, not both")
+    if args.hours is not None and not args.hours > 0:
+        raise ParameterError(f"--hours {args.hours}: expected > 0")
+    store = LogStore(args.db)
+    try:
+        return _run_log(args, store)
+    finally:
+        try:
+            store.close()
+        except StoreError:
+            pass
+
+
+def _run_log(args, store) -> int:
+    import time
+
+    from .errors import DeviceError, StoreError
+    from .logsession import HISTORY_STEPS, ClipKeeper, LogSession
+    from .pipeline import Analyzer
+
+    segs = store.segments()
+    store.init_meta(args.label or "", __version__)
+    if args.label and store.meta().get("label") not in (args.label, ""):
+        raise ParameterError(f"{args.db} is the log of {store.meta().get('label')!r}, not {args.label!r}: "
+                             "use a new database for another movement")
+    if args.label and not store.meta().get("label"):
+        store.set_meta("label", args.label)
+        store.commit()
+    now = time.time()
+    last = segs[-1] if segs else None
+    note = ""
+    cap = None
+    if args.source is not None:
+        from .io.audiofile import blocks, choose_channel, probe
+
+        src = os.path.abspath(args.source)
+        info = probe(src)
+        if last is not None and last.source_kind != "file":
+            raise ParameterError(f"{args.db} logs a device; a recording cannot be added to it (use a new database)")
+        if last is not None and last.source != src:
+            raise ParameterError(f"{args.db} logs {last.source}; to replay {src} use a new database")
+        offset_s = 0.0 if last is None else last.source_offset_s + last.decided_s
+        start_frame = int(round(offset_s * info.samplerate))
+        if start_frame >= info.frames - int(info.samplerate):
+            _console(stderr=True).print(f"{args.db} already holds {src} to its end; nothing to add "
+                                        f"(tickscope report {args.db})")
+            return 0
+        channel = args.channel if args.channel is not None else (last.channel if last else choose_channel(src, info))
+        if not 0 <= channel < info.channels:
+            raise ParameterError(f"--channel {channel}: {src} has channels 0..{info.channels - 1}")
+        fs = info.samplerate
+        block_iter = blocks(src, info, channel, start_frame=start_frame)
+        kind, source, join, timeline = "file", src, ("first" if last is None else "exact"), offset_s
+        if last is not None:
+            note = f"resuming {src} at {offset_s:.1f} s (segment {len(segs) + 1})"
+        total_s = info.duration_s - offset_s
+        clock_ppm, clock_u, time_base = _clock(args)
+        detector = None
+    else:
+        from .core.detect import DetectorConfig
+        from .io.capture import Capture, resolve_device
+
+        if last is not None and last.source_kind != "device":
+            raise ParameterError(f"{args.db} logs the recording {last.source}; log a device into a new database")
+        if not 8000 <= args.rate_hz <= 192000:
+            raise ParameterError(f"--rate-hz {args.rate_hz}: expected 8000..192000")
+        dev = resolve_device(args.device)
+        fs = args.rate_hz
+        channel = args.channel or 0
+        clock_ppm, clock_u, time_base = _clock(args, device_name=args.device)
+        cap = Capture(dev, fs, channel=channel, blocksize=2048)
+        kind, source, join = "device", str(args.device), ("first" if last is None else "wall")
+        timeline = 0.0 if last is None else now - segs[0].started_wall
+        if last is not None:
+            note = f"resuming the log as segment {len(segs) + 1} after {now - (last.ended_wall or last.started_wall + last.duration_s):.0f} s"
+        total_s = None
+        detector = DetectorConfig(chunk_s=0.25)
+    from .io.profiles import host_sync_status
+
+    seg = store.new_segment(started_wall=now, source_kind=kind, source=source,
+                            source_offset_s=timeline if kind == "file" else 0.0, timeline_s=timeline, join_kind=join,
+                            sample_rate_hz=fs, channel=channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u,
+                            time_base=time_base, host_sync=host_sync_status() if kind == "device" else None,
+                            version=__version__)
+    an = Analyzer(fs, channel=channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u, detector=detector,
+                  history_steps=HISTORY_STEPS)
+    clips = None
+    if args.keep_audio == "anomalies":
+        clips = ClipKeeper(fs, int(args.clip_budget_mb * 1e6), used_bytes=store.clip_bytes())
+    ls = LogSession(store, seg, an, timeline_s=timeline, clock_ppm=clock_ppm, clock_ppm_u95=clock_u, clips=clips)
+    limit_s = args.hours * 3600.0 if args.hours else None
+    err = console = None
+    reason = "end of source"
+    if note:
+        _console(stderr=True).print(note)
+    try:
+        if cap is None:
+            _log_file(ls, block_iter, total_s, limit_s, show_progress=not args.quiet and not args.json)
+            if limit_s is not None and ls.position_s >= limit_s:
+                reason = "hours reached"
+        else:
+            reason = _log_device(ls, cap, limit_s, args, segs, quiet=args.quiet or args.json)
+    except KeyboardInterrupt:
+        reason = "stopped by Ctrl-C"
+    except DeviceError as e:
+        reason = f"capture ended: {e}"
+        err = e
+    except StoreError:
+        store.rollback()  # a full disk: what was committed stays; nothing more can be written
+        raise
+    ls.finish(reason)
+    t = ls.totals
+    d = {"db": args.db, "segment": len(segs) + 1, "source": source, "duration_s": round(ls.position_s, 3),
+         "steps": t["steps"], "missed": t["missed"], "failed": t["failed"], "rejected": t["rejected"],
+         "gaps": t["gaps"], "ended": reason, "time_base": time_base}
+    if clips is not None:
+        d["clips_kept_bytes"] = clips.used
+        d["clips_skipped"] = clips.skipped
+    if args.json:
+        sys.stdout.write(json.dumps(d, indent=1) + "\n")
+    else:
+        con = _console()
+        con.print(f"log {args.db}: segment {d['segment']} ended ({reason}) after {ls.position_s / 3600:.2f} h of audio: "
+                  f"{t['steps']} steps, {t['missed']} missed, {t['failed']} failed, {t['gaps']} gaps")
+        hours = [h for h in ls.hourly() if math.isfinite(h.rate_s_per_day)]
+        if hours:
+            from .ui.dashboard import hourly_lines
+
+            for line in hourly_lines(hours, min(con.width, 120), max_rows=12):
+                con.print(line)
+        con.print(f"[dim]see the whole log: tickscope report {args.db}[/dim]")
+    if err is not None:
+        sys.stderr.write(f"tickscope: {reason}; everything up to then is kept in {args.db}\n")
+        return 2
+    return 0
+
+
+def _log_file(ls, block_iter, total_s, limit_s, *, show_progress: bool) -> None:
+    def run(update=None):
+        for b in block_iter:
+            ls.feed(b)
+            if update:
+                update(ls.position_s)
+            if limit_s is not None and ls.position_s >= limit_s:
+                break
+
+    goal = min(total_s, limit_s) if limit_s else total_s
+    if show_progress and goal > 60:
+        from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+        with Progress(TextColumn("logging"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
+                      TextColumn("{task.fields[info]}"), TimeRemainingColumn(), console=_console(stderr=True),
+                      transient=True) as prog:
+            task = prog.add_task("a", total=goal, info="")
+            run(lambda p: prog.update(task, completed=p, info=f"{ls.totals['steps']} steps, {ls.totals['missed']} missed"))
+    else:
+        run()
+
+
+def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
+    import time
+
+    live = None
+    level = -120.0
+    peak_win: list[tuple[float, float]] = []
+    last_draw = 0.0
+    prior = len(segs)
+    with cap:
+        if not quiet:
+            from rich.live import Live
+
+            con = _console()
+            live = Live(console=con, refresh_per_second=4, transient=False, auto_refresh=False)
+            live.start()
+        try:
+            from .ui.dashboard import LiveStatus, hourly_lines, render_live
+
+            for b in cap.blocks():
+                new_step = any(ev.kind == "step" for ev in ls.feed(b))
+                now = time.monotonic()
+                pk = float(abs(b.samples).max()) if len(b.samples) else 0.0
+                peak_win = [(t, v) for t, v in peak_win if now - t < 0.5] + [(now, pk)]
+                level = 20 * math.log10(max(max(v for _, v in peak_win), 1e-6))
+                if live is not None and (new_step or now - last_draw >= 0.5):
+                    st = LiveStatus(str(args.device), args.rate_hz, ls.an.channel, ls.position_s, level,
+                                    cap.overflows + (1 if cap.dropped_frames else 0), None)
+                    w = min(con.width, 160)
+                    t = ls.totals
+                    info = Text_(f"log {os.path.basename(args.db)} · segment {prior + 1} · this segment "
+                                 f"{t['steps']} steps, {t['missed']} missed, {t['failed']} failed · committed "
+                                 f"{ls.commits}×", style="dim")
+                    live.update(render_live(ls.an.summary(), st, width=w, mode="logging",
+                                            extra=[info, *hourly_lines(ls.hourly(), w, max_rows=6)]), refresh=True)
+                    last_draw = now
+                if limit_s is not None and ls.position_s >= limit_s:
+                    return "hours reached"
+        finally:
+            if live is not None:
+                live.stop()
+    return "end of source"
+
+
+def Text_(text: str, style: str = ""):
+    from rich.text import Text
+
+    return Text(text, style=style)
+
+
+def cmd_report(args) -> int:
+    from .core.logstats import log_figures, number_steps
+    from .errors import StoreError
+    from .export import log_to_dict, write_log_csv
+    from .io.store import LogStore
+
+    store = LogStore(args.db, readonly=True)
+    try:
+        segs = store.segments()
+        if not segs:
+            raise StoreError(f"log {args.db}: holds no segments yet")
+        meta = store.meta()
+        ev = store.events()
+        gaps = store.gaps()
+        minutes = store.minutes()
+        device_clock = _device_clock(store, segs)
+    finally:
+        store.db.close()
+    over_ppm, over_u, time_base = None, 0.0, None
+    if args.clock_ppm is not None or args.clock_profile:
+        over_ppm, over_u, time_base = _clock(args)
+    elif all(s.clock_ppm is not None for s in segs):
+        time_base = "; ".join(sorted({s.time_base or f'corrected by {s.clock_ppm:+g} ppm' for s in segs}))
+    else:
+        time_base = _clock(argparse.Namespace())[2]
+        if any(s.clock_ppm is not None for s in segs):
+            time_base = "mixed: some segments corrected, some on the device clock"
+    fig = log_figures(segs, ev, gaps=gaps, minutes=minutes, override_ppm=over_ppm, override_u95=over_u)
+    if args.steps_csv:
+        if fig.nominal_s:
+            T, K, _, _ = number_steps(segs, ev, fig.nominal_s, over_ppm)
+        else:
+            T, K = ev["time_s"], ev["step"]
+        with open(args.steps_csv, "w", newline="") as fh:
+            write_log_csv(fh, T, K, ev)
+    d = log_to_dict(fig, db=args.db, meta=meta, segments=segs, time_base=time_base, device_clock=device_clock)
+    label = meta.get("label") or os.path.basename(args.db)
+    if args.out:
+        from .ui.plots import plot_log
+
+        try:
+            os.makedirs(args.out, exist_ok=True)
+        except OSError as e:
+            raise ParameterError(f"cannot create {args.out}: {e.strerror}") from e
+        d["plots"] = plot_log(fig, args.out, title=label)
+        with open(os.path.join(args.out, "report.json"), "w") as fh:
+            json.dump(d, fh, indent=1)
+    if args.json:
+        sys.stdout.write(json.dumps(d, indent=1) + "\n")
+    else:
+        from .ui.logview import render_log
+
+        con = _console()
+        con.print(render_log(fig, db=os.path.basename(args.db), label=meta.get("label") or "", time_base=time_base,
+                             width=min(con.width, 140), device_clock=device_clock))
+        if args.out:
+            con.print(f"[dim]plots: {', '.join(d['plots'])}[/dim]")
+    return 0
+
+
+def _device_clock(store, segs) -> list[dict]:
+    """The device clock against the host clock, per device segment long enough to say (from its block readings)."""
+    from .core.clockfit import fit_device_clock
+
+    out = []
+    for s in segs:
+        if s.source_kind != "device":
+            continue
+        start, host = store.blocks(s.id)
+        if len(start) < 16 or (start[-1] - start[0]) / s.sample_rate_hz < 600:
+            continue
+        try:
+            f = fit_device_clock(start, host, s.sample_rate_hz, segments=min(64, len(start) // 2))
+        except TickscopeError:
+            continue
+        out.append({"segment": s.id, "ppm": round(f.ppm, 3), "ci95_ppm": round(f.ci95_ppm, 3),
+                    "span_s": round(f.span_s, 1), "host_sync": s.host_sync or "unknown"})
+    return out
+
+
 def cmd_calibrate(args) -> int:
     import csv as _csv
     import time
@@ -424,6 +723,7 @@ _SIM_HELP = {
     "movement": "the movement's voice: wallclock, wristwatch or alarmclock",
     "step_interval_s": "nominal step interval, s (1 for most quartz movements)",
     "rate_s_per_day": "the movement's true daily rate, s/day (positive gains)",
+    "rate_drift_s_per_day_per_h": "the rate changes by this much every hour, s/day per hour (a slow drift)",
     "clock_ppm": "the recording device's sample clock runs fast by this many ppm",
     "first_step_s": "time of the first step, s",
     "jitter_us": "RMS random timing jitter of each step, us",
@@ -551,6 +851,42 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--max-age-days", type=float, default=90.0, help="profiles older than this are flagged stale")
     c.add_argument("--json", action="store_true", help="print the result as JSON")
     c.set_defaults(func=cmd_calibrate)
+
+    lg = sub.add_parser("log", help="log a movement's steps for hours or days into a database (crash-safe)",
+                        description="Log every step of a movement into an SQLite database, committed every few "
+                                    "seconds. Running it again on the same database resumes the log as a new "
+                                    "segment. Read it with `tickscope report DB` (also while it is being written).")
+    lg.add_argument("db", help="the log database (created if missing, resumed if it exists)")
+    lg.add_argument("--device", default=None, help="log from this input device (index or part of its name)")
+    lg.add_argument("--source", metavar="PATH", help="log from a recording, as fast as it can be read")
+    lg.add_argument("--hours", type=float, default=None, metavar="H", help="stop after H hours of audio (default: "
+                    "until Ctrl-C or the end of the recording)")
+    lg.add_argument("--label", default=None, help="what is logged, e.g. 'hall clock, after service'")
+    lg.add_argument("--rate-hz", type=int, default=48000, help="device sample rate, Hz (default 48000)")
+    lg.add_argument("--channel", type=int, default=None, help="channel to analyze")
+    lg.add_argument("--clock-ppm", type=parse_ppm, default=None, metavar="X[+-U]",
+                    help="the device's sample clock runs fast by X ppm (± U, 95 %%)")
+    lg.add_argument("--clock-profile", metavar="NAME", help="correct with a saved clock profile (see calibrate)")
+    lg.add_argument("--keep-audio", choices=("none", "anomalies"), default="none",
+                    help="keep short clips around missed and failed steps, correction pulses and other sounds "
+                         "(default none: no audio is kept)")
+    lg.add_argument("--clip-budget-mb", type=float, default=20.0, help="at most this many MB of clips (default 20)")
+    lg.add_argument("--json", action="store_true", help="no screen; print the segment's totals as JSON at the end")
+    lg.add_argument("--quiet", action="store_true", help="no progress bar or live screen")
+    lg.set_defaults(func=cmd_log)
+
+    rp = sub.add_parser("report", help="report on a log: rate over time, time error, Allan deviation, plots",
+                        description="Read a log database (also one still being written) and report the rate "
+                                    "per hour and minute, the time interval error, the overlapping Allan deviation, "
+                                    "missed and failed steps, gaps and ring-down over time.")
+    rp.add_argument("db", help="the log database")
+    rp.add_argument("--out", metavar="DIR", help="write rate.png, tie.png, adev.png, ringdown.png and report.json here")
+    rp.add_argument("--json", action="store_true", help="print one JSON object instead of the report")
+    rp.add_argument("--steps-csv", metavar="PATH", help="export every logged event (same columns as analyze)")
+    rp.add_argument("--clock-ppm", type=parse_ppm, default=None, metavar="X[+-U]",
+                    help="correct the whole log: the device's clock runs fast by X ppm")
+    rp.add_argument("--clock-profile", metavar="NAME", help="correct the whole log with a saved clock profile")
+    rp.set_defaults(func=cmd_report)
 
     s = sub.add_parser("simulate", help="write a simulated recording with its truth file",
                        description="Write a recording of a simulated stepping-motor movement (WAV, FLAC, OGG or MP3 by "

@@ -93,3 +93,86 @@ class StepsCsv:
 def rate_words(rate_s_per_day: float) -> str:
     """'gains 2.71 s/day' / 'loses 0.40 s/day'."""
     return f"{'gains' if rate_s_per_day >= 0 else 'loses'} {abs(rate_s_per_day):.3f} s/day"
+
+
+def log_to_dict(fig, *, db: str, meta: dict, segments, time_base: str, device_clock: list[dict] | None = None) -> dict:
+    """The JSON object of ``report --json`` (schema in the README)."""
+    r = fig.rate
+    ad = fig.adev
+    tie = fig.tie
+    return {
+        "db": db,
+        "label": meta.get("label") or None,
+        "segments": [{"id": s.id, "source": s.source, "join": s.join_kind, "timeline_s": _num(s.timeline_s, 3),
+                      "duration_s": _num(s.duration_s, 3), "sample_rate_hz": s.sample_rate_hz,
+                      "clock_ppm": _num(s.clock_ppm), "ended": s.end_reason or "still logging or interrupted",
+                      "version": s.version} for s in segments],
+        "duration_s": _num(fig.duration_s, 3),
+        "span_s": _num(fig.span_s, 3),
+        "step_interval_s": _num(fig.nominal_s),
+        "steps_detected": fig.steps_detected,
+        "missed_steps": fig.missed_steps,
+        "missed_step_times_s": [round(float(t), 6) for t in fig.missed_times_s],
+        "failed_steps": fig.failed_steps,
+        "failed_step_times_s": [round(float(t), 6) for t in fig.failed_times_s],
+        "correction_pulses": fig.correction_pulses,
+        "rejected_events": fig.rejected_events,
+        "gaps": [{"start_s": round(a, 3), "end_s": round(b, 3), "kind": k} for a, b, k in fig.gaps],
+        "rate_s_per_day": _num(r.rate_s_per_day, 6) if r else None,
+        "rate_ci95_s_per_day": _num(r.ci95_s_per_day, 6) if r else None,
+        "rate_ppm": _num(r.rate_s_per_day / 0.0864, 4) if r else None,
+        "timing_jitter_us": _num(r.jitter_us, 3) if r else None,
+        "clock_correction_ppm": _num(fig.clock_correction_ppm),
+        "clock_correction_u95_ppm": _num(fig.clock_ppm_u95),
+        "time_base": time_base,
+        "device_clock_vs_host": device_clock or [],
+        "hourly": [{k: (_num(v, 6) if isinstance(v, float) else v) for k, v in h.items()} for h in fig.hourly],
+        "minutes": [{"minute": m["minute"], "steps": m.get("steps"), "missed": m.get("missed"),
+                     "rate_s_per_day": _num(m.get("rate_s_per_day"), 6),
+                     "rate_ci95_s_per_day": _num(m.get("rate_ci95_s_per_day"), 6)} for m in fig.minutes],
+        "adev": None if ad is None else {
+            "tau_s": [float(v) for v in ad.tau_s], "deviation": [float(v) for v in ad.deviation],
+            "ci95_low": [float(v) for v in ad.lower], "ci95_high": [float(v) for v in ad.upper],
+            "n_terms": [int(v) for v in ad.n_terms], "edf": [round(float(v), 2) for v in ad.edf],
+            "noise_alpha": [int(v) for v in ad.alpha]},
+        "tie_s": None if tie is None else {
+            "final": _num(tie.final_s, 9), "peak_to_peak": _num(tie.peak_to_peak_s, 9),
+            "detrended_rms": _num(tie.detrended_rms_s, 9), "detrended_peak_to_peak": _num(tie.detrended_peak_to_peak_s, 9)},
+        "worst_hour": fig.worst_hour,
+        "best_stretch": None if fig.best_stretch is None else {k: _num(v, 6) for k, v in fig.best_stretch.items()},
+        "ringdown_hourly": fig.ringdown_hourly,
+        "notes": fig.notes,
+    }
+
+
+_KIND_NAMES = {0: "step", 1: "missed", 2: "failed", 3: "correction", 4: "rejected"}
+_FLAG_NAMES = {1: "clipped", 2: "low-match", 4: "truncated", 8: "ringdown"}
+
+
+def write_log_csv(fh, T, K, ev: dict) -> int:
+    """Every logged event with the columns of ``analyze --steps-csv`` (time on the log's timeline)."""
+    w = csv.writer(fh, lineterminator="\n")
+    w.writerow(CSV_HEADER)
+    last_k = last_t = None
+    n = 0
+    order = sorted(range(len(T)), key=lambda i: T[i])
+    for i in order:
+        kind = _KIND_NAMES.get(int(ev["kind"][i]), "?")
+        if kind == "missed":
+            continue
+        k = int(K[i])
+        interval = ""
+        if kind == "step" and k >= 0:
+            if last_k is not None and k == last_k + 1:
+                interval = f"{T[i] - last_t:.9f}"
+            last_k, last_t = k, T[i]
+        flags = [nm for bit, nm in _FLAG_NAMES.items() if int(ev["flags"][i]) & bit]
+        if kind != "step":
+            flags.insert(0, kind)
+        pk, dc = float(ev["peak_dbfs"][i]), float(ev["decay_ms"][i])
+        pol = int(ev["pol"][i])
+        w.writerow([n, "" if k < 0 else k, f"{T[i]:.9f}", ("A" if pol == 0 else "B") if kind == "step" and pol >= 0 else "",
+                    interval, "" if not math.isfinite(pk) else f"{pk:.2f}", "" if not math.isfinite(dc) else f"{dc:.3f}",
+                    ";".join(flags)])
+        n += 1
+    return n

@@ -47,6 +47,12 @@ class _Column:
     def values(self) -> np.ndarray:
         return self._a[: self.n]
 
+    def keep_last(self, n: int) -> None:
+        """Forget all but the last n values (bounded history for long logs)."""
+        if self.n > n:
+            self._a[:n] = self._a[self.n - n: self.n]
+            self.n = n
+
 
 class Analyzer:
     """Streaming analysis of one channel of audio.
@@ -61,11 +67,15 @@ class Analyzer:
         The device's sample clock runs fast by this many ppm (None: uncalibrated).
     clock_ppm_u95 : float
         95 % half-width of ``clock_ppm``.
+    history_steps : int or None
+        Keep only about this many recent steps (and other events) in memory: a long log
+        stores its steps in the database and its summary covers the recent past.  None
+        keeps everything (a file, a listening session).
     """
 
     def __init__(self, samplerate: float, *, channel: int = 0, clock_ppm: float | None = None,
                  clock_ppm_u95: float = 0.0, detector: DetectorConfig | None = None,
-                 tracker: TrackerConfig | None = None):
+                 tracker: TrackerConfig | None = None, history_steps: int | None = None):
         if not samplerate or samplerate <= 0:
             raise ParameterError(f"samplerate={samplerate!r}: expected > 0")
         self.samplerate = float(samplerate)
@@ -101,6 +111,9 @@ class Analyzer:
         self._finished = False
         self._final_events: list[Event] = []
         self.trailing_silence_slots = 0
+        if history_steps is not None and history_steps < 64:
+            raise ParameterError(f"history_steps={history_steps}: expected >= 64")
+        self.history_steps = history_steps
 
     # -- feeding ---------------------------------------------------------------------------
     def feed(self, block: Block) -> list[Event]:
@@ -196,7 +209,29 @@ class Analyzer:
                     self.sec_k.append(ev.step)
                     self.sec_delay.append(ev.time_s - self.step_t.values[-1])
             out.append(ev)
+        if self.history_steps is not None:
+            self._trim(self.history_steps)
         return out
+
+    def _trim(self, n: int) -> None:
+        if self.step_k.n > 2 * n:
+            for c in (self.step_k, self.step_t, self.step_pol, self.step_match, self.step_decay, self.step_snr,
+                      self.step_peak, self.step_flags):
+                c.keep_last(n)
+        for pair in ((self.missed_t, self.missed_k), (self.failed_k, self.failed_t), (self.correction_k,),
+                     (self.sec_k, self.sec_delay), (self.rejected_snr,)):
+            if pair[0].n > 2 * n:
+                for c in pair:
+                    c.keep_last(n)
+        if len(self.gaps) > 2 * 64:
+            del self.gaps[:-64]
+
+    def decided_until_s(self) -> float:
+        """Every step slot before this time (s) has been decided (a log resumes from here)."""
+        tr = self.tracker
+        if tr.acquired:
+            return max(0.0, tr.predict(tr._next_slot) - 0.5 * tr._b)
+        return max(0.0, self.duration_s - tr.cfg.acquire_max_s - 5.0)
 
     # -- results ---------------------------------------------------------------------------
     @property

@@ -149,6 +149,8 @@ class StepTracker:
     def add_gap(self, start_s: float, end_s: float) -> None:
         """Audio between these times was lost (input overflow): slots there are not missed."""
         self._gaps.append((start_s, end_s))
+        if len(self._gaps) > 128:  # only recent gaps can still hold undecided slots
+            del self._gaps[:-64]
 
     def add(self, impacts: list[Impact], position_s: float) -> list[Event]:
         """Take new impacts (in time order) and the stream position; return decided events."""
@@ -214,7 +216,9 @@ class StepTracker:
         # mislead: a phone's gain control lifts the noise between steps to the steps' level)
         # (a sound out of digital silence can stand 200 dB over its "floor": capped at 60 dB)
         snr = np.minimum(np.array([o.imp.frame_snr_db for o in buf]), 60.0)
-        w = np.clip(10 ** ((snr - np.median(snr)) / 10), 0.05, 2.0)  # no single sound dominates
+        # relative to the upper quartile: the steps, when they are a quarter of the sounds or more
+        # (quiet noise impacts, up to several a second in a quiet room at 8 kHz, then weigh little)
+        w = np.clip(10 ** ((snr - np.percentile(snr, 75)) / 10), 0.05, 2.0)  # no single sound dominates
         found = find_interval(t, w)
         if found is None or found[2] < self.cfg.min_coherence:
             if final:

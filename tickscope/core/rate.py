@@ -22,22 +22,32 @@ from ..model import RateEstimate
 from ..units import SECONDS_PER_DAY
 
 
-def _lsq(k: np.ndarray, t: np.ndarray, polarity_term: bool):
-    """Least squares t = a + b k (+ c [k odd]); returns (b, a, c, residuals)."""
-    cols = [np.ones_like(k), k - k.mean()]
+def _lsq(k: np.ndarray, t: np.ndarray, polarity_term: bool, groups: np.ndarray | None = None):
+    """Least squares t = a_g + b k (+ c [k odd]); returns (b, a, c, residuals).
+
+    With ``groups`` every group (a stretch of a log whose phase is not tied to the others)
+    has its own intercept; ``a`` is then the first group's.
+    """
+    km = k.mean()
+    if groups is None:
+        cols = [np.ones_like(k)]
+    else:
+        cols = [(groups == g).astype(np.float64) for g in np.unique(groups)]
+    ng = len(cols)
+    cols.append(k - km)
     if polarity_term:
         cols.append((k % 2) - 0.5)
     A = np.vstack(cols).T
     coef, *_ = np.linalg.lstsq(A, t, rcond=None)
     res = t - A @ coef
-    a = coef[0] - coef[1] * k.mean()
-    return coef[1], a, (coef[2] if polarity_term else 0.0), res
+    a = coef[0] - coef[ng] * km
+    return coef[ng], a, (coef[ng + 1] if polarity_term else 0.0), res
 
 
 def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, *,
              clock_ppm: float = 0.0, clock_ppm_u95: float = 0.0,
              outlier_sigmas: float = 5.0, polarity_term: bool = True,
-             min_ci_s_per_day: float = 0.001) -> RateEstimate:
+             min_ci_s_per_day: float = 0.001, groups: np.ndarray | None = None) -> RateEstimate:
     """Fit the daily rate to step numbers and times.
 
     Parameters
@@ -60,6 +70,9 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         recordings the timing estimator shows sub-nanosecond systematic drifts (its bias
         depends slightly on where a step falls between samples), so narrower intervals
         would claim more than the method delivers.
+    groups : np.ndarray [shape=(n,), int], optional
+        Stretches whose phase is not tied together (segments of a log joined only by the
+        wall clock): each gets its own intercept, and the rate is their common slope.
 
     Returns
     -------
@@ -82,10 +95,25 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     if not nominal_interval_s > 0:
         raise ParameterError(f"nominal_interval_s={nominal_interval_s!r}: expected > 0")
     polarity_term = polarity_term and len(np.unique(k % 2)) == 2 and len(k) >= 6
+    g = None if groups is None else np.asarray(groups)
+    if g is not None and g.shape != k.shape:
+        raise ParameterError("groups must have one entry per step")
+    if g is not None and len(np.unique(g)) == 1:
+        g = None
     keep = np.ones(len(k), dtype=bool)
     for _ in range(3):
-        b, a, c, _r = _lsq(k[keep], t[keep], polarity_term)
-        r = t - (a + b * k + c * ((k % 2) - 0.5))
+        b, a, c, _r = _lsq(k[keep], t[keep], polarity_term, None if g is None else g[keep])
+        if g is None:
+            r = t - (a + b * k + c * ((k % 2) - 0.5))
+        else:
+            r = np.empty(len(k))
+            r[keep] = _r
+            # outside the kept set: against the line of the step's own group
+            for gg in np.unique(g[~keep]):
+                sel = keep & (g == gg)
+                off = float(np.median(t[sel] - b * k[sel] - c * ((k[sel] % 2) - 0.5))) if sel.any() else 0.0
+                out = ~keep & (g == gg)
+                r[out] = t[out] - (off + b * k[out] + c * ((k[out] % 2) - 0.5))
         med = np.median(r[keep])
         s = 1.4826 * np.median(np.abs(r[keep] - med))
         new = np.abs(r - med) <= max(outlier_sigmas * s, 1e-9)
@@ -93,15 +121,26 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
             break
         keep = new
     kk, tt = k[keep], t[keep]
+    gg = None if g is None else g[keep]
     n = len(kk)
-    b, a, c, res = _lsq(kk, tt, polarity_term)
-    sxx = float(np.sum((kk - kk.mean()) ** 2))
-    dof = max(n - 2 - int(polarity_term), 1)
+    b, a, c, res = _lsq(kk, tt, polarity_term, gg)
+    n_groups = 1 if gg is None else len(np.unique(gg))
+    if gg is None:
+        sxx = float(np.sum((kk - kk.mean()) ** 2))
+        span_steps = float(kk.max() - kk.min()) + 1
+    else:
+        sxx = span_steps = 0.0
+        for v in np.unique(gg):
+            kv = kk[gg == v]
+            sxx += float(np.sum((kv - kv.mean()) ** 2))
+            span_steps += float(kv.max() - kv.min()) + 1
+    dof = max(n - 1 - n_groups - int(polarity_term), 1)
     s2 = float(np.sum(res**2)) / dof
-    # lag-1 autocorrelation over consecutive steps only
-    order = np.argsort(kk)
+    # lag-1 autocorrelation over consecutive steps only (of the same group)
+    order = np.argsort(kk, kind="stable") if gg is None else np.lexsort((kk, gg))
     kk_o, res_o = kk[order], res[order]
-    adj = np.flatnonzero(np.diff(kk_o) == 1)
+    same = np.ones(len(kk_o) - 1, dtype=bool) if gg is None else np.diff(gg[order]) == 0
+    adj = np.flatnonzero((np.diff(kk_o) == 1) & same)
     rho = 0.0
     if len(adj) >= 8 and s2 > 0:
         rho = float(np.sum(res_o[adj] * res_o[adj + 1]) / np.sum(res_o**2) * n / max(len(adj), 1))
@@ -112,9 +151,9 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     # (each step time scattered independently) and white frequency noise (each interval
     # scattered independently: the phase wanders as a random walk).  From the intervals
     # d_k of consecutive steps: var(d) = 2 s_pm^2 + s_fm^2 and cov(d_k, d_k+1) = -s_pm^2.
-    # OLS slope variance: 12 s_pm^2 / N^3 + (6/5) s_fm^2 / N (large-N forms; from memory).
+    # OLS slope variance: s_pm^2 / Sxx (= 12 s_pm^2 / N^3) + (6/5) s_fm^2 / N (large-N forms; from memory).
     if len(adj) >= 8:
-        d = np.diff(res_o)[np.diff(kk_o) == 1]  # residual intervals: line and polarity removed
+        d = np.diff(res_o)[(np.diff(kk_o) == 1) & same]  # residual intervals: line and polarity removed
         d = d - d.mean()
         c1 = float(np.mean(d[:-1] * d[1:])) if len(d) > 2 else 0.0
         s_pm2 = max(-c1, 0.0)
@@ -122,8 +161,7 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         s_fm2 = max(vd - 2 * s_pm2, 0.0)
         if s_fm2 < 3.0 * vd * np.sqrt(2.0 / len(d)):  # not significant: sampling scatter alone
             s_fm2 = 0.0
-        span_steps = float(kk.max() - kk.min()) + 1
-        var_mix = 12 * s_pm2 / span_steps**3 + 1.2 * s_fm2 / span_steps
+        var_mix = s_pm2 / sxx + 1.2 * s_fm2 / span_steps
         if var_mix > var_b:
             infl = max(infl, var_mix / (s2 / sxx)) if s2 > 0 and sxx > 0 else infl
             var_b = var_mix

@@ -61,6 +61,7 @@ class Scenario:
     movement: str = "wallclock"
     step_interval_s: float = 1.0
     rate_s_per_day: float = 0.0
+    rate_drift_s_per_day_per_h: float = 0.0  # the rate changes by this much every hour (warming, a weakening cell)
     clock_ppm: float = 0.0
     first_step_s: float = 0.5
     jitter_us: float = 0.0
@@ -110,6 +111,8 @@ def _check(sc: Scenario) -> None:
         raise ParameterError(f"samplerate_hz={sc.samplerate_hz!r}: expected 4000..384000")
     if not sc.duration_s > 0:
         raise ParameterError(f"duration_s={sc.duration_s!r}: expected > 0")
+    if sc.rate_drift_s_per_day_per_h and (sc.inhibition_pulses or sc.burst_steps > 1):
+        raise ParameterError("a rate drift cannot be combined with logic regulation or bursts in the simulator")
     if sc.movement not in MOVEMENTS:
         raise ParameterError(f"movement={sc.movement!r}: expected one of {sorted(MOVEMENTS)}")
     if sc.noise not in ("white", "pink"):
@@ -175,6 +178,13 @@ def step_times_true(sc: Scenario) -> tuple[np.ndarray, np.ndarray]:
     n = int(math.floor((sc.duration_s - sc.first_step_s) / interval)) + 1
     k = np.arange(max(n, 0))
     t = sc.first_step_s + k * interval
+    if sc.rate_drift_s_per_day_per_h and len(k):
+        # the rate at nominal time e: r0 + drift * e / 3600; each interval keeps the rate of its start
+        e = k[:-1] * sc.step_interval_s
+        iv = sc.step_interval_s / (1.0 + (sc.rate_s_per_day + sc.rate_drift_s_per_day_per_h * e / 3600.0) / 86400.0)
+        t = sc.first_step_s + np.concatenate([[0.0], np.cumsum(iv)])
+        t = t[t <= sc.duration_s]
+        k = k[: len(t)]
     if sc.inhibition_period_s > 0 and sc.inhibition_pulses:
         # Between corrections the crystal runs fast so that the mean rate is the stated
         # one; once per period the divider swallows pulses and the step comes late.

@@ -107,14 +107,28 @@ def match(snippet: np.ndarray, template: Template, *, max_lag: int) -> tuple[flo
     lags = lags[(lags >= 0) & (lags <= len(x) - len(t))]
     if not len(lags):
         return 0.0, 0.0
-    j = int(lags[np.argmax(c[lags])])
-    # start Newton from the three-point parabola: two or three steps then suffice
-    y0, y1, y2 = c[j - 1], c[j], c[(j + 1) % nfft]
-    den = y0 - 2 * y1 + y2
-    start = j + (0.5 * (y0 - y2) / den if den < 0 else 0.0)
-    tau, val = _newton_peak(C, nfft, float(start), iters=3)
-    if abs(tau - j) > 1.0:  # Newton wandered: keep the integer peak
-        tau, val = float(j), float(c[j])
+    cl = c[lags]
+    top = float(cl.max())
+    # A ringing step's correlation oscillates at its ring frequency.  At a low sample rate
+    # (8 kHz, a 1.2 kHz ring: 6.5 samples a cycle) the true peak can fall between samples
+    # and read lower than the next cycle's, so every lobe near the top is refined and the
+    # best refined one wins (otherwise whole ring cycles slip: ~0.8 ms at 8 kHz).
+    inner = (cl[1:-1] >= cl[:-2]) & (cl[1:-1] >= cl[2:]) & (cl[1:-1] >= 0.75 * top)
+    cands = [int(lags[1 + i]) for i in np.flatnonzero(inner)] or [int(lags[np.argmax(cl)])]
+    if int(lags[np.argmax(cl)]) not in cands:
+        cands.append(int(lags[np.argmax(cl)]))
+    best = None
+    for j in cands:
+        # start Newton from the three-point parabola: two or three steps then suffice
+        y0, y1, y2 = c[j - 1], c[j], c[(j + 1) % nfft]
+        den = y0 - 2 * y1 + y2
+        start = j + (0.5 * (y0 - y2) / den if den < 0 else 0.0)
+        tau_j, val_j = _newton_peak(C, nfft, float(start), iters=3)
+        if abs(tau_j - j) > 1.0:  # Newton wandered: keep the integer peak
+            tau_j, val_j = float(j), float(c[j])
+        if best is None or val_j > best[1]:
+            best = (tau_j, val_j)
+    tau, val = best
     lag = a + tau - s0
     i0 = int(round(tau))
     seg = x[max(0, i0): i0 + len(t)]

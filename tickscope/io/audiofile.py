@@ -90,13 +90,20 @@ def choose_channel(path: str, info: FileInfo, seconds: float = 20.0) -> int:
     return best_c
 
 
-def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FRAMES) -> Iterator[Block]:
-    """Yield the chosen channel as float32 Blocks; the file is closed even if abandoned early."""
+def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FRAMES, *,
+           start_frame: int = 0) -> Iterator[Block]:
+    """Yield the chosen channel as float32 Blocks; the file is closed even if abandoned early.
+
+    With ``start_frame`` reading starts there, and the blocks count samples from it (a log
+    resumed part-way through a file).
+    """
     if not 0 <= channel < info.channels:
         raise ParameterError(f"--channel {channel}: {info.path} has channels 0..{info.channels - 1}")
     pos = 0
     try:
         with sf.SoundFile(path) as f:
+            if start_frame:
+                f.seek(int(start_frame))
             while True:
                 try:
                     x = f.read(block_frames, dtype="float32", always_2d=True)

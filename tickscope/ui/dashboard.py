@@ -80,7 +80,42 @@ def level_bar(level_dbfs: float, width: int = 24) -> Text:
     return t
 
 
-def render_live(s: Summary, st: LiveStatus, *, width: int = 80) -> RenderableType:
+def hourly_lines(hours, width: int, *, max_rows: int = 8) -> list[Text]:
+    """Rate per hour on one shared scale: each hour a row, its interval a bar, its estimate a mark.
+
+    ``hours``: records with ``hour, rate_s_per_day, ci95_s_per_day, steps, missed, complete``.
+    """
+    rows = [h for h in hours if math.isfinite(h.rate_s_per_day)][-max_rows:]
+    if not rows:
+        return [Text("rate per hour: the first hour is still filling", style="dim")]
+    lo = min(h.rate_s_per_day - h.ci95_s_per_day for h in rows)
+    hi = max(h.rate_s_per_day + h.ci95_s_per_day for h in rows)
+    pad = max((hi - lo) * 0.1, 0.005)
+    lo, hi = lo - pad, hi + pad
+    w = max(10, width - 40)
+
+    def col(v):
+        return int(round((v - lo) / (hi - lo) * (w - 1)))
+
+    out = [Text(f"rate per hour (s/day, 95 %)   scale {lo:+.3f} … {hi:+.3f}", style="dim")]
+    for h in rows:
+        t = Text(f"h{h.hour:<4d}", style="dim" if h.complete else "italic")
+        t.append(f"{h.rate_s_per_day:+8.3f} ±{h.ci95_s_per_day:6.3f} ")
+        bar = ["·"] * w
+        a, b = max(0, col(h.rate_s_per_day - h.ci95_s_per_day)), min(w - 1, col(h.rate_s_per_day + h.ci95_s_per_day))
+        for i in range(a, b + 1):
+            bar[i] = "─"
+        bar[min(w - 1, max(0, col(h.rate_s_per_day)))] = "◆"
+        t.append("".join(bar), style="cyan" if h.complete else "dim")
+        if h.missed:
+            t.append(f" {h.missed} missed", style="red")
+        out.append(t)
+    return out
+
+
+def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[RenderableType] | None = None,
+                mode: str = "listening") -> RenderableType:
+    """The live screen; ``extra`` rows (the log's hourly rates) go under the counts."""
     parts: list[RenderableType] = []
     ex = s.extras
     r = s.rate
@@ -108,6 +143,8 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80) -> RenderableTyp
     if r is not None:
         counts.append(f" · jitter {r.jitter_us:.1f} µs", style="dim")
     parts.append(counts)
+    if extra:
+        parts.extend(extra)
     if s.residuals_us is not None and len(s.residuals_us) >= 3:
         parts.append(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, width - 14), height=5))
     lv = Text("input ")
@@ -138,6 +175,6 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80) -> RenderableTyp
             w = "device clock uncalibrated (±4 s/day typical): pass --clock-ppm"
         parts.append(Text("! " + w, style="yellow", overflow="ellipsis", no_wrap=True))
     elapsed = f"{int(st.elapsed_s // 3600):02d}:{int(st.elapsed_s % 3600 // 60):02d}:{int(st.elapsed_s % 60):02d}"
-    title = f"tickscope · listening · {st.source}"
+    title = f"tickscope · {mode} · {st.source}"
     sub = f"{st.samplerate_hz:g} Hz · ch {st.channel} · {elapsed}" + (f" · saving {st.saving_to}" if st.saving_to else "")
     return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.ROUNDED, width=width)

@@ -48,3 +48,117 @@ def plot_analysis(summary, analyzer, path: str, *, title: str = "") -> None:
         raise ParameterError(f"cannot write {path}: {e.strerror}") from e
     finally:
         plt.close(fig)
+
+
+def _shade_gaps(ax, fig, scale: float = 1 / 3600) -> None:
+    for a, b, kind in fig.gaps:
+        if kind == "restart":
+            ax.axvline(a * scale, color="tab:blue", lw=0.8, ls=":", alpha=0.7)
+        else:
+            ax.axvspan(a * scale, b * scale, color="0.85", zorder=0, lw=0)
+
+
+def _mark_anomalies(ax, fig, scale: float = 1 / 3600) -> None:
+    for i, t in enumerate(fig.missed_times_s):
+        ax.axvline(t * scale, color="tab:red", lw=0.6, alpha=0.5, label="missed step" if i == 0 else None)
+    for i, t in enumerate(fig.failed_times_s):
+        ax.axvline(t * scale, color="tab:purple", lw=0.6, alpha=0.5, label="failed step" if i == 0 else None)
+
+
+def _save(plt, figure, path: str) -> None:
+    try:
+        figure.savefig(path, dpi=110)
+    except OSError as e:
+        raise ParameterError(f"cannot write {path}: {e.strerror}") from e
+    finally:
+        plt.close(figure)
+
+
+def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
+    """rate.png, tie.png, adev.png and ringdown.png of a log report; returns the paths written."""
+    import os
+
+    plt = _plt()
+    os.makedirs(out_dir, exist_ok=True)
+    paths = []
+    gap_note = "grey: no audio · dotted: analysis restarted"
+    # rate over time
+    f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
+    mins = [m for m in fig.minutes if m.get("rate_s_per_day") is not None]
+    if mins:
+        ax.plot([(m["minute"] + 0.5) / 60 for m in mins], [m["rate_s_per_day"] for m in mins], ".", ms=2,
+                color="0.6", label="per minute")
+    hrs = [h for h in fig.hourly if h["rate_s_per_day"] is not None]
+    if hrs:
+        ax.errorbar([(h["hour"] + 0.5) for h in hrs], [h["rate_s_per_day"] for h in hrs],
+                    yerr=[h["rate_ci95_s_per_day"] for h in hrs], fmt="o", ms=4, capsize=3, color="tab:blue",
+                    label="per hour, 95 % interval")
+    if fig.rate is not None:
+        r = fig.rate
+        ax.axhspan(r.rate_s_per_day - r.ci95_s_per_day, r.rate_s_per_day + r.ci95_s_per_day, color="tab:green",
+                   alpha=0.2, lw=0, label=f"whole log {r.rate_s_per_day:+.3f} ± {r.ci95_s_per_day:.3f} s/day")
+        if hrs:  # keep the per-minute scatter from hiding the hourly picture
+            lo = min(h["rate_s_per_day"] - h["rate_ci95_s_per_day"] for h in hrs)
+            hi = max(h["rate_s_per_day"] + h["rate_ci95_s_per_day"] for h in hrs)
+            pad = max(hi - lo, 0.02) * 1.5
+            ax.set_ylim(lo - pad, hi + pad)
+    _shade_gaps(ax, fig)
+    _mark_anomalies(ax, fig)
+    ax.set_xlabel(f"time since the log began (h) — {gap_note}")
+    ax.set_ylabel("rate (s/day, + gains)")
+    ax.set_title(f"{title}: rate over time")
+    ax.grid(alpha=0.3)
+    ax.legend(loc="best", fontsize=8)
+    paths.append(os.path.join(out_dir, "rate.png"))
+    _save(plt, f, paths[-1])
+    # time interval error
+    f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
+    if len(fig.step_x):
+        ax.plot(fig.step_t / 3600, fig.step_x * 1e3, "-", lw=1, color="tab:blue")
+    _shade_gaps(ax, fig)
+    _mark_anomalies(ax, fig)
+    ax.set_xlabel(f"time since the log began (h) — {gap_note}")
+    ax.set_ylabel("time interval error (ms, − = ahead)")
+    ax.set_title(f"{title}: time error against the audio clock" + (" (corrected)" if fig.clock_correction_ppm is not None else ""))
+    ax.grid(alpha=0.3)
+    if len(fig.missed_times_s) or len(fig.failed_times_s):
+        ax.legend(loc="best", fontsize=8)
+    paths.append(os.path.join(out_dir, "tie.png"))
+    _save(plt, f, paths[-1])
+    # Allan deviation
+    f, ax = plt.subplots(figsize=(7, 5.5), constrained_layout=True)
+    ad = fig.adev
+    if ad is not None and len(ad.tau_s):
+        ax.errorbar(ad.tau_s, ad.deviation, yerr=[ad.deviation - ad.lower, ad.upper - ad.deviation], fmt="o-",
+                    ms=4, capsize=3, color="tab:blue", label="overlapping ADEV, 95 % interval")
+        ax.set_xscale("log")
+        ax.set_yscale("log")
+        sec = ax.secondary_yaxis("right", functions=(lambda y: y * 86400, lambda y: y / 86400))
+        sec.set_ylabel("as s/day")
+        ax.legend(loc="best", fontsize=8)
+    ax.set_xlabel("averaging time τ (s)")
+    ax.set_ylabel("Allan deviation σy(τ)")
+    ax.set_title(f"{title}: stability")
+    ax.grid(alpha=0.3, which="both")
+    paths.append(os.path.join(out_dir, "adev.png"))
+    _save(plt, f, paths[-1])
+    # ring-down over time
+    f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
+    for name, c in (("A", "tab:green"), ("B", "tab:orange")):
+        rows = [r for r in fig.ringdown_hourly if r.get(name)]
+        if not rows:
+            continue
+        x = np.array([r["hour"] + 0.5 for r in rows])
+        med = np.array([r[name]["median_ms"] for r in rows])
+        ax.plot(x, med, "o-", ms=3, color=c, label=f"polarity {name}, hourly median")
+        ax.fill_between(x, [r[name]["q1_ms"] for r in rows], [r[name]["q3_ms"] for r in rows], color=c, alpha=0.2,
+                        lw=0, label=f"polarity {name}, quartiles")
+    _shade_gaps(ax, fig)
+    ax.set_xlabel(f"time since the log began (h) — {gap_note}")
+    ax.set_ylabel("ring-down decay τ (ms)")
+    ax.set_title(f"{title}: ring-down over time")
+    ax.grid(alpha=0.3)
+    ax.legend(loc="best", fontsize=8)
+    paths.append(os.path.join(out_dir, "ringdown.png"))
+    _save(plt, f, paths[-1])
+    return paths

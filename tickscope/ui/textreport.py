@@ -21,7 +21,7 @@ from ..model import Summary
 
 
 def residual_strip(times_s: np.ndarray | None, res_us: np.ndarray | None, *, width: int = 60,
-                   height: int = 7) -> Text:
+                   height: int = 7, time_unit: str = "s", caption: str = "residual µs") -> Text:
     """A text chart of timing residuals (us) against time: per column, the range as a band."""
     t = Text()
     if times_s is None or res_us is None or len(res_us) < 3:
@@ -61,8 +61,8 @@ def residual_strip(times_s: np.ndarray | None, res_us: np.ndarray | None, *, wid
             else:
                 t.append(ch, style=styles[r][c])
         t.append("\n")
-    t.append(" " * label_w + f"{t0:<.0f} s".ljust(cols - 8) + f"{t1:>.0f} s", style="dim")
-    t.append("\n" + " " * label_w + "residual µs · band: range per column · block: median", style="dim")
+    t.append(" " * label_w + f"{t0:<.3g} {time_unit}".ljust(cols - 8) + f"{t1:>.3g} {time_unit}", style="dim")
+    t.append("\n" + " " * label_w + f"{caption} · band: range per column · block: median", style="dim")
     return t
 
 

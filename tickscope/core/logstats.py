@@ -1,0 +1,376 @@
+"""Figures of a long log: rate over time, time interval error, Allan deviation, gaps (pure).
+
+Input: the log's segments (duck-typed records with ``id, source_kind, timeline_s, join_kind,
+clock_ppm, clock_ppm_u95, step_interval_s, duration_s``) and its events as numpy columns
+(see :meth:`tickscope.io.store.LogStore.events`).  Output: :class:`LogFigures`, the source
+of the log report's JSON, text and plots.
+
+Time bases.  Each segment's event times are on its own audio clock, starting at 0.  The
+log's timeline places segment time 0 at ``timeline_s``: for a file replay that is the file
+position (the same audio clock, so the segments join exactly, ``join_kind='exact'``); for a
+device it is the host's wall clock at the first sample (``'wall'``).  A clock correction
+of ``ppm`` converts audio seconds to true seconds by dividing by ``1 + ppm 1e-6``.
+
+Step numbers.  The steps of a later segment are numbered on from the earlier ones by
+extrapolating the line fitted to the last steps before the join and rounding.  Segments
+joined exactly keep one phase (one intercept in the rate fit, continuous time error);
+segments joined by the wall clock start a new *group* with its own intercept, and their
+time error is continued on the fitted rate (the phase across such a gap is not observed).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import stability as stab
+from .rate import fit_rate
+from ..units import SECONDS_PER_DAY
+
+KIND_STEP, KIND_MISSED, KIND_FAILED, KIND_CORRECTION, KIND_REJECTED = 0, 1, 2, 3, 4
+GOOD_MATCH = 0.6
+LOW_MATCH_BIT = 2
+RINGDOWN_BIT = 8
+REJECT_SNR_DB = 10.0  # off-grid sounds this far over the floor are counted (as analyze does)
+
+
+@dataclass
+class LogFigures:
+    segments: int
+    duration_s: float  # time covered by audio (sum of segments)
+    span_s: float  # first to last sample on the timeline (gaps included)
+    nominal_s: float | None
+    steps_detected: int
+    missed_steps: int
+    failed_steps: int
+    correction_pulses: int
+    rejected_events: int
+    rate: object | None  # RateEstimate over the whole log
+    clock_correction_ppm: float | None
+    clock_ppm_u95: float
+    groups: int
+    gaps: list[tuple[float, float, str]]  # (start, end, kind) on the timeline
+    hourly: list[dict]
+    minutes: list[dict]
+    adev: stab.AllanResult | None
+    tie: stab.TieSummary | None
+    worst_hour: dict | None
+    best_stretch: dict | None
+    missed_times_s: np.ndarray
+    failed_times_s: np.ndarray
+    rejected_times_s: np.ndarray
+    notes: list[str] = field(default_factory=list)
+    # arrays for plots: the timeline of good steps and their time error
+    step_t: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    step_x: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    step_k: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    ringdown_hourly: list[dict] = field(default_factory=list)
+
+
+def _fit_line(k: np.ndarray, t: np.ndarray) -> tuple[float, float]:
+    b, a = np.polyfit(k - k[-1], t, 1)
+    return float(a - b * k[-1]), float(b)
+
+
+def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
+                 override_ppm: float | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[str]]:
+    """Timeline times, global step numbers and group ids for every event.
+
+    Returns ``(T, K, G, notes)``; K is -1 for events without a step number.
+    """
+    T = np.zeros(len(ev["time_s"]))
+    K = np.full(len(T), -1, dtype=np.int64)
+    G = np.zeros(len(T), dtype=np.int64)
+    notes: list[str] = []
+    prev_k = prev_t = None
+    group = 0
+    for i, s in enumerate(segments):
+        sel = ev["seg"] == s.id
+        ppm = override_ppm if override_ppm is not None else (s.clock_ppm or 0.0)
+        c = 1.0 / (1.0 + ppm * 1e-6)
+        t = ev["time_s"][sel]
+        T[sel] = (s.timeline_s + t) * c if s.source_kind == "file" else s.timeline_s + t * c
+        k = ev["step"][sel].copy()
+        has = k >= 0
+        steps = has & (ev["kind"][sel] == KIND_STEP) & (ev["match"][sel] >= GOOD_MATCH)
+        if i > 0 and s.join_kind == "wall":
+            group += 1
+        G[sel] = group
+        if has.any():
+            if prev_k is not None and steps.any():
+                a, b = _fit_line(prev_k, prev_t)
+                j = int(np.flatnonzero(steps)[0])
+                guess = (T[sel][j] - a) / b
+                k0 = int(round(guess))
+                if abs(guess - k0) > 0.25:
+                    notes.append(f"segment {s.id}: its steps could not be numbered on from the last segment "
+                                 f"(off by {guess - k0:+.2f} steps); they start a new stretch")
+                    group += 1 if s.join_kind != "wall" else 0
+                    G[sel] = group
+                k = np.where(has, k - k[j] + k0, -1)
+            elif prev_k is not None:
+                k = np.where(has, k - k[has][0] + int(prev_k[-1]) + 1, -1)
+            K[sel] = k
+            if steps.any():
+                ks, ts = K[sel][steps], T[sel][steps]
+                prev_k, prev_t = ks[-600:].astype(np.float64), ts[-600:]
+    return T, K, G, notes
+
+
+def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), override_ppm: float | None = None,
+                override_u95: float = 0.0) -> LogFigures:
+    """Everything the log report shows (see module docstring)."""
+    segments = list(segments)
+    nominal = next((s.step_interval_s for s in segments if s.step_interval_s), None)
+    kinds = ev["kind"]
+    if nominal is None or not len(kinds):
+        return _empty(segments, nominal, ev, gaps, minutes)
+    T, K, G, notes = number_steps(segments, ev, nominal, override_ppm)
+    good = (kinds == KIND_STEP) & (ev["match"] >= GOOD_MATCH) & ((ev["flags"] & LOW_MATCH_BIT) == 0) & (K >= 0)
+    steps_all = kinds == KIND_STEP
+    # clock correction
+    ppms = [override_ppm] if override_ppm is not None else [s.clock_ppm for s in segments]
+    calibrated = all(p is not None for p in ppms)
+    u95 = override_u95 if override_ppm is not None else max((s.clock_ppm_u95 or 0.0) for s in segments)
+    clock_ppm = (ppms[0] if len(set(ppms)) == 1 else None) if calibrated else None
+    if calibrated and clock_ppm is None:
+        notes.append("segments carry different clock corrections: each segment is corrected by its own")
+    # overall rate: common slope, one intercept per group
+    rate = None
+    if good.sum() >= 3 and np.ptp(K[good]) >= 2:
+        rate = fit_rate(K[good], T[good], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
+                        groups=G[good])
+    # timeline spans: segments and gaps between them
+    spans = []
+    for s in segments:
+        ppm = override_ppm if override_ppm is not None else (s.clock_ppm or 0.0)
+        c = 1.0 / (1.0 + ppm * 1e-6)
+        a = s.timeline_s * c if s.source_kind == "file" else s.timeline_s
+        spans.append((a, a + s.duration_s * c, s))
+    gap_list: list[tuple[float, float, str]] = []
+    for (a0, b0, s0), (a1, b1, s1) in zip(spans[:-1], spans[1:]):
+        if a1 > b0 + 1e-6:
+            gap_list.append((b0, a1, "between segments"))
+        elif s1.join_kind == "exact" and s0.source_kind == "file":
+            gap_list.append((a1, a1, "restart"))  # a resumed replay: no audio lost, the analysis restarted
+    seg_span = {s.id: (a, b) for a, b, s in spans}
+    for seg, g0, g1, kind in gaps:
+        a, _ = seg_span.get(seg, (0.0, 0.0))
+        s = next((x for x in segments if x.id == seg), None)
+        ppm = override_ppm if override_ppm is not None else ((s.clock_ppm or 0.0) if s else 0.0)
+        c = 1.0 / (1.0 + ppm * 1e-6)
+        gap_list.append((a + g0 * c, a + g1 * c, kind or "overflow"))
+    gap_list.sort()
+    duration = sum(b - a for a, b, _ in spans)
+    t_lo = min(a for a, _, _ in spans)
+    t_hi = max(b for _, b, _ in spans)
+    # hourly rates, counts and ring-down
+    hourly, ring = [], []
+    hour = np.floor(T / 3600.0).astype(np.int64)
+    for h in range(int(math.floor(t_lo / 3600)), int(math.floor(max(t_hi - 1e-9, t_lo) / 3600)) + 1):
+        in_h = hour == h
+        gh = good & in_h
+        r = None
+        if gh.sum() >= 6 and np.ptp(K[gh]) >= 5:
+            r = fit_rate(K[gh], T[gh], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
+                         groups=G[gh])
+        covered = sum(max(0.0, min(b, (h + 1) * 3600) - max(a, h * 3600)) for a, b, _ in spans)
+        hourly.append({"hour": h, "start_s": h * 3600.0, "covered_s": round(covered, 3),
+                       "steps": int(np.count_nonzero(steps_all & in_h)),
+                       "missed": int(np.count_nonzero((kinds == KIND_MISSED) & in_h)),
+                       "failed": int(np.count_nonzero((kinds == KIND_FAILED) & in_h)),
+                       "rejected": int(np.count_nonzero((kinds == KIND_REJECTED) & in_h & (ev["snr_db"] >= REJECT_SNR_DB))),
+                       "rate_s_per_day": None if r is None else r.rate_s_per_day,
+                       "rate_ci95_s_per_day": None if r is None else r.ci95_s_per_day,
+                       "jitter_us": None if r is None else r.jitter_us})
+        row = {"hour": h}
+        for pol, name in ((0, "A"), (1, "B")):
+            d = ev["decay_ms"][steps_all & in_h & (ev["pol"] == pol)]
+            d = d[np.isfinite(d)]
+            row[name] = None if not len(d) else {"median_ms": float(np.median(d)),
+                                                 "q1_ms": float(np.percentile(d, 25)),
+                                                 "q3_ms": float(np.percentile(d, 75)),
+                                                 "abnormal": int(np.count_nonzero(
+                                                     (ev["flags"][steps_all & in_h & (ev["pol"] == pol)] & RINGDOWN_BIT) != 0))}
+        ring.append(row)
+    # time error and Allan deviation, per group (never across a wall-clock join)
+    adev = tie = None
+    step_t = np.zeros(0)
+    step_x = np.zeros(0)
+    step_k = np.zeros(0, dtype=np.int64)
+    if rate is not None:
+        pol_c = _polarity_offset_s(K[good], T[good], G[good])
+        sums = None
+        n_points = 0
+        n_out = 0
+        xs, ts, ks = [], [], []
+        x_end = None
+        for g in np.unique(G[good]):
+            sel = good & (G == g)
+            kg, tg = K[sel], T[sel]
+            kg, first = np.unique(kg, return_index=True)  # sorted; a step number appears once
+            tg = tg[first]
+            grid, x = stab.phase_from_steps(kg, tg - pol_c * ((kg % 2) - 0.5), nominal)
+            n_out += _drop_outliers(x)
+            if x_end is not None:
+                # continue on the fitted rate across the join: x grows by (b - nominal) per step
+                x = x + x_end[1] + (grid[0] - x_end[0]) * (rate.interval_s - nominal)
+            ok = np.isfinite(x)
+            x_end = (grid[ok][-1], x[ok][-1])
+            t_grid = np.full(len(grid), np.nan)
+            t_grid[kg - grid[0]] = tg
+            xs.append(x[ok])
+            ts.append(t_grid[ok])
+            ks.append(grid[ok])
+            m = stab.octave_factors(max(len(x), 4))
+            s_ = stab.oadev_sums(x, m)
+            n_points += int(ok.sum())
+            if sums is None:
+                sums = s_
+            else:
+                mm = np.union1d(sums.m, s_.m)
+                sums = _pad(sums, mm) + _pad(s_, mm)
+        step_x = np.concatenate(xs)
+        step_t = np.concatenate(ts)
+        step_k = np.concatenate(ks)
+        tie = stab.tie_summary(step_k, step_x)
+        if sums is not None and n_points >= 8:
+            adev = stab.oadev_from_sums(sums, nominal, n_points)
+        if n_out:
+            notes.append(f"{n_out} step{'s' if n_out != 1 else ''} sat far off their neighbours (a knock or a voice on top of the step): "
+                         "left out of the time error and the Allan deviation")
+    # missed / failed / rejected on the timeline
+    missed_t = T[kinds == KIND_MISSED]
+    failed_t = T[kinds == KIND_FAILED]
+    rej = (kinds == KIND_REJECTED) & (ev["snr_db"] >= REJECT_SNR_DB)
+    rejected_t = T[rej]
+    worst = _worst_hour(hourly, rate)
+    best = _best_stretch(spans, gap_list, np.sort(np.concatenate([missed_t, failed_t])), K, T, G, good, nominal, u95,
+                         calibrated)
+    return LogFigures(
+        segments=len(segments), duration_s=duration, span_s=t_hi - t_lo, nominal_s=nominal,
+        steps_detected=int(steps_all.sum()), missed_steps=int(len(missed_t)), failed_steps=int(len(failed_t)),
+        correction_pulses=int(np.count_nonzero(kinds == KIND_CORRECTION)), rejected_events=int(rej.sum()),
+        rate=rate, clock_correction_ppm=clock_ppm, clock_ppm_u95=u95 if calibrated else 0.0,
+        groups=int(G.max()) + 1 if len(G) else 1, gaps=gap_list, hourly=hourly, minutes=_merge_minutes(minutes),
+        adev=adev, tie=tie, worst_hour=worst, best_stretch=best, missed_times_s=missed_t, failed_times_s=failed_t,
+        rejected_times_s=rejected_t, notes=notes, step_t=step_t, step_x=step_x, step_k=step_k, ringdown_hourly=ring)
+
+
+def _polarity_offset_s(k: np.ndarray, t: np.ndarray, g: np.ndarray) -> float:
+    """How much later odd steps sound than even ones, from each step against its two neighbours.
+
+    A global least-squares polarity term picks up part of any curvature of the phase (a rate
+    that drifts over days), because alternating signs do not sum to zero against k^2 at the
+    ends; the local form ``x_k - (x_k-1 + x_k+1) / 2`` cancels the trend step by step.
+    """
+    vals = []
+    for gg in np.unique(g):
+        sel = g == gg
+        kk, first = np.unique(k[sel], return_index=True)
+        tt = t[sel][first]
+        if len(kk) < 3:
+            continue
+        trip = (kk[2:] - kk[:-2] == 2) & (kk[1:-1] - kk[:-2] == 1)
+        d = tt[1:-1] - 0.5 * (tt[:-2] + tt[2:])
+        sign = np.where(kk[1:-1] % 2 == 1, 1.0, -1.0)
+        vals.append((d * sign)[trip])
+    v = np.concatenate(vals) if vals else np.zeros(0)
+    return float(np.median(v)) if len(v) >= 8 else 0.0
+
+
+def _drop_outliers(x: np.ndarray, *, window: int = 31, sigmas: float = 6.0, floor_s: float = 2e-6) -> int:
+    """Set to NaN the steps far from the running median of their neighbours; returns how many.
+
+    The running median follows a drifting rate and a logic-regulation sawtooth, so only
+    single mis-timed steps stand out (the rate fit drops the same steps as outliers).
+    """
+    from scipy.ndimage import median_filter
+
+    ok = np.flatnonzero(np.isfinite(x))
+    if len(ok) < window:
+        return 0
+    v = x[ok] - np.polyval(np.polyfit(ok, x[ok], 1), ok)  # a straight ramp would bias the median at the ends
+    r = v - median_filter(v, size=window, mode="nearest")
+    mad = 1.4826 * float(np.median(np.abs(r - np.median(r))))
+    bad = np.abs(r - np.median(r)) > max(sigmas * mad, floor_s)
+    # a logic-regulation jump moves every later step: the running median follows it within
+    # half a window, so only isolated points are dropped (at most 1 in 50)
+    if bad.sum() > len(v) / 50:
+        return 0
+    x[ok[bad]] = np.nan
+    return int(bad.sum())
+
+
+def _pad(s: stab.AdevSums, m: np.ndarray) -> stab.AdevSums:
+    ss = np.zeros(len(m))
+    cnt = np.zeros(len(m), dtype=np.int64)
+    idx = np.searchsorted(m, s.m)
+    ss[idx] = s.sum_sq
+    cnt[idx] = s.count
+    return stab.AdevSums(m, ss, cnt)
+
+
+def _merge_minutes(rows) -> list[dict]:
+    """One row per timeline minute (a minute split by a restart has two rows: keep the fuller)."""
+    best: dict[int, dict] = {}
+    for r in rows:
+        m = int(r["minute"])
+        if m not in best or (r.get("steps") or 0) > (best[m].get("steps") or 0):
+            best[m] = dict(r)
+    return [best[m] for m in sorted(best)]
+
+
+def _worst_hour(hourly: list[dict], rate) -> dict | None:
+    """The hour with the most missed and failed steps; with none, the one whose rate strays furthest."""
+    if not hourly:
+        return None
+    bad = max(hourly, key=lambda h: h["missed"] + h["failed"])
+    if bad["missed"] + bad["failed"] > 0:
+        return {**bad, "why": f"{bad['missed']} missed and {bad['failed']} failed steps"}
+    scored = [h for h in hourly if h["rate_s_per_day"] is not None and h["covered_s"] >= 1800]
+    if not scored or rate is None:
+        return None
+    w = max(scored, key=lambda h: abs(h["rate_s_per_day"] - rate.rate_s_per_day)
+            / max(h["rate_ci95_s_per_day"] or 1e-3, 1e-3))
+    return {**w, "why": f"rate {w['rate_s_per_day'] - rate.rate_s_per_day:+.3f} s/day from the log's"}
+
+
+def _best_stretch(spans, gaps, anomalies_t, K, T, G, good, nominal, u95, calibrated) -> dict | None:
+    """The longest stretch with no missed or failed step and no gap, and its rate."""
+    cuts = sorted([a for a, _, _ in spans] + [b for _, b, _ in spans] + [g[0] for g in gaps] + [g[1] for g in gaps]
+                  + list(anomalies_t))
+    best = None
+    for a, b in zip(cuts[:-1], cuts[1:]):
+        if b - a <= 0:
+            continue
+        inside = any(sa <= a + 1e-9 and b <= sb + 1e-9 for sa, sb, _ in spans) and not any(
+            ga < b and gb > a and gb > ga for ga, gb, _ in gaps)
+        if inside and (best is None or b - a > best[1] - best[0]):
+            best = (a, b)
+    if best is None:
+        return None
+    a, b = best
+    sel = good & (T > a) & (T < b)
+    r = None
+    if sel.sum() >= 6 and np.ptp(K[sel]) >= 5:
+        r = fit_rate(K[sel], T[sel], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0, groups=G[sel])
+    return {"start_s": a, "end_s": b, "duration_s": b - a,
+            "rate_s_per_day": None if r is None else r.rate_s_per_day,
+            "rate_ci95_s_per_day": None if r is None else r.ci95_s_per_day}
+
+
+def _empty(segments, nominal, ev, gaps, minutes) -> LogFigures:
+    z = np.zeros(0)
+    dur = sum(s.duration_s for s in segments)
+    return LogFigures(segments=len(segments), duration_s=dur, span_s=dur, nominal_s=nominal,
+                      steps_detected=int(np.count_nonzero(ev["kind"] == KIND_STEP)), missed_steps=0, failed_steps=0,
+                      correction_pulses=0, rejected_events=0, rate=None, clock_correction_ppm=None, clock_ppm_u95=0.0,
+                      groups=1, gaps=[], hourly=[], minutes=_merge_minutes(minutes), adev=None, tie=None,
+                      worst_hour=None, best_stretch=None, missed_times_s=z, failed_times_s=z, rejected_times_s=z,
+                      notes=["no stepping pattern has been logged yet"])
+
+
+def rate_s_per_day_from_interval(interval_s: float, nominal_s: float) -> float:
+    return SECONDS_PER_DAY * (nominal_s / interval_s - 1.0)

@@ -1,0 +1,367 @@
+"""The log database: one SQLite file per log (WAL journal, no server).
+
+Layout (``SCHEMA_VERSION`` 1):
+
+``meta``      key/value: schema version, movement label, creation time, tickscope version
+``segments``  one row per run of ``tickscope log`` on this database: source, device, sample
+              rate, clock correction, where the segment sits on the log's timeline and how it
+              is joined to the one before (``exact``: same audio clock, e.g. a file resumed
+              where the last run stopped; ``wall``: by the host's wall clock only)
+``events``    every step, missed step, failed step, correction pulse and rejected sound:
+              segment, kind, step number, time on the segment's audio time base, polarity,
+              level, SNR, template match, ring-down, flags (small integers: ~35 bytes a row)
+``blocks``    host clock readings of the capture, thinned to the least-delayed block per
+              ``BLOCK_WINDOW_S`` (all a device-clock fit needs; see core/clockfit.py)
+``gaps``      audio lost inside a segment (input overflow)
+``minutes``   per-minute summaries: counts, rate and its interval, jitter, level, ring-down
+``clips``     optional short FLAC clips around anomalies (``--keep-audio anomalies``)
+
+Crash safety: the writer commits at least every few seconds; SQLite's WAL journal with
+``synchronous=FULL`` makes every commit durable, and a crash, ``kill -9`` or power cut at any
+moment leaves the database as of the last commit (SQLite's atomic commit guarantees; see
+sqlite.org "Atomic Commit In SQLite" and "Write-Ahead Logging").
+"""
+from __future__ import annotations
+
+import os
+import sqlite3
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import StoreError
+
+SCHEMA_VERSION = 1
+BLOCK_WINDOW_S = 10.0
+
+KIND_CODES = {"step": 0, "missed": 1, "failed": 2, "correction": 3, "rejected": 4}
+KIND_NAMES = {v: k for k, v in KIND_CODES.items()}
+FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8}
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
+CREATE TABLE IF NOT EXISTS segments (
+    id INTEGER PRIMARY KEY,
+    started_wall REAL NOT NULL,      -- unix time of the segment's first sample
+    ended_wall REAL,
+    source_kind TEXT NOT NULL,       -- 'file' | 'device'
+    source TEXT NOT NULL,
+    source_offset_s REAL NOT NULL DEFAULT 0,  -- file sources: where time 0 of the segment lies in the file
+    timeline_s REAL NOT NULL,        -- where time 0 of the segment lies on the log's timeline
+    join_kind TEXT NOT NULL,         -- 'first' | 'exact' | 'wall'
+    sample_rate_hz REAL NOT NULL,
+    channel INTEGER NOT NULL,
+    clock_ppm REAL,                  -- NULL: uncalibrated device time base
+    clock_ppm_u95 REAL NOT NULL DEFAULT 0,
+    time_base TEXT,
+    host_sync TEXT,
+    version TEXT,
+    step_interval_s REAL,
+    duration_s REAL NOT NULL DEFAULT 0,   -- audio processed (committed)
+    decided_s REAL NOT NULL DEFAULT 0,    -- every slot before this time is decided and stored
+    end_reason TEXT
+);
+CREATE TABLE IF NOT EXISTS events (
+    seg INTEGER NOT NULL, kind INTEGER NOT NULL, step INTEGER, time_s REAL NOT NULL,
+    pol INTEGER, peak_cdb INTEGER, snr_cdb INTEGER, match_pm INTEGER, decay_us INTEGER, flags INTEGER
+);
+CREATE TABLE IF NOT EXISTS blocks (
+    seg INTEGER NOT NULL, start_sample INTEGER NOT NULL, host_time_s REAL, wall_time_s REAL, adc_time_s REAL
+);
+CREATE TABLE IF NOT EXISTS gaps (seg INTEGER NOT NULL, start_s REAL NOT NULL, end_s REAL NOT NULL, kind TEXT);
+CREATE TABLE IF NOT EXISTS minutes (
+    seg INTEGER NOT NULL, minute INTEGER NOT NULL, steps INTEGER, missed INTEGER, failed INTEGER,
+    corrections INTEGER, rejected INTEGER, secondary INTEGER, rate_s_per_day REAL, rate_ci95_s_per_day REAL,
+    jitter_us REAL, peak_dbfs REAL, decay_a_ms REAL, decay_b_ms REAL,
+    PRIMARY KEY (seg, minute)
+);
+CREATE TABLE IF NOT EXISTS clips (
+    seg INTEGER NOT NULL, time_s REAL NOT NULL, kind TEXT, sample_rate_hz INTEGER, start_s REAL, flac BLOB
+);
+"""
+
+
+def _store_error(path: str, e: Exception) -> StoreError:
+    msg = str(e)
+    low = msg.lower()
+    if "full" in low:
+        why = "the disk is full"
+    elif "readonly" in low or "read-only" in low:
+        why = "the file or its folder is read-only"
+    elif "unable to open" in low:
+        why = "cannot open it (missing folder or no permission)"
+    elif "not a database" in low or "malformed" in low:
+        why = "it is not a tickscope log (not an SQLite database, or damaged)"
+    elif "locked" in low or "busy" in low:
+        why = "another program is writing it"
+    elif isinstance(e, OSError) and e.strerror:
+        why = e.strerror
+    else:
+        why = msg
+    return StoreError(f"log {path}: {why}")
+
+
+@dataclass(frozen=True)
+class Segment:
+    id: int
+    started_wall: float
+    ended_wall: float | None
+    source_kind: str
+    source: str
+    source_offset_s: float
+    timeline_s: float
+    join_kind: str
+    sample_rate_hz: float
+    channel: int
+    clock_ppm: float | None
+    clock_ppm_u95: float
+    time_base: str | None
+    host_sync: str | None
+    version: str | None
+    step_interval_s: float | None
+    duration_s: float
+    decided_s: float
+    end_reason: str | None
+
+
+class LogStore:
+    """One log database.  Writes are batched; :meth:`commit` makes them durable.
+
+    Parameters
+    ----------
+    path : str
+        The database file (created if missing, unless ``readonly``).
+    readonly : bool
+        Open for reading only (the report; works while a logger is writing).
+    """
+
+    def __init__(self, path: str, *, readonly: bool = False):
+        self.path = path
+        self.readonly = readonly
+        if readonly and not os.path.isfile(path):
+            raise StoreError(f"log {path}: no such file")
+        if not readonly:
+            d = os.path.dirname(os.path.abspath(path))
+            if not os.path.isdir(d):
+                raise StoreError(f"log {path}: the folder {d} does not exist")
+            if os.path.isdir(path):
+                raise StoreError(f"log {path}: is a directory")
+        try:
+            if readonly:
+                self.db = sqlite3.connect(f"file:{os.path.abspath(path)}?mode=ro", uri=True, timeout=10,
+                                          isolation_level=None, check_same_thread=False)
+            else:
+                self.db = sqlite3.connect(path, timeout=10, isolation_level=None, check_same_thread=False)
+                mode = self.db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+                if str(mode).lower() != "wal":
+                    raise StoreError(f"log {path}: the file system does not support SQLite's WAL journal")
+                self.db.execute("PRAGMA synchronous=FULL")
+                self.db.executescript(_SCHEMA)
+            self._check_schema()
+        except sqlite3.Error as e:
+            raise _store_error(path, e) from e
+        self._in_tx = False
+        self._event_rows: list[tuple] = []
+
+    # -- housekeeping ------------------------------------------------------------------------
+    def _check_schema(self) -> None:
+        try:
+            row = self.db.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
+        except sqlite3.OperationalError as e:
+            if "no such table" in str(e):
+                raise StoreError(f"log {self.path}: not a tickscope log (no meta table)") from e
+            raise
+        if row is None:
+            if self.readonly:
+                raise StoreError(f"log {self.path}: not a tickscope log (empty)")
+            return
+        if int(row[0]) > SCHEMA_VERSION:
+            raise StoreError(f"log {self.path}: written by a newer tickscope (schema {row[0]}); upgrade to read it")
+
+    def init_meta(self, label: str, version: str) -> None:
+        with self._guard():
+            have = self.db.execute("SELECT count(*) FROM meta").fetchone()[0]
+            if have:
+                return
+            self.db.execute("BEGIN")
+            self.db.executemany("INSERT INTO meta VALUES (?, ?)", [
+                ("schema_version", str(SCHEMA_VERSION)), ("label", label),
+                ("created_wall", repr(time.time())), ("tickscope_version", version)])
+            self.db.execute("COMMIT")
+
+    def meta(self) -> dict[str, str]:
+        with self._guard():
+            return dict(self.db.execute("SELECT key, value FROM meta").fetchall())
+
+    def set_meta(self, key: str, value: str) -> None:
+        self._begin()
+        with self._guard():
+            self.db.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, value))
+
+    def close(self) -> None:
+        try:
+            if self._in_tx and not self.readonly:
+                self.commit()
+        finally:
+            self.db.close()
+
+    def _guard(self):
+        return _Guard(self)
+
+    def _begin(self) -> None:
+        if not self._in_tx:
+            with self._guard():
+                self.db.execute("BEGIN IMMEDIATE")
+            self._in_tx = True
+
+    # -- writing -----------------------------------------------------------------------------
+    def new_segment(self, **f) -> int:
+        cols = ", ".join(f)
+        q = ", ".join("?" for _ in f)
+        self._begin()
+        with self._guard():
+            cur = self.db.execute(f"INSERT INTO segments ({cols}) VALUES ({q})", tuple(f.values()))
+        self.commit()
+        return int(cur.lastrowid)
+
+    def update_segment(self, seg: int, **f) -> None:
+        self._begin()
+        sets = ", ".join(f"{k}=?" for k in f)
+        with self._guard():
+            self.db.execute(f"UPDATE segments SET {sets} WHERE id=?", (*f.values(), seg))
+
+    def add_event(self, seg: int, kind: str, step: int | None, time_s: float, pol: int | None,
+                  peak_dbfs: float, snr_db: float, match: float, decay_ms: float, flags: tuple[str, ...]) -> None:
+        bits = 0
+        for fl in flags:
+            bits |= FLAG_BITS.get(fl, 0)
+        self._event_rows.append((seg, KIND_CODES[kind], step, float(time_s), pol, _i(peak_dbfs, 100), _i(snr_db, 100),
+                                 _i(match, 1000), _i(decay_ms, 1000), bits))
+
+    def add_block(self, seg: int, start_sample: int, host_s, wall_s, adc_s) -> None:
+        self._begin()
+        with self._guard():
+            self.db.execute("INSERT INTO blocks VALUES (?, ?, ?, ?, ?)", (seg, int(start_sample), host_s, wall_s, adc_s))
+
+    def add_gap(self, seg: int, start_s: float, end_s: float, kind: str) -> None:
+        self._begin()
+        with self._guard():
+            self.db.execute("INSERT INTO gaps VALUES (?, ?, ?, ?)", (seg, start_s, end_s, kind))
+
+    def add_minute(self, seg: int, row: dict) -> None:
+        self._begin()
+        cols = ", ".join(["seg", *row])
+        q = ", ".join("?" for _ in range(len(row) + 1))
+        with self._guard():
+            self.db.execute(f"INSERT OR REPLACE INTO minutes ({cols}) VALUES ({q})", (seg, *row.values()))
+
+    def add_clip(self, seg: int, time_s: float, kind: str, sample_rate_hz: int, start_s: float, flac: bytes) -> None:
+        self._begin()
+        with self._guard():
+            self.db.execute("INSERT INTO clips VALUES (?, ?, ?, ?, ?, ?)",
+                            (seg, time_s, kind, sample_rate_hz, start_s, sqlite3.Binary(flac)))
+
+    def clip_bytes(self) -> int:
+        with self._guard():
+            return int(self.db.execute("SELECT coalesce(sum(length(flac)), 0) FROM clips").fetchone()[0])
+
+    def commit(self) -> None:
+        """Write the batched rows and make everything durable."""
+        if self._event_rows:
+            self._begin()
+            with self._guard():
+                self.db.executemany("INSERT INTO events VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", self._event_rows)
+            self._event_rows = []
+        if self._in_tx:
+            try:
+                with self._guard():
+                    self.db.execute("COMMIT")
+            finally:
+                self._in_tx = False
+
+    def rollback(self) -> None:
+        self._event_rows = []
+        if self._in_tx:
+            try:
+                self.db.execute("ROLLBACK")
+            except sqlite3.Error:
+                pass
+            self._in_tx = False
+
+    # -- reading -----------------------------------------------------------------------------
+    def segments(self) -> list[Segment]:
+        with self._guard():
+            cur = self.db.execute("SELECT * FROM segments ORDER BY id")
+            names = [d[0] for d in cur.description]
+            return [Segment(**dict(zip(names, r))) for r in cur.fetchall()]
+
+    def events(self, seg: int | None = None, kinds: tuple[str, ...] | None = None) -> dict[str, np.ndarray]:
+        """Events as numpy columns (time order within each segment)."""
+        where, args = [], []
+        if seg is not None:
+            where.append("seg=?")
+            args.append(seg)
+        if kinds is not None:
+            where.append(f"kind IN ({','.join(str(KIND_CODES[k]) for k in kinds)})")
+        q = "SELECT seg, kind, step, time_s, pol, peak_cdb, snr_cdb, match_pm, decay_us, flags FROM events"
+        if where:
+            q += " WHERE " + " AND ".join(where)
+        q += " ORDER BY seg, time_s"
+        with self._guard():
+            rows = self.db.execute(q, args).fetchall()
+        a = np.array(rows, dtype=np.float64) if rows else np.zeros((0, 10))
+        return {
+            "seg": a[:, 0].astype(np.int64), "kind": a[:, 1].astype(np.int64),
+            "step": np.nan_to_num(a[:, 2], nan=-1).astype(np.int64), "time_s": a[:, 3],
+            "pol": np.nan_to_num(a[:, 4], nan=-1).astype(np.int64), "peak_dbfs": a[:, 5] / 100,
+            "snr_db": a[:, 6] / 100, "match": a[:, 7] / 1000, "decay_ms": a[:, 8] / 1000,
+            "flags": np.nan_to_num(a[:, 9]).astype(np.int64),
+        }
+
+    def gaps(self) -> list[tuple[int, float, float, str]]:
+        with self._guard():
+            return [tuple(r) for r in self.db.execute("SELECT seg, start_s, end_s, kind FROM gaps ORDER BY seg, start_s")]
+
+    def minutes(self) -> list[dict]:
+        with self._guard():
+            cur = self.db.execute("SELECT * FROM minutes ORDER BY seg, minute")
+            names = [d[0] for d in cur.description]
+            return [dict(zip(names, r)) for r in cur.fetchall()]
+
+    def blocks(self, seg: int) -> tuple[np.ndarray, np.ndarray]:
+        with self._guard():
+            rows = self.db.execute("SELECT start_sample, host_time_s FROM blocks WHERE seg=? ORDER BY start_sample",
+                                   (seg,)).fetchall()
+        a = np.array(rows, dtype=np.float64) if rows else np.zeros((0, 2))
+        return a[:, 0], a[:, 1]
+
+    def clips(self) -> list[tuple[int, float, str, int, float, bytes]]:
+        with self._guard():
+            return [tuple(r) for r in self.db.execute("SELECT seg, time_s, kind, sample_rate_hz, start_s, flac FROM clips "
+                                                      "ORDER BY seg, time_s")]
+
+    def integrity(self) -> str:
+        with self._guard():
+            return str(self.db.execute("PRAGMA integrity_check").fetchone()[0])
+
+
+class _Guard:
+    """Turns sqlite3 and OS errors into one-line StoreErrors (a full disk, a read-only file)."""
+
+    def __init__(self, store: LogStore):
+        self.store = store
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, et, e, tb):
+        if e is not None and isinstance(e, (sqlite3.Error, OSError)) and not isinstance(e, StoreError):
+            raise _store_error(self.store.path, e) from e
+        return False
+
+
+def _i(v: float, scale: float) -> int | None:
+    if v is None or not np.isfinite(v):
+        return None
+    return int(round(float(v) * scale))

@@ -1,0 +1,350 @@
+"""The log's sink: feeds the one pipeline and writes what it decides to the log database.
+
+``LogSession`` sits where the file report and the live screen sit for ``analyze`` and
+``listen``: the same :class:`~tickscope.pipeline.Analyzer` (with a bounded history), and
+everything it decides goes to :class:`~tickscope.io.store.LogStore`, committed every few
+seconds.  Nothing here grows with the number of steps: per-minute and per-hour work uses
+buffers of one minute and one hour, the audio kept for anomaly clips is a ring of a few
+seconds, and the clips themselves have a byte budget.
+"""
+from __future__ import annotations
+
+import io
+import math
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from .core.rate import fit_rate
+from .io.store import BLOCK_WINDOW_S, LogStore
+from .model import Block, Event
+from .pipeline import LOUD_REJECT_DB
+
+COMMIT_EVERY_S = 2.0  # wall seconds between commits (at most this much is lost to a crash)
+COMMIT_AUDIO_S = 60.0  # ... and at most this much audio when replaying a file faster than real time
+HISTORY_STEPS = 3600  # steps the analyzer keeps for the live summary (the database keeps all)
+CLIP_KINDS = ("missed", "failed", "correction", "rejected")
+
+
+@dataclass(frozen=True)
+class HourRate:
+    hour: int  # hour of the log's timeline
+    rate_s_per_day: float
+    ci95_s_per_day: float
+    steps: int
+    missed: int
+    complete: bool
+
+
+class _Bucket:
+    """Events of one minute or one hour (bounded by the bucket's length)."""
+
+    def __init__(self, index: int):
+        self.index = index
+        self.k: list[int] = []
+        self.t: list[float] = []
+        self.peak: list[float] = []
+        self.decay = {0: [], 1: []}
+        self.counts = dict.fromkeys(("steps", "missed", "failed", "corrections", "rejected", "secondary"), 0)
+
+    def add(self, ev: Event, good: bool) -> None:
+        if ev.kind == "step":
+            self.counts["steps"] += 1
+            if good:
+                self.k.append(int(ev.step))
+                self.t.append(ev.time_s)
+            self.peak.append(ev.peak_dbfs)
+            if math.isfinite(ev.decay_ms):
+                self.decay[0 if ev.polarity == "A" else 1].append(ev.decay_ms)
+        elif ev.kind == "correction":
+            self.counts["corrections"] += 1
+        elif ev.kind in self.counts:
+            self.counts[ev.kind] += 1
+        elif ev.kind + "s" in self.counts:
+            self.counts[ev.kind + "s"] += 1
+
+    def rate(self, nominal_s: float | None, clock_ppm: float | None, clock_u95: float):
+        if nominal_s is None or len(self.k) < 6 or max(self.k) - min(self.k) < 5:
+            return None
+        return fit_rate(np.array(self.k), np.array(self.t), nominal_s, clock_ppm=clock_ppm or 0.0,
+                        clock_ppm_u95=clock_u95)
+
+
+class ClipKeeper:
+    """Short audio clips around anomalies, within a byte budget (``--keep-audio anomalies``)."""
+
+    def __init__(self, samplerate: float, budget_bytes: int, used_bytes: int = 0, *, pre_s: float = 0.6,
+                 post_s: float = 1.0, min_spacing_s: float = 20.0):
+        self.fs = float(samplerate)
+        self.budget = budget_bytes
+        self.used = used_bytes
+        self.pre_s, self.post_s = pre_s, post_s
+        self.min_spacing_s = min_spacing_s
+        n = int(round((pre_s + post_s + 6.0) * self.fs))  # decisions come up to ~3 s after the sound
+        self._ring = np.zeros(n, dtype=np.float32)
+        self._end = 0  # stream sample index just after the ring's newest sample
+        self._pending: list[tuple[str, float]] = []
+        self._last: dict[str, float] = {}
+        self.skipped = 0
+
+    def audio(self, block: Block, start_sample: int) -> None:
+        x = np.asarray(block.samples, dtype=np.float32).reshape(-1)
+        if start_sample != self._end:  # a gap: the ring restarts
+            self._ring[:] = 0
+        need = len(x) + int(round((self.pre_s + self.post_s + 6.0) * self.fs))
+        if len(self._ring) < need:  # a sound is decided up to a block after it: keep two blocks' worth
+            self._ring = np.concatenate([np.zeros(need - len(self._ring), dtype=np.float32), self._ring])
+        n = len(self._ring)
+        if len(x) >= n:
+            self._ring[:] = x[-n:]
+        else:
+            self._ring = np.roll(self._ring, -len(x))
+            self._ring[-len(x):] = x
+        self._end = start_sample + len(x)
+
+    @property
+    def pending(self) -> int:
+        return len(self._pending)
+
+    def request(self, kind: str, time_s: float) -> None:
+        if self.used >= self.budget:
+            self.skipped += 1
+            return
+        if time_s - self._last.get(kind, -math.inf) < self.min_spacing_s or len(self._pending) >= 16:
+            self.skipped += 1
+            return
+        self._last[kind] = time_s
+        self._pending.append((kind, time_s))
+
+    def ready(self) -> list[tuple[str, float, float, bytes]]:
+        """Clips whose audio is complete: (kind, time_s, start_s, FLAC bytes)."""
+        import soundfile as sf
+
+        out, keep = [], []
+        pos_s = self._end / self.fs
+        ring_start_s = (self._end - len(self._ring)) / self.fs
+        for kind, t in self._pending:
+            if t + self.post_s > pos_s:
+                keep.append((kind, t))
+                continue
+            a = max(t - self.pre_s, ring_start_s, 0.0)
+            i0 = int(round((a - ring_start_s) * self.fs))
+            i1 = int(round((t + self.post_s - ring_start_s) * self.fs))
+            seg = self._ring[max(i0, 0): max(i1, 0)]
+            if len(seg) < 0.1 * self.fs:
+                self.skipped += 1
+                continue
+            buf = io.BytesIO()
+            sf.write(buf, np.clip(seg, -1, 1), int(round(self.fs)), format="FLAC", subtype="PCM_16")
+            data = buf.getvalue()
+            if self.used + len(data) > self.budget:
+                self.skipped += 1
+                continue
+            self.used += len(data)
+            out.append((kind, t, a, data))
+        self._pending = keep
+        return out
+
+
+class LogSession:
+    """One segment of a log: analyzer in, database out.
+
+    Parameters
+    ----------
+    store : LogStore
+    seg : int
+        The segment's id in the store.
+    analyzer : Analyzer or None
+        The pipeline (None when events are handed to :meth:`take` directly, e.g. by a test).
+    timeline_s : float
+        Where time 0 of this segment lies on the log's timeline (for minute and hour buckets).
+    nominal_s : float or None
+        The step interval when known in advance (otherwise from the analyzer once acquired).
+    """
+
+    def __init__(self, store: LogStore, seg: int, analyzer=None, *, timeline_s: float = 0.0,
+                 clock_ppm: float | None = None, clock_ppm_u95: float = 0.0, samplerate: float | None = None,
+                 nominal_s: float | None = None, clips: ClipKeeper | None = None,
+                 commit_every_s: float = COMMIT_EVERY_S, commit_audio_s: float = COMMIT_AUDIO_S, clock=time.monotonic):
+        self.store = store
+        self.seg = seg
+        self.an = analyzer
+        self.timeline_s = timeline_s
+        self.clock_ppm = clock_ppm
+        self.clock_u95 = clock_ppm_u95
+        self.fs = float(samplerate or (analyzer.samplerate if analyzer is not None else 1.0))
+        self._nominal = nominal_s
+        self.clips = clips
+        self.commit_every_s = commit_every_s
+        self.commit_audio_s = commit_audio_s
+        self._clock = clock
+        self._last_commit = clock()
+        self._last_commit_audio = 0.0
+        self.position_s = 0.0
+        self.totals = dict.fromkeys(("steps", "missed", "failed", "corrections", "rejected", "secondary", "gaps",
+                                     "faint"), 0)
+        self._minutes: dict[int, _Bucket] = {}
+        self._hour: _Bucket | None = None
+        self.hours: list[HourRate] = []  # closed hours of this segment (one entry per hour: small)
+        self._win: tuple[int, int, float, float, float, float] | None = None  # least-delayed block of the window
+        self.good_match = analyzer.tracker.cfg.good_match if analyzer is not None else 0.6
+        self.commits = 0
+
+    @property
+    def nominal_s(self) -> float | None:
+        if self.an is not None and self.an.tracker.nominal_s is not None:
+            return self.an.tracker.nominal_s
+        return self._nominal
+
+    # -- input ---------------------------------------------------------------------------------
+    def feed(self, block: Block) -> list[Event]:
+        """One block of audio through the pipeline; decided events go to the database."""
+        an = self.an
+        if block.gap_before > 0:
+            g0 = an.duration_s
+            self.store.add_gap(self.seg, g0, g0 + block.gap_before / self.fs, "overflow")
+            self.totals["gaps"] += 1
+        evs = an.feed(block)
+        self.position_s = an.duration_s
+        start = int(round(an.duration_s * self.fs)) - len(block.samples)
+        if self.clips is not None:
+            self.clips.audio(block, start)
+        if block.host_time_s is not None:
+            self._block_reading(start, block)
+        self.take(evs)
+        if self.clips is not None and self.clips.pending:
+            self._store_clips()
+        self.maybe_commit()
+        return evs
+
+    def _store_clips(self) -> None:
+        for kind, t, a, data in self.clips.ready():
+            self.store.add_clip(self.seg, t, kind, int(round(self.fs)), a, data)
+
+    def _block_reading(self, start: int, b: Block) -> None:
+        w = int(start / self.fs // BLOCK_WINDOW_S)
+        delay = b.host_time_s - start / self.fs
+        if self._win is not None and self._win[0] != w:
+            _, s0, h, wa, ad, _ = self._win
+            self.store.add_block(self.seg, s0, h, wa, ad)
+            self._win = None
+        if self._win is None or delay < self._win[5]:
+            self._win = (w, start, b.host_time_s, b.wall_time_s, b.adc_time_s, delay)
+
+    def take(self, events: list[Event], position_s: float | None = None) -> None:
+        """Store decided events and update the minute and hour buckets."""
+        if position_s is not None:
+            self.position_s = position_s
+        for ev in events:
+            if ev.kind == "secondary":
+                self.totals["secondary"] += 1
+                self._bucket_minute(ev).add(ev, False)
+                continue
+            if ev.kind == "rejected" and not ev.snr_db >= self.loud_db():
+                # faint off-grid sounds (a quiet room's noise at 8 kHz gives several a second)
+                # are counted per minute, not stored one by one
+                self.totals["faint"] += 1
+                self._bucket_minute(ev).add(ev, False)
+                continue
+            pol = None if ev.polarity not in ("A", "B") else (0 if ev.polarity == "A" else 1)
+            self.store.add_event(self.seg, ev.kind, ev.step, ev.time_s, pol, ev.peak_dbfs, ev.snr_db, ev.match,
+                                 ev.decay_ms, ev.flags)
+            key = {"step": "steps", "correction": "corrections"}.get(ev.kind, ev.kind)
+            if key in self.totals:
+                self.totals[key] += 1
+            good = ev.kind == "step" and ev.match >= self.good_match and "low-match" not in ev.flags
+            self._bucket_minute(ev).add(ev, good)
+            self._bucket_hour(ev).add(ev, good)
+            if self.clips is not None and ev.kind in CLIP_KINDS:
+                self.clips.request(ev.kind, ev.time_s)
+        self._close_minutes(self.position_s)
+
+    def loud_db(self) -> float:
+        """Off-grid sounds at least this far over the floor are stored (as ``analyze`` counts them)."""
+        an = self.an
+        if an is not None and an.step_snr.n >= 8:
+            return max(LOUD_REJECT_DB, float(np.median(an.step_snr.values[-200:])) - 10.0)
+        return LOUD_REJECT_DB
+
+    # -- buckets -------------------------------------------------------------------------------
+    def _bucket_minute(self, ev: Event) -> _Bucket:
+        m = int((self.timeline_s + ev.time_s) // 60)
+        b = self._minutes.get(m)
+        if b is None:
+            b = self._minutes[m] = _Bucket(m)
+        return b
+
+    def _close_minutes(self, position_s: float, final: bool = False) -> None:
+        now_min = (self.timeline_s + position_s - 5.0) / 60  # events arrive up to a few s late
+        for m in sorted(self._minutes):
+            if final or m + 1 <= now_min:
+                self._write_minute(self._minutes.pop(m))
+
+    def _write_minute(self, b: _Bucket) -> None:
+        r = b.rate(self.nominal_s, self.clock_ppm, self.clock_u95)
+        peak = float(np.median(b.peak)) if b.peak else None
+        da = float(np.median(b.decay[0])) if b.decay[0] else None
+        db = float(np.median(b.decay[1])) if b.decay[1] else None
+        self.store.add_minute(self.seg, {
+            "minute": b.index, **b.counts,
+            "rate_s_per_day": None if r is None else r.rate_s_per_day,
+            "rate_ci95_s_per_day": None if r is None else r.ci95_s_per_day,
+            "jitter_us": None if r is None else r.jitter_us, "peak_dbfs": peak, "decay_a_ms": da, "decay_b_ms": db})
+
+    def _bucket_hour(self, ev: Event) -> _Bucket:
+        h = int((self.timeline_s + ev.time_s) // 3600)
+        if self._hour is not None and h > self._hour.index:
+            self.hours.append(self._hour_rate(self._hour, complete=True))
+            self._hour = None
+        if self._hour is None:
+            self._hour = _Bucket(h)
+        return self._hour
+
+    def _hour_rate(self, b: _Bucket, complete: bool) -> HourRate:
+        r = b.rate(self.nominal_s, self.clock_ppm, self.clock_u95)
+        return HourRate(b.index, float("nan") if r is None else r.rate_s_per_day,
+                        float("nan") if r is None else r.ci95_s_per_day, b.counts["steps"], b.counts["missed"], complete)
+
+    def hourly(self) -> list[HourRate]:
+        """Rate per hour so far (the current hour last, marked incomplete)."""
+        cur = [self._hour_rate(self._hour, complete=False)] if self._hour is not None and self._hour.k else []
+        return self.hours[-48:] + cur
+
+    # -- durability ----------------------------------------------------------------------------
+    def maybe_commit(self) -> bool:
+        now = self._clock()
+        if now - self._last_commit >= self.commit_every_s or self.position_s - self._last_commit_audio >= self.commit_audio_s:
+            self.commit()
+            return True
+        return False
+
+    def commit(self) -> None:
+        decided = self.an.decided_until_s() if self.an is not None else self.position_s
+        self.store.update_segment(self.seg, duration_s=self.position_s, decided_s=decided,
+                                  step_interval_s=self.nominal_s)
+        self.store.commit()
+        self._last_commit = self._clock()
+        self._last_commit_audio = self.position_s
+        self.commits += 1
+
+    def finish(self, reason: str) -> None:
+        """End of the segment: decide the last slots, write the last buckets, commit."""
+        if self.an is not None:
+            self.an.finish()
+            self.take(self.an.drain_final_events())
+            self.position_s = self.an.duration_s
+        if self._win is not None:
+            _, s0, h, wa, ad, _ = self._win
+            self.store.add_block(self.seg, s0, h, wa, ad)
+            self._win = None
+        self._close_minutes(self.position_s, final=True)
+        if self._hour is not None:
+            self.hours.append(self._hour_rate(self._hour, complete=False))
+            self._hour = None
+        self.store.update_segment(self.seg, duration_s=self.position_s, decided_s=self.position_s,
+                                  ended_wall=time.time(), end_reason=reason, step_interval_s=self.nominal_s)
+        if self.clips is not None:
+            self.clips.post_s = 0.0  # the end of the audio: clip what there is
+            self._store_clips()
+        self.store.commit()
