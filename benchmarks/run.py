@@ -251,10 +251,126 @@ def bench_live(tmp, seconds):
               f"{max(d for d, _ in lat):.1f} s")
 
 
+def _rss_mb() -> float:
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def log_worker(db: str, hours: float) -> None:
+    """Child process: log `hours` of simulated 8 kHz audio; one JSON line per hour of audio."""
+    from tickscope.core.simulate import Renderer
+    from tickscope.io.store import LogStore
+    from tickscope.logsession import HISTORY_STEPS, LogSession
+
+    fs = 8000
+    sc = Scenario(samplerate_hz=fs, duration_s=hours * 3600, rate_s_per_day=1.0, rate_drift_s_per_day_per_h=0.05,
+                  snr_db=30, seed=5)
+    r = Renderer(sc)
+    store = LogStore(db)
+    store.init_meta("benchmark", "bench")
+    seg = store.new_segment(started_wall=time.time(), timeline_s=0.0, join_kind="first", sample_rate_hz=fs,
+                            channel=0, source_kind="file", source="simulated")
+    ls = LogSession(store, seg, Analyzer(fs, history_steps=HISTORY_STEPS), timeline_s=0.0)
+    pos = 0
+    cpu_log = 0.0
+    next_h = 1
+    while True:
+        x = r.render(60 * fs)
+        if not len(x):
+            break
+        x = x[:, 0].astype(np.float32)
+        c0 = time.process_time()
+        for i in range(0, len(x), 4096):
+            ls.feed(Block(x[i:i + 4096], pos + i))
+        cpu_log += time.process_time() - c0
+        pos += len(x)
+        if pos >= next_h * 3600 * fs:
+            ls.commit()
+            print(json.dumps({"hour": next_h, "cpu_s": cpu_log, "rss_mb": _rss_mb(),
+                              "db_bytes": sum(os.path.getsize(p) for p in (db, db + "-wal") if os.path.exists(p)),
+                              "steps": ls.totals["steps"]}), flush=True)
+            cpu_log = 0.0
+            next_h += 1
+    ls.finish("end of source")
+    store.close()
+
+
+def bench_log(tmp, audio_hours: float, event_hours: float):
+    hdr("weekend log: memory, CPU and database size per hour")
+    print("  targets: memory and CPU per hour flat over the run; database <= 1 MB per hour at one step a second")
+    db = os.path.join(tmp, "bench-log.db")
+    p = subprocess.run([sys.executable, __file__, "--log-worker", db, str(audio_hours)], capture_output=True,
+                       text=True)
+    rows = [json.loads(line) for line in p.stdout.splitlines() if line.startswith("{")]
+    if not rows:
+        print("  log worker failed:", p.stderr.strip()[-400:])
+    for r_ in rows:
+        if r_["hour"] in (1, 2) or r_["hour"] == rows[-1]["hour"] or r_["hour"] % 6 == 0:
+            print(f"  audio hour {r_['hour']:3d}: log path {r_['cpu_s']:6.1f} s CPU for the hour "
+                  f"({3600 / max(r_['cpu_s'], 1e-9):,.0f}x real time at 8 kHz), RSS {r_['rss_mb']:6.1f} MB, "
+                  f"database {r_['db_bytes'] / r_['hour'] / 1e6:.3f} MB per hour")
+    if len(rows) >= 2:
+        print(f"  RSS growth from hour 1 to hour {rows[-1]['hour']}: {rows[-1]['rss_mb'] - rows[0]['rss_mb']:+.1f} MB; "
+              f"CPU of the last hour / the first: {rows[-1]['cpu_s'] / rows[0]['cpu_s']:.2f}")
+    # the sink alone at weekend scale: events of a 1 s movement straight into the log
+    from tickscope.io.store import LogStore
+    from tickscope.logsession import LogSession
+    from tickscope.model import Event
+
+    db2 = os.path.join(tmp, "bench-events.db")
+    store = LogStore(db2)
+    store.init_meta("benchmark", "bench")
+    seg = store.new_segment(started_wall=time.time(), timeline_s=0.0, join_kind="first", sample_rate_hz=8000.0,
+                            channel=0, source_kind="device", source="simulated")
+    ls = LogSession(store, seg, None, nominal_s=1.0)
+    rng = np.random.default_rng(1)
+    c0 = time.process_time()
+    n = int(event_hours * 3600)
+    marks = {1, int(event_hours)}
+    for h in range(int(event_hours)):
+        k = np.arange(h * 3600, (h + 1) * 3600)
+        t = k * (1 - 1e-5) + 0.5 + rng.normal(0, 3e-6, len(k))
+        ls.take([Event("step", float(tt), step=int(kk), polarity="AB"[kk % 2], peak_dbfs=-14.0, snr_db=35.0,
+                       match=0.97, decay_ms=8.0) for kk, tt in zip(k, t)], float(t[-1]) + 0.5)
+        ls.commit()
+        if h + 1 in marks:
+            size = sum(os.path.getsize(p) for p in (db2, db2 + "-wal") if os.path.exists(p))
+            print(f"  events only, hour {h + 1:3d}: {(time.process_time() - c0) / (h + 1):.3f} s CPU per hour, "
+                  f"database {size / (h + 1) / 1e6:.3f} MB per hour, RSS {_rss_mb():.1f} MB")
+    ls.finish("end")
+    store.close()
+    from tickscope.core.logstats import log_figures
+
+    st = LogStore(db2, readonly=True)
+    c0 = time.perf_counter()
+    log_figures(st.segments(), st.events(), gaps=st.gaps(), minutes=st.minutes())
+    print(f"  report figures for {n / 3600:.0f} h of steps: {time.perf_counter() - c0:.1f} s")
+    st.db.close()
+
+
 def main():
+    if len(sys.argv) == 4 and sys.argv[1] == "--log-worker":
+        log_worker(sys.argv[2], float(sys.argv[3]))
+        return
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--quick", action="store_true", help="short files, few trials (a smoke run)")
+    ap.add_argument("--log-hours", type=float, default=None,
+                    help="hours of audio for the log benchmark (default 6; 60 for a full weekend: about 15 minutes)")
+    ap.add_argument("--only", choices=("throughput", "timing", "coverage", "librosa", "live", "log"),
+                    help="run one benchmark")
     a = ap.parse_args()
+    if a.only:
+        with tempfile.TemporaryDirectory() as tmp:
+            {"throughput": lambda: bench_throughput(tmp, [0.1] if a.quick else [1.0, 4.0]),
+             "timing": lambda: bench_timing([40, 30, 20, 10], 120),
+             "coverage": lambda: bench_coverage(200, 60),
+             "librosa": lambda: bench_librosa(tmp, 600),
+             "live": lambda: bench_live(tmp, 60),
+             "log": lambda: bench_log(tmp, a.log_hours or (1.0 if a.quick else 6.0), 60.0)}[a.only]()
+        return
     with tempfile.TemporaryDirectory() as tmp:
         if a.quick:
             bench_throughput(tmp, [0.1])
@@ -262,12 +378,14 @@ def main():
             bench_coverage(20, 30)
             bench_librosa(tmp, 60)
             bench_live(tmp, 15)
+            bench_log(tmp, a.log_hours or 1.0, 60.0)
         else:
             bench_throughput(tmp, [1.0, 4.0])
             bench_timing([40, 30, 20, 10], 120)
             bench_coverage(200, 60)
             bench_librosa(tmp, 600)
             bench_live(tmp, 60)
+            bench_log(tmp, a.log_hours or 6.0, 60.0)
 
 
 if __name__ == "__main__":

@@ -216,9 +216,10 @@ class StepTracker:
         # mislead: a phone's gain control lifts the noise between steps to the steps' level)
         # (a sound out of digital silence can stand 200 dB over its "floor": capped at 60 dB)
         snr = np.minimum(np.array([o.imp.frame_snr_db for o in buf]), 60.0)
-        # relative to the upper quartile: the steps, when they are a quarter of the sounds or more
-        # (quiet noise impacts, up to several a second in a quiet room at 8 kHz, then weigh little)
-        w = np.clip(10 ** ((snr - np.percentile(snr, 75)) / 10), 0.05, 2.0)  # no single sound dominates
+        # relative to the loud end (90th percentile: the steps, while they are a tenth of the sounds
+        # or more), so the faint noise impacts of a quiet room -- several a second at 8 kHz, four
+        # for every step -- weigh little; capped so that no single knock dominates
+        w = np.clip(10 ** ((snr - np.percentile(snr, 90)) / 10), 0.02, 2.0)
         found = find_interval(t, w)
         if found is None or found[2] < self.cfg.min_coherence:
             if final:
