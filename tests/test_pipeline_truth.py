@@ -129,3 +129,21 @@ def test_recording_that_starts_in_digital_silence():
     s = an.finish()
     assert s.step_interval_s == 1.0 and s.missed_steps == 0
     assert s.steps_detected == len(true_step_times(truth)[true_step_times(truth) < 19.9])
+
+
+def test_sound_out_of_digital_silence():
+    # a capture that starts on an idle (all-zero) input: the first steps stand ~250 dB over the
+    # detector's floor; they once outweighed everything and pulled the grid to 1/2 s
+    from tickscope.core.simulate import render_all
+    from tickscope.model import Block
+    from tickscope.pipeline import Analyzer
+
+    sc = Scenario(duration_s=16, first_step_s=0.6, rate_s_per_day=3.0, snr_db=35, missed_steps=(8,), seed=72)
+    x, truth = render_all(sc)
+    x = np.concatenate([np.zeros(3 * sc.samplerate_hz), x[:, 0], np.zeros(7 * sc.samplerate_hz)]).astype(np.float32)
+    an = Analyzer(sc.samplerate_hz)
+    for i in range(0, len(x), 4096):
+        an.feed(Block(x[i:i + 4096], i))
+    s = an.finish()
+    assert s.step_interval_s == 1.0
+    assert s.steps_detected == len(true_step_times(truth)) and s.missed_steps == 1

@@ -415,7 +415,7 @@ def _run_log(args, store) -> int:
     t = ls.totals
     d = {"db": args.db, "segment": len(segs) + 1, "source": source, "duration_s": round(ls.position_s, 3),
          "steps": t["steps"], "missed": t["missed"], "failed": t["failed"], "rejected": t["rejected"],
-         "gaps": t["gaps"], "ended": reason, "time_base": time_base}
+         "gaps": t["gaps"], "stopped_slots": t.get("stopped_slots", 0), "ended": reason, "time_base": time_base}
     if clips is not None:
         d["clips_kept_bytes"] = clips.used
         d["clips_skipped"] = clips.skipped

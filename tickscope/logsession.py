@@ -190,6 +190,7 @@ class LogSession:
         self._win: tuple[int, int, float, float, float, float] | None = None  # least-delayed block of the window
         self.good_match = analyzer.tracker.cfg.good_match if analyzer is not None else 0.6
         self.commits = 0
+        self._miss_run = 0  # missed steps since the last step heard
 
     @property
     def nominal_s(self) -> float | None:
@@ -253,6 +254,10 @@ class LogSession:
             key = {"step": "steps", "correction": "corrections"}.get(ev.kind, ev.kind)
             if key in self.totals:
                 self.totals[key] += 1
+            if ev.kind == "missed":
+                self._miss_run += 1
+            elif ev.kind == "step":
+                self._miss_run = 0
             good = ev.kind == "step" and ev.match >= self.good_match and "low-match" not in ev.flags
             self._bucket_minute(ev).add(ev, good)
             self._bucket_hour(ev).add(ev, good)
@@ -338,6 +343,9 @@ class LogSession:
             _, s0, h, wa, ad, _ = self._win
             self.store.add_block(self.seg, s0, h, wa, ad)
             self._win = None
+        # slots after the last step heard are silence, not missed steps (as analyze counts them)
+        self.totals["missed"] -= self._miss_run
+        self.totals["stopped_slots"] = self._miss_run
         self._close_minutes(self.position_s, final=True)
         if self._hour is not None:
             self.hours.append(self._hour_rate(self._hour, complete=False))

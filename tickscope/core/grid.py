@@ -214,8 +214,13 @@ class StepTracker:
         t = np.array([o.t_s for o in buf])
         # impacts that stand far above the noise floor count most (the level alone can
         # mislead: a phone's gain control lifts the noise between steps to the steps' level)
-        # (a sound out of digital silence can stand 200 dB over its "floor": capped at 60 dB)
-        snr = np.minimum(np.array([o.imp.frame_snr_db for o in buf]), 60.0)
+        # A sound out of digital silence stands 200 dB over its "floor" (the detector's floor has
+        # not yet risen to the room's noise): each impact's floor is taken no lower than the
+        # median floor of the window, and the SNR is capped at 60 dB.
+        snr = np.array([o.imp.frame_snr_db for o in buf])
+        peak = np.array([o.imp.peak_dbfs for o in buf])
+        floor = np.maximum(peak - snr, np.median(peak - snr))
+        snr = np.minimum(peak - floor, 60.0)
         # relative to the loud end (90th percentile: the steps, while they are a tenth of the sounds
         # or more), so the faint noise impacts of a quiet room -- several a second at 8 kHz, four
         # for every step -- weigh little; capped so that no single knock dominates

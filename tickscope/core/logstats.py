@@ -127,6 +127,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     if nominal is None or not len(kinds):
         return _empty(segments, nominal, ev, gaps, minutes)
     T, K, G, notes = number_steps(segments, ev, nominal, override_ppm)
+    silent, silences = _silences(ev, T, K, nominal)
     good = (kinds == KIND_STEP) & (ev["match"] >= GOOD_MATCH) & ((ev["flags"] & LOW_MATCH_BIT) == 0) & (K >= 0)
     steps_all = kinds == KIND_STEP
     # clock correction
@@ -161,6 +162,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         ppm = override_ppm if override_ppm is not None else ((s.clock_ppm or 0.0) if s else 0.0)
         c = 1.0 / (1.0 + ppm * 1e-6)
         gap_list.append((a + g0 * c, a + g1 * c, kind or "overflow"))
+    gap_list += silences
     gap_list.sort()
     duration = sum(b - a for a, b, _ in spans)
     t_lo = min(a for a, _, _ in spans)
@@ -178,7 +180,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         covered = sum(max(0.0, min(b, (h + 1) * 3600) - max(a, h * 3600)) for a, b, _ in spans)
         hourly.append({"hour": h, "start_s": h * 3600.0, "covered_s": round(covered, 3),
                        "steps": int(np.count_nonzero(steps_all & in_h)),
-                       "missed": int(np.count_nonzero((kinds == KIND_MISSED) & in_h)),
+                       "missed": int(np.count_nonzero((kinds == KIND_MISSED) & in_h & ~silent)),
                        "failed": int(np.count_nonzero((kinds == KIND_FAILED) & in_h)),
                        "rejected": int(np.count_nonzero((kinds == KIND_REJECTED) & in_h & (ev["snr_db"] >= REJECT_SNR_DB))),
                        "rate_s_per_day": None if r is None else r.rate_s_per_day,
@@ -241,7 +243,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
             notes.append(f"{n_out} step{'s' if n_out != 1 else ''} sat far off their neighbours (a knock or a voice on top of the step): "
                          "left out of the time error and the Allan deviation")
     # missed / failed / rejected on the timeline
-    missed_t = T[kinds == KIND_MISSED]
+    missed_t = T[(kinds == KIND_MISSED) & ~silent]
     failed_t = T[kinds == KIND_FAILED]
     rej = (kinds == KIND_REJECTED) & (ev["snr_db"] >= REJECT_SNR_DB)
     rejected_t = T[rej]
@@ -256,6 +258,42 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         groups=int(G.max()) + 1 if len(G) else 1, gaps=gap_list, hourly=hourly, minutes=_merge_minutes(minutes),
         adev=adev, tie=tie, worst_hour=worst, best_stretch=best, missed_times_s=missed_t, failed_times_s=failed_t,
         rejected_times_s=rejected_t, notes=notes, step_t=step_t, step_x=step_x, step_k=step_k, ringdown_hourly=ring)
+
+
+SILENT_RUN = 10  # this many missed steps in a row are a silence (microphone moved, movement stopped)
+
+
+def _silences(ev, T, K, nominal) -> tuple[np.ndarray, list[tuple[float, float, str]]]:
+    """Missed steps that are really no sound: long runs, and every slot after a segment's last step.
+
+    A stepping motor that misses steps misses single ones; ten or more in a row mean the sound
+    was lost or the movement stopped, which the report shows as a stretch with no steps heard.
+    """
+    kinds = ev["kind"]
+    silent = np.zeros(len(kinds), dtype=bool)
+    out: list[tuple[float, float, str]] = []
+    for seg in np.unique(ev["seg"]):
+        sel = np.flatnonzero((ev["seg"] == seg) & ((kinds == KIND_MISSED) | (kinds == KIND_STEP)))
+        if not len(sel):
+            continue
+        order = sel[np.argsort(K[sel], kind="stable")]
+        miss = kinds[order] == KIND_MISSED
+        i = 0
+        n = len(order)
+        while i < n:
+            if not miss[i]:
+                i += 1
+                continue
+            j = i
+            while j + 1 < n and miss[j + 1] and K[order[j + 1]] == K[order[j]] + 1:
+                j += 1
+            trailing = j == n - 1
+            if j - i + 1 >= SILENT_RUN or trailing:
+                silent[order[i:j + 1]] = True
+                out.append((float(T[order[i]]) - 0.5 * nominal, float(T[order[j]]) + 0.5 * nominal,
+                            "steps stopped" if trailing else "no steps heard"))
+            i = j + 1
+    return silent, out
 
 
 def _polarity_offset_s(k: np.ndarray, t: np.ndarray, g: np.ndarray) -> float:
