@@ -353,3 +353,37 @@ def test_keep_audio_clips_around_anomalies_within_budget(tmp_path):
     st = LogStore(db2, readonly=True)
     assert st.clips() == []
     st.db.close()
+
+
+def test_report_calibrates_a_device_log_from_its_own_block_readings(tmp_path, capsys):
+    # an hour from a device whose sample clock runs 40 ppm fast: on its time base a movement
+    # that keeps perfect time seems to lose 40 ppm = 3.456 s/day; the logged block readings
+    # (least-delayed block per 10 s) measure the device against the host clock and undo it
+    rng = np.random.default_rng(3)
+    db = str(tmp_path / "dev.db")
+    store = LogStore(db)
+    store.init_meta("", "test")
+    seg = store.new_segment(started_wall=1.8e9, timeline_s=0.0, join_kind="first", sample_rate_hz=48000.0,
+                            channel=0, source_kind="device", source="usb mic", host_sync="synchronised (NTP)")
+    ppm = 40.0
+    for i in range(360):
+        host = i * 10.0 + 5.0
+        start = int(round(host * 48000 * (1 + ppm * 1e-6)))
+        store.add_block(seg, start, host + 0.003 + abs(rng.normal(0, 0.0005)), 1.8e9 + host, None)
+    ls = LogSession(store, seg, None, nominal_s=1.0)
+    k = np.arange(3600)
+    t = (0.5 + k) * (1 + ppm * 1e-6) + rng.normal(0, 2e-6, len(k))  # true 1 s steps on the fast device clock
+    ls.take([Event("step", float(tt), step=int(kk), polarity="AB"[kk % 2], match=0.95, peak_dbfs=-12, snr_db=30)
+             for kk, tt in zip(k, t)], float(t[-1]) + 0.5)
+    ls.finish("stopped by Ctrl-C")
+    store.close()
+    assert main(["report", db, "--json"]) == 0
+    raw = json.loads(capsys.readouterr().out)
+    assert raw["rate_s_per_day"] == pytest.approx(-3.456, abs=0.01)
+    assert raw["device_clock_vs_host"][0]["ppm"] == pytest.approx(40.0, abs=0.5)
+    assert main(["report", db, "--json", "--clock-from-host"]) == 0
+    cal = json.loads(capsys.readouterr().out)
+    assert abs(cal["rate_s_per_day"]) <= cal["rate_ci95_s_per_day"] and cal["rate_ci95_s_per_day"] < 0.1
+    assert cal["clock_correction_ppm"] == pytest.approx(40.0, abs=0.5)
+    assert "host clock" in cal["time_base"]
+    assert main(["report", db, "--clock-from-host", "--clock-ppm", "3"]) == 2

@@ -528,6 +528,17 @@ def cmd_report(args) -> int:
     finally:
         store.db.close()
     over_ppm, over_u, time_base = None, 0.0, None
+    if args.clock_from_host:
+        if args.clock_ppm is not None or args.clock_profile:
+            raise ParameterError("give one of --clock-ppm, --clock-profile and --clock-from-host")
+        fits = {d["segment"]: d for d in device_clock}
+        if not fits:
+            raise ParameterError(f"{args.db} has no device segment of 10 minutes or more with clock readings: "
+                                 "nothing to calibrate from")
+        segs = [dataclasses.replace(s, clock_ppm=fits[s.id]["ppm"], clock_ppm_u95=fits[s.id]["ci95_ppm"],
+                                    time_base=f"calibrated against the host clock over each segment (host "
+                                              f"{fits[s.id]['host_sync']})")
+                if s.id in fits else s for s in segs]
     if args.clock_ppm is not None or args.clock_profile:
         over_ppm, over_u, time_base = _clock(args)
     elif all(s.clock_ppm is not None for s in segs):
@@ -886,6 +897,9 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("--clock-ppm", type=parse_ppm, default=None, metavar="X[+-U]",
                     help="correct the whole log: the device's clock runs fast by X ppm")
     rp.add_argument("--clock-profile", metavar="NAME", help="correct the whole log with a saved clock profile")
+    rp.add_argument("--clock-from-host", action="store_true",
+                    help="correct each device segment by its own clock measured against the host clock during "
+                         "the log (the host clock must be NTP-disciplined)")
     rp.set_defaults(func=cmd_report)
 
     s = sub.add_parser("simulate", help="write a simulated recording with its truth file",
