@@ -136,8 +136,9 @@ def test_kill_9_and_resume_loses_nothing_and_duplicates_nothing(bench_recording,
     tt = tt[tt < sc.duration_s - 0.1]
     found = np.isfinite(match_times(steps_t, tt))
     # a restarted analysis re-reads from the last committed decision, so no step is lost
-    assert found.sum() >= len(tt) - len(segs), (len(tt) - found.sum(), len(segs))
-    assert len(steps_t) <= len(tt)
+    # (allowed: one per restart, for a step whose sound straddles the restart point)
+    assert found.sum() >= len(tt) - (len(segs) - 1), (len(tt) - found.sum(), len(segs))
+    assert len(steps_t) == found.sum()  # and none is extra
     assert fig.missed_steps == len(MISSED)
     assert fig.groups == 1  # exact joins keep one phase
     assert abs(fig.rate.rate_s_per_day - _true_rate(sc, 0, 0.5)) <= fig.rate.ci95_s_per_day

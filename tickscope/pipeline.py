@@ -12,11 +12,11 @@ import math
 from collections import deque
 
 import numpy as np
-from scipy import signal
 
 from .core.detect import DetectorConfig, ImpactDetector
 from .core.grid import StepTracker, TrackerConfig
 from .core import diagnose as dg
+from .core import dsp
 from .core.rate import fit_rate, residuals_s
 from .errors import ParameterError
 from .model import Block, Event, RateEstimate, RingDownStats, Summary
@@ -492,7 +492,7 @@ class Analyzer:
         x = np.concatenate(self._hum_buf)[: int(HUM_ANALYSIS_S * self.samplerate)].astype(np.float64)
         if len(x) < self.samplerate:
             return None, None
-        f, p = signal.welch(x - x.mean(), fs=self.samplerate, nperseg=int(self.samplerate))
+        f, p = dsp.welch_psd(x - x.mean(), self.samplerate, int(self.samplerate))
         best = (None, None)
         for hz in (50.0, 60.0):
             i = int(round(hz / (f[1] - f[0])))

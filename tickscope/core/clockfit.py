@@ -19,8 +19,8 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
 
+from . import dsp
 from ..errors import ParameterError
 
 
@@ -103,7 +103,7 @@ def fit_device_clock(start_sample: np.ndarray, host_time_s: np.ndarray, samplera
     cov = np.linalg.pinv(Ap.T @ Ap) * s2
     slope = coef[0]  # host seconds per device second
     se = math.sqrt(max(float(cov[0, 0]), 0.0))
-    q = float(stats.t.ppf(0.975, dof))
+    q = dsp.t_ppf(0.975, dof)
     # device seconds per host second = 1/slope = 1 + ppm
     ppm = (1.0 / slope - 1.0) * 1e6
     ci = q * se / slope**2 * 1e6
@@ -118,7 +118,7 @@ def fit_device_clock(start_sample: np.ndarray, host_time_s: np.ndarray, samplera
             sl = np.polyfit(x[sel], h[sel], 1)[0]
             quarters.append((1.0 / sl - 1.0) * 1e6)
     if len(quarters) >= 3:
-        ci = max(ci, float(stats.t.ppf(0.975, len(quarters) - 1)) * float(np.std(quarters, ddof=1))
+        ci = max(ci, dsp.t_ppf(0.975, len(quarters) - 1) * float(np.std(quarters, ddof=1))
                  / math.sqrt(len(quarters)))
     delay = h - A @ coef
     return ClockFit(ppm=float(ppm), ci95_ppm=float(ci), span_s=span, n_blocks=int(len(x)), n_used=int(len(pick)),

@@ -16,8 +16,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
+from . import dsp
 from ..units import CRYSTAL_HZ, SECONDS_PER_DAY
 
 #: Longest logic-regulation period in the watch-IC datasheets we know (PCA2002: 2 minutes).
@@ -118,7 +118,7 @@ def detect_inhibition(k: np.ndarray, t: np.ndarray, nominal_s: float, *, clock_p
     var_iv = float(g @ cov @ g)
     scale = 1.0 + clock_ppm * 1e-6
     reg = SECONDS_PER_DAY * (nominal_s * scale / mean_iv - 1)
-    q = float(stats.t.ppf(0.975, dof))
+    q = dsp.t_ppf(0.975, dof)
     reg_ci = math.hypot(q * math.sqrt(var_iv) * SECONDS_PER_DAY * nominal_s * scale / mean_iv**2,
                         clock_ppm_u95 * 1e-6 * SECONDS_PER_DAY)
     reg_ci = max(reg_ci, 0.001)
@@ -233,7 +233,7 @@ def position_locked(anomaly_k: np.ndarray, span_steps: int, *, periods=(60,), mi
             continue
         c = int(cnt[top].sum())
         # probability that some position gets >= max count by chance
-        pval = min(1.0, P * float(stats.binom.sf(int(cnt.max()) - 1, len(a), 1.0 / P)))
+        pval = min(1.0, P * dsp.binom_sf(int(cnt.max()) - 1, len(a), 1.0 / P))
         if pval < 1e-3 and (best is None or c > best.count):
             best = PositionLock(P, [int(x) for x in top], c)
     return best

@@ -50,6 +50,7 @@ class TrackerConfig:
     weak_db: float = 9.0  # a step this much quieter than usual is a failed step (a twitch)
     correction_min_s: float = 0.008  # a correction pulse follows a failed step after 8 ...
     correction_max_s: float = 0.085  # ... to 85 ms
+    twitch_s: float = 0.005  # a failed step's twitch sounds within 5 ms of its slot
 
 
 def find_interval(times_s: np.ndarray, weights: np.ndarray | None = None, *,
@@ -324,6 +325,14 @@ class StepTracker:
         k = int(round((o.t_s - self._a) / self._b))
         tmpl = self.templates[k % 2 if k >= 0 else 0]
         lag, rho = match(o.imp.wsnippet, tmpl, max_lag=int(0.003 * self.fs))
+        expect = int(round(self.predict(k) * self.fs - o.imp.snippet_start - tmpl.onset_index))
+        if abs(expect) <= 0.010 * self.fs and (rho < 0.95 or abs(lag - expect) > 0.0003 * self.fs):
+            # The frame-level onset can be several ms early (a faint sound just before the step
+            # started the frame) and the search around it then finds only a side lobe: search
+            # around the slot's predicted time as well and keep the better match.
+            lag2, rho2 = match(o.imp.wsnippet, tmpl, max_lag=int(0.002 * self.fs), center=expect)
+            if rho2 > rho + 0.05:
+                lag, rho = lag2, rho2
         o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag) / self.fs
         o.match = rho
         o.slot = k
@@ -359,21 +368,35 @@ class StepTracker:
         if cands:
             best = max(o.match for o in cands)
             good = [o for o in cands if o.match >= best - 0.1]
+            # two impacts timed within 2 ms of each other are one sound (the snippet of a faint
+            # sound just before a step holds the step too): keep the louder impact
+            good = [o for o in good if not any(abs(p.t_s - o.t_s) < 0.002 and (p.imp.peak_dbfs, p.match) >
+                                               (o.imp.peak_dbfs, o.match) for p in good)]
             step = min(good, key=lambda o: o.t_s)
         # A failed step: the rotor only twitches (a weak sound at the slot); some circuits
         # then send a stronger correction pulse 10-80 ms later.  A hand's bounce on every
         # step is not this: it follows a step that sounded normal.
         failed = correction = None
         typical = float(np.median(self._peaks)) if len(self._peaks) >= 8 else None
+        # a twitching rotor sounds on the grid (the drive pulse is on time): within twitch_s
+        twitch_s = cfg.twitch_s
+        weak = step is not None and typical is not None and step.imp.peak_dbfs < typical - cfg.weak_db
         if step is not None and step.t_s - pred > cfg.correction_min_s:
-            early = [o for o in in_slot if o.t_s < step.t_s - 0.005]
+            early = [o for o in in_slot if o.t_s < step.t_s - 0.005 and abs(o.t_s - pred) <= twitch_s]
             if early:
                 failed, correction, step = min(early, key=lambda o: o.t_s), step, None
-        elif step is not None and typical is not None and step.imp.peak_dbfs < typical - cfg.weak_db:
-            failed, step = step, None
+            elif weak:
+                step = None  # a faint sound off the grid (a quiet room's noise): no step here
+        elif weak:
+            if abs(step.t_s - pred) <= twitch_s:
+                failed, step = step, None
+            else:
+                step = None
         if step is None and typical is not None:
-            if failed is None and in_slot:
-                failed = min(in_slot, key=lambda o: o.t_s)
+            if failed is None:
+                near = [o for o in in_slot if abs(o.t_s - pred) <= twitch_s]
+                if near:
+                    failed = min(near, key=lambda o: o.t_s)
             if failed is not None and correction is None:
                 cors = [o for o in self._open if failed.t_s + cfg.correction_min_s <= o.t_s <= failed.t_s + cfg.correction_max_s
                         and o.match >= cfg.good_match and o.imp.peak_dbfs > failed.imp.peak_dbfs + 3]
@@ -385,7 +408,7 @@ class StepTracker:
         for o in self._open:
             if o is step or o is failed or o is correction:
                 continue
-            if anchor is not None and anchor.t_s < o.t_s <= anchor.t_s + after:
+            if anchor is not None and anchor.t_s - 0.002 < o.t_s <= anchor.t_s + after:
                 out.append(self._event(o, "secondary", k))
             elif o.t_s <= pred + after:
                 if self._last_step_t < o.t_s <= self._last_step_t + after:

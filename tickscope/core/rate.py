@@ -15,8 +15,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import stats
 
+from . import dsp
 from ..errors import ParameterError
 from ..model import RateEstimate
 from ..units import SECONDS_PER_DAY
@@ -166,7 +166,7 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
             infl = max(infl, var_mix / (s2 / sxx)) if s2 > 0 and sxx > 0 else infl
             var_b = var_mix
     n_eff = max(3.0, n / infl)
-    q = float(stats.t.ppf(0.975, max(n_eff - 2, 1)))
+    q = dsp.t_ppf(0.975, max(n_eff - 2, 1))
     se_b = math.sqrt(var_b)
     scale = 1.0 + clock_ppm * 1e-6
     rate = SECONDS_PER_DAY * (nominal_interval_s * scale / b - 1.0)

@@ -27,7 +27,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
 
 from ..errors import ParameterError
 from ..units import CRYSTAL_HZ, interval_from_rate
@@ -49,6 +48,13 @@ BOUNCE_MODES = ((3600.0, 1.5, 1.0), (5400.0, 0.8, 0.5))
 RISE_S = 0.08e-3  # attack time constant of the drive impulse (80 us)
 SNR_WINDOW_S = 0.010  # SNR is defined on the first 10 ms of a step
 
+
+
+def _signal():
+    """scipy.signal, imported on first use (it takes a second or two to import)."""
+    from scipy import signal
+
+    return signal
 
 @dataclass(frozen=True)
 class Scenario:
@@ -339,9 +345,9 @@ class Renderer:
             # Synthesis of 1/F Noise"; coefficients from memory).
             self._pink_b = np.array([0.049922035, -0.095993537, 0.050612699, -0.004408786])
             self._pink_a = np.array([1, -2.494956002, 2.017265875, -0.522189400])
-            g = np.sqrt(np.mean(signal.lfilter(self._pink_b, self._pink_a, self.rng.normal(0, 1, 1 << 16))[4096:] ** 2))
+            g = np.sqrt(np.mean(_signal().lfilter(self._pink_b, self._pink_a, self.rng.normal(0, 1, 1 << 16))[4096:] ** 2))
             self._pink_b = self._pink_b / g
-            self._pink_zi = [signal.lfilter_zi(self._pink_b, self._pink_a) * 0.0 for _ in range(sc.channels)]
+            self._pink_zi = [_signal().lfilter_zi(self._pink_b, self._pink_a) * 0.0 for _ in range(sc.channels)]
         self._rir = _rir(sc, np.random.default_rng(sc.seed + 31)) if sc.reverb_rt60_ms > 0 else None
         self._rev_tail = np.zeros(0)
         self._agc_level = 1e-3
@@ -375,8 +381,8 @@ class Renderer:
                 elif ev.kind == "voice":
                     r = np.random.default_rng(ev.noise_seed)
                     w = r.normal(0, 1, s1 - s0)
-                    bb, aa = signal.butter(2, [200 / (fs / 2), min(3000, 0.45 * fs) / (fs / 2)], "band")
-                    w = signal.lfilter(bb, aa, w)[a - s0: b - s0]
+                    bb, aa = _signal().butter(2, [200 / (fs / 2), min(3000, 0.45 * fs) / (fs / 2)], "band")
+                    w = _signal().lfilter(bb, aa, w)[a - s0: b - s0]
                     env = np.sin(np.pi * t_rel / ev.duration_s) * (0.6 + 0.4 * np.sin(2 * np.pi * 4.5 * t_rel))
                     out[a - n0: b - n0] += ev.amp * w * env
                 else:
@@ -396,7 +402,7 @@ class Renderer:
         fs = self._fs
         dry = self._dry(n0, n)
         if self._rir is not None:
-            wet = signal.oaconvolve(dry, self._rir)
+            wet = _signal().oaconvolve(dry, self._rir)
             wet[: len(self._rev_tail)] += self._rev_tail[: len(wet)]
             if len(self._rev_tail) > len(wet):
                 rest = self._rev_tail[len(wet):]
@@ -415,7 +421,7 @@ class Renderer:
         for c in range(sc.channels):
             noise = self.rng.normal(0, self.noise_sigma, n)
             if self._pink_zi is not None:
-                noise, self._pink_zi[c] = signal.lfilter(self._pink_b, self._pink_a, noise, zi=self._pink_zi[c])
+                noise, self._pink_zi[c] = _signal().lfilter(self._pink_b, self._pink_a, noise, zi=self._pink_zi[c])
             x = noise + hum + sc.dc_offset
             if c == sc.step_channel:
                 x = x + dry

@@ -28,6 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import ParameterError
+from . import dsp
 
 
 def phase_from_steps(steps: np.ndarray, times_s: np.ndarray, tau0_s: float) -> tuple[np.ndarray, np.ndarray]:
@@ -177,13 +178,11 @@ def edf_simple(n_points: int, m: int, alpha: int) -> float:
 
 def chi2_interval(dev: np.ndarray, edf: np.ndarray, ci: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
     """Chi-squared confidence interval of a deviation with ``edf`` degrees of freedom."""
-    from scipy import stats
-
     dev = np.asarray(dev, dtype=np.float64)
     edf = np.asarray(edf, dtype=np.float64)
     p = (1 - ci) / 2
-    lo = dev * np.sqrt(edf / stats.chi2.ppf(1 - p, edf))
-    hi = dev * np.sqrt(edf / stats.chi2.ppf(p, edf))
+    lo = dev * np.sqrt(edf / dsp.chi2_ppf(1 - p, edf))
+    hi = dev * np.sqrt(edf / dsp.chi2_ppf(p, edf))
     return lo, hi
 
 

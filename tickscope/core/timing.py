@@ -14,9 +14,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
-
 from ..errors import ParameterError
+from . import dsp
 
 
 @dataclass(frozen=True)
@@ -35,7 +34,7 @@ class Template:
 
 
 def _envelope(x: np.ndarray, samplerate: float, smooth_s: float = 0.0) -> np.ndarray:
-    env = np.abs(signal.hilbert(x))
+    env = dsp.analytic_envelope(x)
     k = max(1, int(round(smooth_s * samplerate)))
     if k > 1:
         env = np.convolve(env, np.ones(k) / k, mode="same")
@@ -85,25 +84,26 @@ def _newton_peak(C: np.ndarray, nfft: int, tau0: float, iters: int = 6) -> tuple
     return tau, val
 
 
-def match(snippet: np.ndarray, template: Template, *, max_lag: int) -> tuple[float, float]:
+def match(snippet: np.ndarray, template: Template, *, max_lag: int, center: int = 0) -> tuple[float, float]:
     """Best lag (samples, sub-sample) of ``snippet`` against ``template`` and the correlation coefficient.
 
-    A lag of 0 means the snippet's sound sits exactly where the template's does.
+    A lag of 0 means the snippet's sound sits exactly where the template's does; lags
+    ``center - max_lag .. center + max_lag`` are searched.
     """
     tw = template.matched
     nz = np.flatnonzero(template.window)
     if not len(nz):
         raise ParameterError("template window is empty")
     s0, s1 = int(nz[0]), int(nz[-1]) + 1
-    a = max(0, s0 - max_lag)
-    b = min(len(snippet), s1 + max_lag)
+    a = max(0, s0 + center - max_lag)
+    b = min(len(snippet), s1 + center + max_lag)
     x = snippet[a:b]
     t = tw[s0:s1]
     nfft = 1 << int(np.ceil(np.log2(len(x) + len(t))))
     C = np.fft.rfft(x, nfft) * np.conj(np.fft.rfft(t, nfft))
     c = np.fft.irfft(C, nfft)
     # c[j] = sum_n x[n + j] t[n]; lag j in x coordinates is lag (a + j - s0) in snippet coordinates
-    lags = np.arange(-max_lag, max_lag + 1) + (s0 - a)
+    lags = np.arange(center - max_lag, center + max_lag + 1) + (s0 - a)
     lags = lags[(lags >= 0) & (lags <= len(x) - len(t))]
     if not len(lags):
         return 0.0, 0.0
@@ -117,12 +117,21 @@ def match(snippet: np.ndarray, template: Template, *, max_lag: int) -> tuple[flo
     cands = [int(lags[1 + i]) for i in np.flatnonzero(inner)] or [int(lags[np.argmax(cl)])]
     if int(lags[np.argmax(cl)]) not in cands:
         cands.append(int(lags[np.argmax(cl)]))
-    best = None
+    # rank the lobes by their three-point parabola peaks; refine those within 3 % of the best
+    para = []
     for j in cands:
-        # start Newton from the three-point parabola: two or three steps then suffice
         y0, y1, y2 = c[j - 1], c[j], c[(j + 1) % nfft]
         den = y0 - 2 * y1 + y2
-        start = j + (0.5 * (y0 - y2) / den if den < 0 else 0.0)
+        if den < 0:
+            para.append((y1 - (y0 - y2) ** 2 / (8 * den), j + 0.5 * (y0 - y2) / den, j))
+        else:
+            para.append((y1, float(j), j))
+    top_p = max(p[0] for p in para)
+    best = None
+    for pv, start, j in para:
+        if pv < top_p - 0.03 * abs(top_p):
+            continue
+        # Newton from the parabola's peak: two or three steps then suffice
         tau_j, val_j = _newton_peak(C, nfft, float(start), iters=3)
         if abs(tau_j - j) > 1.0:  # Newton wandered: keep the integer peak
             tau_j, val_j = float(j), float(c[j])
@@ -198,7 +207,7 @@ def _window(L: int, onset: float, samplerate: float, window_s: float) -> np.ndar
     b = min(L, int(np.ceil(onset + window_s * samplerate)))
     w = np.zeros(L)
     if b > a:
-        w[a:b] = signal.windows.tukey(b - a, 0.2)
+        w[a:b] = dsp.tukey(b - a, 0.2)
     return w
 
 

@@ -1,0 +1,179 @@
+"""Small signal-processing and statistics helpers on numpy (and scipy.special) alone.
+
+``scipy.signal`` and ``scipy.stats`` take 1-2 s to import, longer than analysing a 10 minute
+recording; the analysis path uses these instead (each checked against scipy in
+tests/test_dsp.py).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+
+def butter_highpass_sos(order: int, wn: float) -> np.ndarray:
+    """Digital Butterworth high-pass as second-order sections (as ``scipy.signal.butter(..., output='sos')``).
+
+    ``wn`` is the cut-off as a fraction of the Nyquist frequency.  Analog prototype, high-pass
+    transform and bilinear transform with pre-warping (the textbook route; e.g. Oppenheim &
+    Schafer, Discrete-Time Signal Processing, section 7.1; from memory).
+    """
+    if not 0 < wn < 1:
+        raise ValueError(f"wn={wn!r}: expected 0 < wn < 1")
+    fs = 2.0
+    warped = 2 * fs * math.tan(math.pi * wn / fs)
+    k = np.arange(order)
+    p_proto = np.exp(1j * np.pi * (2 * k + order + 1) / (2 * order))  # left half-plane poles
+    p = warped / p_proto  # low-pass -> high-pass: s -> wc / s (zeros at s = 0)
+    gain = float(np.real(1.0 / np.prod(-p_proto)))
+    fs2 = 2 * fs
+    pz = (fs2 + p) / (fs2 - p)
+    gain *= float(np.real(fs2**order / np.prod(fs2 - p)))  # bilinear transform's gain (zeros at s = 0)
+    # zeros of the high-pass at s = 0 map to z = 1
+    pz = pz[np.argsort(np.abs(pz.imag))]  # real poles first
+    sections = []
+    used = np.zeros(len(pz), dtype=bool)
+    for i in range(len(pz)):
+        if used[i] or pz[i].imag < -1e-12:
+            continue
+        used[i] = True
+        if abs(pz[i].imag) > 1e-12:
+            j = next(j for j in range(len(pz)) if not used[j] and abs(pz[j] - np.conj(pz[i])) < 1e-9)
+            used[j] = True
+            a = [1.0, -2 * pz[i].real, abs(pz[i]) ** 2]
+            b = [1.0, -2.0, 1.0]
+        else:
+            a = [1.0, -pz[i].real, 0.0]
+            b = [1.0, -1.0, 0.0]
+        sections.append(b + a)
+    sos = np.array(sections, dtype=np.float64)
+    sos[0, :3] *= gain
+    return sos
+
+
+def sos_power_response(sos: np.ndarray, nfft: int) -> np.ndarray:
+    """|H(e^jw)|^2 of second-order sections at the rfft bins of length ``nfft``.
+
+    Multiplying a spectrum by it is filtering forward and backward (zero phase).
+    """
+    w = 2 * np.pi * np.arange(nfft // 2 + 1) / nfft
+    z1 = np.exp(-1j * w)
+    z2 = z1 * z1
+    h = np.ones(len(w), dtype=np.complex128)
+    for b0, b1, b2, a0, a1, a2 in sos:
+        h *= (b0 + b1 * z1 + b2 * z2) / (a0 + a1 * z1 + a2 * z2)
+    return (h.real**2 + h.imag**2).astype(np.float64)
+
+
+def fast_len(n: int) -> int:
+    """The smallest 2^a 3^b 5^c >= n (a length numpy's FFT handles quickly)."""
+    best = 1 << int(math.ceil(math.log2(max(n, 1))))
+    f5 = 1
+    while f5 < best:
+        f35 = f5
+        while f35 < best:
+            v = f35
+            while v < n:
+                v *= 2
+            best = min(best, v)
+            f35 *= 3
+        f5 *= 5
+    return best
+
+
+def analytic_envelope(x: np.ndarray) -> np.ndarray:
+    """|x + j H{x}|: the magnitude of the analytic signal (as ``abs(scipy.signal.hilbert(x))``)."""
+    x = np.asarray(x, dtype=np.float64)
+    n = len(x)
+    if n == 0:
+        return x.copy()
+    X = np.fft.fft(x)
+    h = np.zeros(n)
+    if n % 2 == 0:
+        h[0] = h[n // 2] = 1.0
+        h[1: n // 2] = 2.0
+    else:
+        h[0] = 1.0
+        h[1: (n + 1) // 2] = 2.0
+    return np.abs(np.fft.ifft(X * h))
+
+
+def tukey(n: int, alpha: float = 0.5) -> np.ndarray:
+    """Tapered cosine window (as ``scipy.signal.windows.tukey``)."""
+    if n <= 0:
+        return np.zeros(0)
+    if n == 1 or alpha <= 0:
+        return np.ones(n)
+    if alpha >= 1:
+        return 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n) / (n - 1))
+    x = np.arange(n) / (n - 1)
+    w = np.ones(n)
+    lo = x < alpha / 2
+    hi = x > 1 - alpha / 2
+    w[lo] = 0.5 * (1 + np.cos(np.pi * (2 * x[lo] / alpha - 1)))
+    w[hi] = 0.5 * (1 + np.cos(np.pi * (2 * x[hi] / alpha - 2 / alpha + 1)))
+    return w
+
+
+def welch_psd(x: np.ndarray, fs: float, nperseg: int) -> tuple[np.ndarray, np.ndarray]:
+    """Averaged periodogram, Hann window, half overlap, mean removed per segment (Welch 1967)."""
+    x = np.asarray(x, dtype=np.float64)
+    nperseg = min(nperseg, len(x))
+    step = max(1, nperseg // 2)
+    win = 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(nperseg) / nperseg)  # periodic Hann
+    starts = range(0, len(x) - nperseg + 1, step)
+    acc = np.zeros(nperseg // 2 + 1)
+    n = 0
+    for s in starts:
+        seg = x[s: s + nperseg]
+        acc += np.abs(np.fft.rfft((seg - seg.mean()) * win)) ** 2
+        n += 1
+    psd = acc / max(n, 1) / (fs * np.sum(win**2))
+    psd[1:-1] *= 2
+    return np.fft.rfftfreq(nperseg, 1 / fs), psd
+
+
+def levinson(r: np.ndarray, order: int) -> np.ndarray:
+    """Prediction coefficients a[1..order] from autocorrelations r[0..order] (Levinson-Durbin).
+
+    Solves the Toeplitz system ``R a = -r[1:]`` (as ``scipy.linalg.solve_toeplitz(r[:order], -r[1:])``).
+    """
+    r = np.asarray(r, dtype=np.float64)
+    a = np.zeros(order)
+    err = r[0]
+    if err <= 0:
+        raise np.linalg.LinAlgError("non-positive zero-lag autocorrelation")
+    for m in range(order):
+        acc = r[m + 1] + np.dot(a[:m], r[m:0:-1])
+        k = -acc / err
+        a[:m] = a[:m] + k * a[:m][::-1]
+        a[m] = k
+        err *= 1 - k * k
+        if err <= 0:
+            raise np.linalg.LinAlgError("the autocorrelation is not positive definite")
+    return a
+
+
+def t_ppf(p: float, df: float) -> float:
+    """Quantile of Student's t (as ``scipy.stats.t.ppf``)."""
+    from scipy.special import stdtrit
+
+    return float(stdtrit(df, p))
+
+
+def chi2_ppf(p, df):
+    """Quantile of the chi-squared distribution (as ``scipy.stats.chi2.ppf``); arrays allowed."""
+    from scipy.special import chdtri
+
+    return chdtri(df, 1.0 - np.asarray(p, dtype=np.float64))
+
+
+def binom_sf(k: int, n: int, p: float) -> float:
+    """P(X > k) for X ~ Binomial(n, p) (as ``scipy.stats.binom.sf``)."""
+    from scipy.special import bdtrc
+
+    if k < 0:
+        return 1.0
+    if k >= n:
+        return 0.0
+    return float(bdtrc(k, n, p))
