@@ -82,6 +82,32 @@ def test_dashboard_renders(size):
     assert "◆" in text  # the estimate on the interval ruler
 
 
+def test_logging_screen_adds_hourly_rates_and_still_fits(tmp_path):
+    from rich.console import Console
+
+    from conftest import analyze_scenario
+    from tickscope.logsession import HourRate
+    from tickscope.ui.dashboard import LiveStatus, hourly_lines, render_live
+
+    s, *_ = analyze_scenario(Scenario(duration_s=40, rate_s_per_day=2.0, snr_db=25, seed=3))
+    hours = [HourRate(h, 2.0 + 0.1 * h, 0.004, 3600, int(h % 3 == 1), True) for h in range(9)]
+    hours.append(HourRate(9, 2.95, 0.02, 1200, 0, False))
+    for width, height in ((80, 24), (160, 50)):
+        extra = hourly_lines(hours, width, max_rows=6 if height < 30 else 12)
+        buf = io.StringIO()
+        con = Console(file=buf, width=width, height=height, color_system=None)
+        con.print(render_live(s, LiveStatus("pulse", 48000, 0, 40.0, -18.0, 0, None), width=width, mode="logging",
+                              extra=extra))
+        text = buf.getvalue()
+        lines = text.splitlines()
+        assert all(len(line) <= width for line in lines) and len(lines) <= height + 6
+        assert "logging" in text and "rate per hour" in text and "h9" in text and "+2.950" in text
+        assert "1 missed" in text
+        # the marks climb across the rows: the drift is visible on one shared scale
+        cols = [line.index("◆") for line in lines if line.lstrip("│ ").startswith("h") and "◆" in line]
+        assert cols == sorted(cols) and cols[-1] > cols[0]
+
+
 # -- real capture through the loopback --------------------------------------------------------------
 def _loopback_unavailable():
     for exe in ("pactl", "paplay"):

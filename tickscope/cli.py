@@ -489,9 +489,9 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
                                     cap.overflows + (1 if cap.dropped_frames else 0), None)
                     w = min(con.width, 160)
                     t = ls.totals
-                    info = Text_(f"log {os.path.basename(args.db)} · segment {prior + 1} · this segment "
-                                 f"{t['steps']} steps, {t['missed']} missed, {t['failed']} failed · committed "
-                                 f"{ls.commits}×", style="dim")
+                    info = _text(f"log {os.path.basename(args.db)} · segment {prior + 1}: {t['steps']} steps, "
+                                 f"{t['missed']} missed, {t['failed']} failed · committed {ls.commits}× · "
+                                 "the rate above covers the last 1-2 h", style="dim")
                     live.update(render_live(ls.an.summary(), st, width=w, mode="logging",
                                             extra=[info, *hourly_lines(ls.hourly(), w, max_rows=6)]), refresh=True)
                     last_draw = now
@@ -503,7 +503,7 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
     return "end of source"
 
 
-def Text_(text: str, style: str = ""):
+def _text(text: str, style: str = ""):
     from rich.text import Text
 
     return Text(text, style=style)
