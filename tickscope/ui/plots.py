@@ -74,6 +74,19 @@ def _save(plt, figure, path: str) -> None:
         plt.close(figure)
 
 
+def _finish_timeline(plt, f, ax, fig, path: str, *, ylabel: str, title: str, legend: bool = True) -> str:
+    """Gaps, axis labels, grid and legend of a plot against the log's timeline; saves it."""
+    _shade_gaps(ax, fig)
+    ax.set_xlabel("time since the log began (h) — grey: no audio · dotted: analysis restarted")
+    ax.set_ylabel(ylabel)
+    ax.set_title(title)
+    ax.grid(alpha=0.3)
+    if legend:
+        ax.legend(loc="best", fontsize=8)
+    _save(plt, f, path)
+    return path
+
+
 def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
     """rate.png, tie.png, adev.png and ringdown.png of a log report; returns the paths written."""
     import os
@@ -81,7 +94,6 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
     plt = _plt()
     os.makedirs(out_dir, exist_ok=True)
     paths = []
-    gap_note = "grey: no audio · dotted: analysis restarted"
     # rate over time
     f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
     mins = [m for m in fig.minutes if m.get("rate_s_per_day") is not None]
@@ -90,7 +102,7 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
                 color="0.6", label="per minute")
     hrs = [h for h in fig.hourly if h["rate_s_per_day"] is not None]
     if hrs:
-        ax.errorbar([(h["hour"] + 0.5) for h in hrs], [h["rate_s_per_day"] for h in hrs],
+        ax.errorbar([h["center_s"] / 3600 for h in hrs], [h["rate_s_per_day"] for h in hrs],
                     yerr=[h["rate_ci95_s_per_day"] for h in hrs], fmt="o", ms=4, capsize=3, color="tab:blue",
                     label="per hour, 95 % interval")
     if fig.rate is not None:
@@ -102,29 +114,28 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
             hi = max(h["rate_s_per_day"] + h["rate_ci95_s_per_day"] for h in hrs)
             pad = max(hi - lo, 0.02) * 1.5
             ax.set_ylim(lo - pad, hi + pad)
-    _shade_gaps(ax, fig)
     _mark_anomalies(ax, fig)
-    ax.set_xlabel(f"time since the log began (h) — {gap_note}")
-    ax.set_ylabel("rate (s/day, + gains)")
-    ax.set_title(f"{title}: rate over time")
-    ax.grid(alpha=0.3)
-    ax.legend(loc="best", fontsize=8)
-    paths.append(os.path.join(out_dir, "rate.png"))
-    _save(plt, f, paths[-1])
-    # time interval error
-    f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
+    paths.append(_finish_timeline(plt, f, ax, fig, os.path.join(out_dir, "rate.png"), ylabel="rate (s/day, + gains)",
+                                  title=f"{title}: rate over time"))
+    # time interval error: as it accumulates, and what the rate line leaves
+    f, (ax, ax2) = plt.subplots(2, 1, figsize=(10, 7), constrained_layout=True, sharex=True)
     if len(fig.step_x):
         ax.plot(fig.step_t / 3600, fig.step_x * 1e3, "-", lw=1, color="tab:blue")
-    _shade_gaps(ax, fig)
-    _mark_anomalies(ax, fig)
-    ax.set_xlabel(f"time since the log began (h) — {gap_note}")
+        k = fig.step_k.astype(np.float64)
+        A = np.vstack([np.ones(len(k)), k - k.mean()]).T
+        coef, *_ = np.linalg.lstsq(A, fig.step_x, rcond=None)
+        ax2.plot(fig.step_t / 3600, (fig.step_x - A @ coef) * 1e6, ".", ms=1.5, color="tab:blue")
     ax.set_ylabel("time interval error (ms, − = ahead)")
     ax.set_title(f"{title}: time error against the audio clock" + (" (corrected)" if fig.clock_correction_ppm is not None else ""))
     ax.grid(alpha=0.3)
+    _shade_gaps(ax, fig)
+    _mark_anomalies(ax, fig)
     if len(fig.missed_times_s) or len(fig.failed_times_s):
         ax.legend(loc="best", fontsize=8)
-    paths.append(os.path.join(out_dir, "tie.png"))
-    _save(plt, f, paths[-1])
+    _mark_anomalies(ax2, fig)
+    paths.append(_finish_timeline(plt, f, ax2, fig, os.path.join(out_dir, "tie.png"),
+                                  ylabel="after the rate line (µs)", title="what the rate line does not explain: "
+                                  "a bow is a drifting rate, a sawtooth logic regulation", legend=False))
     # Allan deviation
     f, ax = plt.subplots(figsize=(7, 5.5), constrained_layout=True)
     ad = fig.adev
@@ -153,12 +164,7 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
         ax.plot(x, med, "o-", ms=3, color=c, label=f"polarity {name}, hourly median")
         ax.fill_between(x, [r[name]["q1_ms"] for r in rows], [r[name]["q3_ms"] for r in rows], color=c, alpha=0.2,
                         lw=0, label=f"polarity {name}, quartiles")
-    _shade_gaps(ax, fig)
-    ax.set_xlabel(f"time since the log began (h) — {gap_note}")
-    ax.set_ylabel("ring-down decay τ (ms)")
-    ax.set_title(f"{title}: ring-down over time")
-    ax.grid(alpha=0.3)
-    ax.legend(loc="best", fontsize=8)
-    paths.append(os.path.join(out_dir, "ringdown.png"))
-    _save(plt, f, paths[-1])
+    paths.append(_finish_timeline(plt, f, ax, fig, os.path.join(out_dir, "ringdown.png"),
+                                  ylabel="ring-down decay τ (ms)", title=f"{title}: ring-down over time",
+                                  legend=bool(fig.ringdown_hourly)))
     return paths
