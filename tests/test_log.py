@@ -103,9 +103,13 @@ def test_kill_9_and_resume_loses_nothing_and_duplicates_nothing(bench_recording,
     db = str(tmp_path / "crash.db")
     rnd = random.Random(17)
     kills = 0
+    read_while_writing = None
     for _ in range(8):
         p = subprocess.Popen([sys.executable, "-m", "tickscope", "log", db, "--source", wav, "--quiet"],
                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        if kills == 1 and read_while_writing is None:
+            # the report reads a log while it is being written
+            read_while_writing = _cli("report", db, "--json")
         try:
             p.wait(timeout=rnd.uniform(2.2, 4.5))
             break  # it finished before the kill
@@ -119,6 +123,9 @@ def test_kill_9_and_resume_loses_nothing_and_duplicates_nothing(bench_recording,
             assert r.returncode == 0, r.stderr
             break
     assert kills >= 1
+    if read_while_writing is not None:
+        assert read_while_writing.returncode == 0, read_while_writing.stderr
+        assert json.loads(read_while_writing.stdout)["steps_detected"] > 100
     con = sqlite3.connect(db)
     assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
     segs = con.execute("SELECT join_kind, end_reason FROM segments ORDER BY id").fetchall()
