@@ -167,7 +167,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         gap_list.append((a + g0 * c, a + g1 * c, kind or "overflow"))
     gap_list += silences
     gap_list.sort()
-    duration = sum(b - a for a, b, _ in spans)
+    duration = _union_length([(a, b) for a, b, _ in spans])  # a resumed replay re-reads a little
     t_lo = min(a for a, _, _ in spans)
     t_hi = max(b for _, b, _ in spans)
     # hourly rates, counts and ring-down
@@ -206,7 +206,6 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     step_x = np.zeros(0)
     step_k = np.zeros(0, dtype=np.int64)
     if rate is not None:
-        pol_c = _polarity_offset_s(K[good], T[good], G[good])
         sums = None
         n_points = 0
         n_out = 0
@@ -217,6 +216,8 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
             kg, tg = K[sel], T[sel]
             kg, first = np.unique(kg, return_index=True)  # sorted; a step number appears once
             tg = tg[first]
+            # each segment's templates set its own A/B offset: removed group by group
+            pol_c = _polarity_offset_s(kg, tg, np.zeros(len(kg), dtype=np.int64))
             grid, x = stab.phase_from_steps(kg, tg - pol_c * ((kg % 2) - 0.5), nominal)
             n_out += _drop_outliers(x)
             if x_end is not None:
@@ -343,6 +344,15 @@ def _drop_outliers(x: np.ndarray, *, window: int = 31, sigmas: float = 6.0, floo
         return 0
     x[ok[bad]] = np.nan
     return int(bad.sum())
+
+
+def _union_length(intervals) -> float:
+    total, end = 0.0, -math.inf
+    for a, b in sorted(intervals):
+        if b > end:
+            total += b - max(a, end)
+            end = b
+    return total
 
 
 def _pad(s: stab.AdevSums, m: np.ndarray) -> stab.AdevSums:

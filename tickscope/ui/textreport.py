@@ -20,6 +20,10 @@ from ..export import rate_words
 from ..model import Summary
 
 
+def _tlabel(v: float) -> str:
+    return "0" if abs(v) < 0.05 else f"{v:.3g}"
+
+
 def residual_strip(times_s: np.ndarray | None, res_us: np.ndarray | None, *, width: int = 60,
                    height: int = 7, time_unit: str = "s", caption: str = "residual µs") -> Text:
     """A text chart of timing residuals (us) against time: per column, the range as a band."""
@@ -61,7 +65,7 @@ def residual_strip(times_s: np.ndarray | None, res_us: np.ndarray | None, *, wid
             else:
                 t.append(ch, style=styles[r][c])
         t.append("\n")
-    t.append(" " * label_w + f"{t0:<.3g} {time_unit}".ljust(cols - 8) + f"{t1:>.3g} {time_unit}", style="dim")
+    t.append(" " * label_w + f"{_tlabel(t0)} {time_unit}".ljust(cols - 8) + f"{_tlabel(t1)} {time_unit}", style="dim")
     t.append("\n" + " " * label_w + f"{caption} · band: range per column · block: median", style="dim")
     return t
 
