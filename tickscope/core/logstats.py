@@ -12,11 +12,13 @@ device it is the host's wall clock at the first sample (``'wall'``).  A clock co
 of ``ppm`` converts audio seconds to true seconds by dividing by ``1 + ppm 1e-6``.
 
 Step numbers.  The steps of a later segment are numbered on from the earlier ones by
-extrapolating the line fitted to the last steps before the join and rounding.  Every segment
-is a *group* with its own intercept in the rate fit, and its time error is continued from
-the previous one on the fitted rate: across a wall-clock join the phase is not observed, and
-even a replay resumed on the same audio clock learns new templates, whose time origin can sit
-~0.1 ms from the old ones.  The Allan deviation never spans two groups.
+extrapolating the line fitted to the last steps before the join and rounding.  A segment
+joined by the wall clock starts a new *group*: its own intercept in the rate fit, its time
+error continued from the previous group on the fitted rate (the phase across such a gap is
+not observed), and no Allan-deviation term spans the join.  A replay resumed on the same
+audio clock stays in its group, but it learned new templates whose time origin and A/B offset
+can sit ~0.1 ms from the old ones: both are measured from local lines on either side of the
+join and removed ("stitched").
 """
 from __future__ import annotations
 
@@ -86,8 +88,10 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
     notes: list[str] = []
     prev_k = prev_t = None
     group = 0
+    group_pol = 0.0  # A/B offset of the group's first segment
     for i, s in enumerate(segments):
         sel = ev["seg"] == s.id
+        idx = np.flatnonzero(sel)
         ppm = override_ppm if override_ppm is not None else (s.clock_ppm or 0.0)
         c = 1.0 / (1.0 + ppm * 1e-6)
         t = ev["time_s"][sel]
@@ -95,11 +99,9 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
         k = ev["step"][sel].copy()
         has = k >= 0
         steps = has & (ev["kind"][sel] == KIND_STEP) & (ev["match"][sel] >= GOOD_MATCH)
-        if i > 0:
-            # every segment learns its own templates, whose time origin (the onset of the first
-            # impact) can sit ~0.1 ms apart: each segment gets its own intercept, even when it
-            # continues the same audio clock (its steps are still numbered on exactly)
-            group += 1
+        stitch = i > 0 and s.join_kind == "exact" and prev_k is not None and steps.sum() >= 20
+        if i > 0 and not stitch:
+            group += 1  # joined by the wall clock (or too short to stitch): its own intercept
         G[sel] = group
         if has.any():
             if prev_k is not None and steps.any():
@@ -110,11 +112,36 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
                 if abs(guess - k0) > 0.25:
                     notes.append(f"segment {s.id}: its steps could not be numbered on from the last segment "
                                  f"(off by {guess - k0:+.2f} steps); they start a new stretch")
-                    G[sel] = group
+                    if stitch:
+                        group += 1
+                        G[sel] = group
+                        stitch = False
                 k = np.where(has, k - k[j] + k0, -1)
             elif prev_k is not None:
                 k = np.where(has, k - k[has][0] + int(prev_k[-1]) + 1, -1)
             K[sel] = k
+            kc = K[sel][steps]
+            pol = _polarity_offset_s(kc, T[sel][steps], np.zeros(len(kc), dtype=np.int64))
+            if stitch:
+                # A replay resumed on the same audio clock: the phase runs on, but the new segment
+                # learned new templates, whose time origin (and A/B offset) can sit ~0.1 ms from the
+                # old ones.  Align both to the group's, from local lines on either side of the join.
+                shift = np.where(K[sel] >= 0, (pol - group_pol) * ((K[sel] % 2) - 0.5), 0.0)
+                T[idx] -= shift
+                tc = T[sel][steps]
+                corr = lambda kk: group_pol * ((kk % 2) - 0.5)  # noqa: E731
+                pk, pt = prev_k[-60:], prev_t[-60:]
+                a1, b1 = _fit_line(pk, pt - corr(pk))
+                k2, t2 = kc[:60].astype(np.float64), tc[:60]
+                a2, b2 = _fit_line(k2, t2 - corr(k2))
+                mid = 0.5 * (pk[-1] + k2[0])
+                jump = (a2 + b2 * mid) - (a1 + b1 * mid)
+                T[idx] -= jump
+                if abs(jump) > 20e-6:
+                    notes.append(f"segment {s.id} resumed the same recording; its timing origin sat "
+                                 f"{jump * 1e6:+.0f} µs from the last segment's and was aligned to it")
+            else:
+                group_pol = pol  # a new group: its first segment sets the A/B offset
             if steps.any():
                 ks, ts = K[sel][steps], T[sel][steps]
                 prev_k, prev_t = ks[-600:].astype(np.float64), ts[-600:]
