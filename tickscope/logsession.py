@@ -16,10 +16,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .core.diagnose import LONGEST_KNOWN_PERIOD_S, UNSEEN_CORRECTION_S
 from .core.rate import fit_rate
 from .io.store import BLOCK_WINDOW_S, LogStore
 from .model import Block, Event
 from .pipeline import LOUD_REJECT_DB
+from .units import SECONDS_PER_DAY
 
 COMMIT_EVERY_S = 2.0  # wall seconds between commits (at most this much is lost to a crash)
 COMMIT_AUDIO_S = 60.0  # ... and at most this much audio when replaying a file faster than real time
@@ -308,8 +310,13 @@ class LogSession:
 
     def _hour_rate(self, b: _Bucket, complete: bool) -> HourRate:
         r = b.rate(self.nominal_s, self.clock_ppm, self.clock_u95)
-        return HourRate(b.index, float("nan") if r is None else r.rate_s_per_day,
-                        float("nan") if r is None else r.ci95_s_per_day, b.counts["steps"], b.counts["missed"], complete)
+        if r is None:
+            return HourRate(b.index, float("nan"), float("nan"), b.counts["steps"], b.counts["missed"], complete)
+        ci = r.ci95_s_per_day
+        if r.span_s < 2 * LONGEST_KNOWN_PERIOD_S:
+            # as analyze does: a logic-regulation correction may not have come yet
+            ci = math.hypot(ci, SECONDS_PER_DAY * UNSEEN_CORRECTION_S / max(r.span_s, 1.0))
+        return HourRate(b.index, r.rate_s_per_day, ci, b.counts["steps"], b.counts["missed"], complete)
 
     def hourly(self) -> list[HourRate]:
         """Rate per hour so far (the current hour last, marked incomplete)."""
