@@ -22,13 +22,15 @@ join and removed ("stitched").
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from . import stability as stab
-from .rate import fit_rate
+from .diagnose import LONGEST_KNOWN_PERIOD_S, UNSEEN_CORRECTION_S
+from .rate import fit_rate as _fit_rate
 from ..units import SECONDS_PER_DAY
 
 KIND_STEP, KIND_MISSED, KIND_FAILED, KIND_CORRECTION, KIND_REJECTED = 0, 1, 2, 3, 4
@@ -69,6 +71,19 @@ class LogFigures:
     step_x: np.ndarray = field(default_factory=lambda: np.zeros(0))
     step_k: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
     ringdown_hourly: list[dict] = field(default_factory=list)
+
+
+def fit_rate(k, t, nominal, **kw):
+    """``core.rate.fit_rate``, with the interval widened while under two regulation periods.
+
+    As ``analyze`` does: a logic-regulated movement corrects once every 60 or 120 s, so a stretch
+    shorter than 4 minutes may not yet hold a correction (up to 2.4 ms).
+    """
+    r = _fit_rate(k, t, nominal, **kw)
+    if r.span_s < 2 * LONGEST_KNOWN_PERIOD_S:
+        ci = math.hypot(r.ci95_s_per_day, SECONDS_PER_DAY * UNSEEN_CORRECTION_S / max(r.span_s, 1.0))
+        r = dataclasses.replace(r, ci95_s_per_day=ci)
+    return r
 
 
 def _fit_line(k: np.ndarray, t: np.ndarray) -> tuple[float, float]:
