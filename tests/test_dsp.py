@@ -44,6 +44,9 @@ def test_envelope_tukey_welch_levinson():
 
 def test_distribution_quantiles_match_scipy_stats():
     assert dsp.t_ppf(0.975, 7) == pytest.approx(stats.t.ppf(0.975, 7), rel=1e-10)
+    for df in (8, 9.5, 12, 30, 100, 1e4, 1e7):
+        for p in (0.975, 0.995, 0.025):
+            assert dsp.t_ppf(p, df) == pytest.approx(stats.t.ppf(p, df), rel=1e-4)
     assert dsp.chi2_ppf(0.025, 37.5) == pytest.approx(stats.chi2.ppf(0.025, 37.5), rel=1e-10)
     assert np.allclose(dsp.chi2_ppf(np.array([0.025, 0.975]), np.array([3.0, 300.0])),
                        stats.chi2.ppf([0.025, 0.975], [3.0, 300.0]))
