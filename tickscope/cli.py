@@ -291,12 +291,8 @@ def cmd_listen(args) -> int:
 
 
 def cmd_log(args) -> int:
-    import time
-
-    from .errors import DeviceError, StoreError
+    from .errors import StoreError
     from .io.store import LogStore
-    from .logsession import HISTORY_STEPS, ClipKeeper, LogSession
-    from .pipeline import Analyzer
 
     if (args.source is None) == (args.device is None):
         if args.source is None and args.device is None:
@@ -392,7 +388,7 @@ def _run_log(args, store) -> int:
         clips = ClipKeeper(fs, int(args.clip_budget_mb * 1e6), used_bytes=store.clip_bytes())
     ls = LogSession(store, seg, an, timeline_s=timeline, clock_ppm=clock_ppm, clock_ppm_u95=clock_u, clips=clips)
     limit_s = args.hours * 3600.0 if args.hours else None
-    err = console = None
+    err = None
     reason = "end of source"
     if note:
         _console(stderr=True).print(note)

@@ -10,7 +10,6 @@
 """
 from __future__ import annotations
 
-import math
 from types import SimpleNamespace
 
 import numpy as np
@@ -62,7 +61,7 @@ def timeline_strip(fig, width: int) -> Text:
     for ch, st in zip(chars, styles):
         t.append(ch, style=st)
     t.append("▏\n")
-    t.append(f" 0 h".ljust(w - 6) + f"{fig.span_s / 3600:.1f} h", style="dim")
+    t.append(" 0 h".ljust(w - 6) + f"{fig.span_s / 3600:.1f} h", style="dim")
     t.append("\n ━ steps  ┅ other sounds  ✕ missed  ! failed  ┃ restart  (blank) no audio", style="dim")
     return t
 
