@@ -84,8 +84,10 @@ def measure_ringdown(x: np.ndarray, samplerate: float, *, noise_power: float = 0
         return nan
     t = np.arange(i0, i1) / samplerate
     y = edc_db[i0:i1]
-    A = np.vstack([t, np.ones_like(t)]).T
-    (slope, icpt), *_ = np.linalg.lstsq(A, y, rcond=None)
+    tm, ym = t.mean(), y.mean()
+    dt = t - tm
+    slope = float(np.dot(dt, y - ym) / np.dot(dt, dt))  # least-squares line, closed form
+    icpt = ym - slope * tm
     if slope >= 0:
         return nan
     rms = float(np.sqrt(np.mean((y - (slope * t + icpt)) ** 2)))

@@ -84,27 +84,44 @@ def _newton_peak(C: np.ndarray, nfft: int, tau0: float, iters: int = 6) -> tuple
     return tau, val
 
 
+def _window_span(template: Template) -> tuple[int, int]:
+    """First and one-past-last index of the template's matching window (cached on the template)."""
+    span = template.__dict__.get("_span")
+    if span is None:
+        nz = np.flatnonzero(template.window)
+        if not len(nz):
+            raise ParameterError("template window is empty")
+        span = template.__dict__["_span"] = (int(nz[0]), int(nz[-1]) + 1)
+    return span
+
+
+def _template_spectrum(template: Template, s0: int, s1: int, nfft: int) -> np.ndarray:
+    """conj(rfft) of the template's windowed part, cached on the template (it never changes)."""
+    cache = template.__dict__.setdefault("_spectra", {})
+    key = (s0, s1, nfft)
+    spec = cache.get(key)
+    if spec is None:
+        spec = cache[key] = np.conj(np.fft.rfft(template.matched[s0:s1], nfft))
+    return spec
+
+
 def match(snippet: np.ndarray, template: Template, *, max_lag: int, center: int = 0) -> tuple[float, float]:
     """Best lag (samples, sub-sample) of ``snippet`` against ``template`` and the correlation coefficient.
 
     A lag of 0 means the snippet's sound sits exactly where the template's does; lags
     ``center - max_lag .. center + max_lag`` are searched.
     """
-    tw = template.matched
-    nz = np.flatnonzero(template.window)
-    if not len(nz):
-        raise ParameterError("template window is empty")
-    s0, s1 = int(nz[0]), int(nz[-1]) + 1
+    s0, s1 = _window_span(template)
     a = max(0, s0 + center - max_lag)
     b = min(len(snippet), s1 + center + max_lag)
     x = snippet[a:b]
-    t = tw[s0:s1]
-    nfft = 1 << int(np.ceil(np.log2(len(x) + len(t))))
-    C = np.fft.rfft(x, nfft) * np.conj(np.fft.rfft(t, nfft))
+    nt = s1 - s0
+    nfft = 1 << int(np.ceil(np.log2(len(x) + nt)))
+    C = np.fft.rfft(x, nfft) * _template_spectrum(template, s0, s1, nfft)
     c = np.fft.irfft(C, nfft)
     # c[j] = sum_n x[n + j] t[n]; lag j in x coordinates is lag (a + j - s0) in snippet coordinates
     lags = np.arange(center - max_lag, center + max_lag + 1) + (s0 - a)
-    lags = lags[(lags >= 0) & (lags <= len(x) - len(t))]
+    lags = lags[(lags >= 0) & (lags <= len(x) - nt)]
     if not len(lags):
         return 0.0, 0.0
     cl = c[lags]
@@ -140,8 +157,8 @@ def match(snippet: np.ndarray, template: Template, *, max_lag: int, center: int 
     tau, val = best
     lag = a + tau - s0
     i0 = int(round(tau))
-    seg = x[max(0, i0): i0 + len(t)]
-    den = np.sqrt(template.energy * float(np.dot(seg, seg)) + 1e-300) if len(seg) == len(t) else 0.0
+    seg = x[max(0, i0): i0 + nt]
+    den = np.sqrt(template.energy * float(np.dot(seg, seg)) + 1e-300) if len(seg) == nt else 0.0
     rho = val / den if den > 0 else 0.0
     return float(lag), float(rho)
 
