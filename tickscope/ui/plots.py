@@ -42,12 +42,7 @@ def plot_analysis(summary, analyzer, path: str, *, title: str = "") -> None:
     ax.set_ylabel("ring-down decay τ (ms)")
     ax.legend(loc="upper right")
     ax.grid(alpha=0.3)
-    try:
-        fig.savefig(path, dpi=110)
-    except OSError as e:
-        raise ParameterError(f"cannot write {path}: {e.strerror}") from e
-    finally:
-        plt.close(fig)
+    _save(plt, fig, path)
 
 
 def _shade_gaps(ax, fig, scale: float = 1 / 3600) -> None:
