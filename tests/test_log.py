@@ -6,6 +6,7 @@ import signal
 import sqlite3
 import subprocess
 import sys
+import time
 
 import numpy as np
 import pytest
@@ -103,19 +104,26 @@ def test_kill_9_and_resume_loses_nothing_and_duplicates_nothing(bench_recording,
     rnd = random.Random(17)
     kills = 0
     read_while_writing = None
+    last_committed = -1.0
     for _ in range(8):
         p = subprocess.Popen([sys.executable, "-m", "tickscope", "log", db, "--source", wav, "--quiet"],
                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         if kills == 1 and read_while_writing is None:
             # the report reads a log while it is being written
             read_while_writing = _cli("report", db, "--json")
+        # kill at a random moment after this run has committed something (a slow machine's
+        # start-up must not turn the test into three kills before any work)
+        t0 = time.monotonic()
+        while p.poll() is None and time.monotonic() - t0 < 60 and _committed_s(db) <= last_committed:
+            time.sleep(0.05)
         try:
-            p.wait(timeout=rnd.uniform(2.2, 4.5))
+            p.wait(timeout=rnd.uniform(0.2, 2.5))
             break  # it finished before the kill
         except subprocess.TimeoutExpired:
             p.send_signal(signal.SIGKILL)
             p.wait()
             kills += 1
+            last_committed = _committed_s(db)
         if kills == 3:
             r = subprocess.run([sys.executable, "-m", "tickscope", "log", db, "--source", wav, "--quiet"],
                                capture_output=True, text=True, timeout=300)
@@ -152,6 +160,16 @@ def test_kill_9_and_resume_loses_nothing_and_duplicates_nothing(bench_recording,
     res = fig.step_x - np.polyval(np.polyfit(k, fig.step_x, 2), k)  # the drift's bow removed
     assert np.max(np.abs(np.diff(res))) < 20e-6
     assert abs(fig.rate.rate_s_per_day - _true_rate(sc, 0, 0.5)) <= fig.rate.ci95_s_per_day
+
+
+def _committed_s(db) -> float:
+    """How far (s of the recording) the log's committed decisions reach; -1 before any."""
+    try:
+        with sqlite3.connect(f"file:{db}?mode=ro", uri=True) as con:
+            row = con.execute("SELECT max(source_offset_s + decided_s) FROM segments").fetchone()
+        return -1.0 if row is None or row[0] is None else float(row[0])
+    except sqlite3.Error:
+        return -1.0
 
 
 def _offsets(db, seg_ids):
