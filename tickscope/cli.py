@@ -191,6 +191,19 @@ def cmd_devices(args) -> int:
     return 0
 
 
+class _PeakMeter:
+    """Input level for the live screens: the peak of the last half second, dBFS."""
+
+    def __init__(self, window_s: float = 0.5):
+        self.window_s = window_s
+        self._peaks: list[tuple[float, float]] = []
+
+    def update(self, samples, now: float) -> float:
+        pk = float(abs(samples).max()) if len(samples) else 0.0
+        self._peaks = [(t, v) for t, v in self._peaks if now - t < self.window_s] + [(now, pk)]
+        return 20 * math.log10(max(max(v for _, v in self._peaks), 1e-6))
+
+
 def cmd_listen(args) -> int:
     import time
 
@@ -215,7 +228,7 @@ def cmd_listen(args) -> int:
     src = args.device if args.device is not None else "default input"
     stop_note = None
     rec_error = None
-    level = -120.0
+    meter = _PeakMeter()
     t0 = time.monotonic()
     live = None
     try:
@@ -229,7 +242,6 @@ def cmd_listen(args) -> int:
                 live = Live(console=con, refresh_per_second=4, transient=False, auto_refresh=False)
                 live.start()
             last_draw = 0.0
-            peak_win: list[tuple[float, float]] = []
             for b in cap.blocks():
                 new_step = any(ev.kind == "step" for ev in an.feed(b))
                 if rec:
@@ -243,9 +255,7 @@ def cmd_listen(args) -> int:
                             pass
                         rec = None
                 now = time.monotonic()
-                pk = float(abs(b.samples).max()) if len(b.samples) else 0.0
-                peak_win = [(t, v) for t, v in peak_win if now - t < 0.5] + [(now, pk)]
-                level = 20 * math.log10(max(max(v for _, v in peak_win), 1e-6))
+                level = meter.update(b.samples, now)
                 # redraw as soon as a step is decided, and at least twice a second
                 if live is not None and (new_step or now - last_draw >= 0.4):
                     st = LiveStatus(str(src), args.rate_hz, args.channel, an.duration_s, level,
@@ -460,8 +470,7 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
     import time
 
     live = None
-    level = -120.0
-    peak_win: list[tuple[float, float]] = []
+    meter = _PeakMeter()
     last_draw = 0.0
     prior = len(segs)
     with cap:
@@ -477,9 +486,7 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
             for b in cap.blocks():
                 new_step = any(ev.kind == "step" for ev in ls.feed(b))
                 now = time.monotonic()
-                pk = float(abs(b.samples).max()) if len(b.samples) else 0.0
-                peak_win = [(t, v) for t, v in peak_win if now - t < 0.5] + [(now, pk)]
-                level = 20 * math.log10(max(max(v for _, v in peak_win), 1e-6))
+                level = meter.update(b.samples, now)
                 if live is not None and (new_step or now - last_draw >= 0.5):
                     st = LiveStatus(str(args.device), args.rate_hz, ls.an.channel, ls.position_s, level,
                                     cap.overflows + (1 if cap.dropped_frames else 0), None)
@@ -506,7 +513,7 @@ def _text(text: str, style: str = ""):
 
 
 def cmd_report(args) -> int:
-    from .core.logstats import log_figures, number_steps
+    from .core.logstats import log_figures
     from .errors import StoreError
     from .export import log_to_dict, write_log_csv
     from .io.store import LogStore
@@ -545,12 +552,8 @@ def cmd_report(args) -> int:
             time_base = "mixed: some segments corrected, some on the device clock"
     fig = log_figures(segs, ev, gaps=gaps, minutes=minutes, override_ppm=over_ppm, override_u95=over_u)
     if args.steps_csv:
-        if fig.nominal_s:
-            T, K, _, _ = number_steps(segs, ev, fig.nominal_s, over_ppm)
-        else:
-            T, K = ev["time_s"], ev["step"]
         with open(args.steps_csv, "w", newline="") as fh:
-            write_log_csv(fh, T, K, ev)
+            write_log_csv(fh, fig.event_t, fig.event_k, ev)
     d = log_to_dict(fig, db=args.db, meta=meta, segments=segs, time_base=time_base, device_clock=device_clock)
     label = meta.get("label") or os.path.basename(args.db)
     if args.out:

@@ -4,7 +4,7 @@ from __future__ import annotations
 import csv
 import math
 
-from .model import Event, Summary
+from .model import KIND_CODES, Event, Summary, flag_names
 
 CSV_HEADER = ["index", "step", "time_s", "polarity", "interval_s", "peak_dbfs", "decay_ms", "flags"]
 
@@ -145,8 +145,7 @@ def log_to_dict(fig, *, db: str, meta: dict, segments, time_base: str, device_cl
     }
 
 
-_KIND_NAMES = {0: "step", 1: "missed", 2: "failed", 3: "correction", 4: "rejected"}
-_FLAG_NAMES = {1: "clipped", 2: "low-match", 4: "truncated", 8: "ringdown"}
+_KIND_NAMES = {v: k for k, v in KIND_CODES.items()}
 
 
 def write_log_csv(fh, T, K, ev: dict) -> int:
@@ -166,7 +165,7 @@ def write_log_csv(fh, T, K, ev: dict) -> int:
             if last_k is not None and k == last_k + 1:
                 interval = f"{T[i] - last_t:.9f}"
             last_k, last_t = k, T[i]
-        flags = [nm for bit, nm in _FLAG_NAMES.items() if int(ev["flags"][i]) & bit]
+        flags = flag_names(int(ev["flags"][i]))
         if kind != "step":
             flags.insert(0, kind)
         pk, dc = float(ev["peak_dbfs"][i]), float(ev["decay_ms"][i])

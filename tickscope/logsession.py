@@ -39,6 +39,11 @@ class HourRate:
     complete: bool
 
 
+def _count_key(kind: str) -> str:
+    """The counter an event kind adds to (steps, missed, failed, corrections, rejected, secondary)."""
+    return {"step": "steps", "correction": "corrections"}.get(kind, kind)
+
+
 class _Bucket:
     """Events of one minute or one hour (bounded by the bucket's length)."""
 
@@ -51,20 +56,16 @@ class _Bucket:
         self.counts = dict.fromkeys(("steps", "missed", "failed", "corrections", "rejected", "secondary"), 0)
 
     def add(self, ev: Event, good: bool) -> None:
+        key = _count_key(ev.kind)
+        if key in self.counts:
+            self.counts[key] += 1
         if ev.kind == "step":
-            self.counts["steps"] += 1
             if good:
                 self.k.append(int(ev.step))
                 self.t.append(ev.time_s)
             self.peak.append(ev.peak_dbfs)
             if math.isfinite(ev.decay_ms):
                 self.decay[0 if ev.polarity == "A" else 1].append(ev.decay_ms)
-        elif ev.kind == "correction":
-            self.counts["corrections"] += 1
-        elif ev.kind in self.counts:
-            self.counts[ev.kind] += 1
-        elif ev.kind + "s" in self.counts:
-            self.counts[ev.kind + "s"] += 1
 
     def rate(self, nominal_s: float | None, clock_ppm: float | None, clock_u95: float):
         if nominal_s is None or len(self.k) < 6 or max(self.k) - min(self.k) < 5:
@@ -253,7 +254,7 @@ class LogSession:
             pol = None if ev.polarity not in ("A", "B") else (0 if ev.polarity == "A" else 1)
             self.store.add_event(self.seg, ev.kind, ev.step, ev.time_s, pol, ev.peak_dbfs, ev.snr_db, ev.match,
                                  ev.decay_ms, ev.flags)
-            key = {"step": "steps", "correction": "corrections"}.get(ev.kind, ev.kind)
+            key = _count_key(ev.kind)
             if key in self.totals:
                 self.totals[key] += 1
             if ev.kind == "missed":
@@ -270,9 +271,7 @@ class LogSession:
     def loud_db(self) -> float:
         """Off-grid sounds at least this far over the floor are stored (as ``analyze`` counts them)."""
         an = self.an
-        if an is not None and an.step_snr.n >= 8:
-            return max(LOUD_REJECT_DB, float(np.median(an.step_snr.values[-200:])) - 10.0)
-        return LOUD_REJECT_DB
+        return an.loud_db(recent=200) if an is not None and an.step_snr.n >= 8 else LOUD_REJECT_DB
 
     # -- buckets -------------------------------------------------------------------------------
     def _bucket_minute(self, ev: Event) -> _Bucket:

@@ -6,6 +6,25 @@ from dataclasses import dataclass, field
 import numpy as np
 
 
+#: Step flags packed into a small integer (the analyzer's step columns, the log database).
+FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8}
+#: Event kinds as stored in the log database.
+KIND_CODES = {"step": 0, "missed": 1, "failed": 2, "correction": 3, "rejected": 4}
+
+
+def flag_bits(flags) -> int:
+    """Flags (names) to their bits."""
+    v = 0
+    for f in flags:
+        v |= FLAG_BITS.get(f, 0)
+    return v
+
+
+def flag_names(bits: int) -> list[str]:
+    """Bits back to flag names."""
+    return [name for name, bit in FLAG_BITS.items() if bits & bit]
+
+
 @dataclass(frozen=True)
 class Block:
     """A block of mono audio and the index of its first sample in the stream.

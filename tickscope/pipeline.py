@@ -19,7 +19,7 @@ from .core import diagnose as dg
 from .core import dsp
 from .core.rate import fit_rate, residuals_s
 from .errors import ParameterError
-from .model import Block, Event, RateEstimate, RingDownStats, Summary
+from .model import FLAG_BITS, Block, Event, RateEstimate, RingDownStats, Summary, flag_bits
 from .units import SECONDS_PER_DAY, ppm_to_s_per_day
 
 #: Typical error of an uncalibrated consumer audio clock (common practice; sound-card
@@ -190,7 +190,7 @@ class Analyzer:
                 self.step_decay.append(d)
                 self.step_snr.append(ev.snr_db)
                 self.step_peak.append(ev.peak_dbfs)
-                self.step_flags.append(_flag_bits(flags))
+                self.step_flags.append(flag_bits(flags))
                 if "clipped" in flags:
                     self.n_clipped += 1
             elif ev.kind == "missed":
@@ -250,14 +250,21 @@ class Analyzer:
         return fit_rate(k, self.step_t.values[good], nominal, clock_ppm=self.clock_ppm or 0.0,
                         clock_ppm_u95=self.clock_ppm_u95)
 
+    def loud_db(self, recent: int | None = None) -> float:
+        """Off-grid sounds this far over the floor matter: within 10 dB of the typical step
+        (the median of all steps, or of the last ``recent``), and at least 10 dB."""
+        if not self.step_snr.n:
+            return LOUD_REJECT_DB
+        snr = self.step_snr.values if recent is None else self.step_snr.values[-recent:]
+        return max(LOUD_REJECT_DB, float(np.median(snr)) - 10.0)
+
     @property
     def n_rejected(self) -> int:
-        """Off-grid sounds loud enough to matter: within 10 dB of the typical step, and 10 dB over the floor."""
+        """Off-grid sounds loud enough to matter (see :meth:`loud_db`)."""
         snr = self.rejected_snr.values
         if not len(snr):
             return 0
-        step = float(np.median(self.step_snr.values)) if self.step_k.n else LOUD_REJECT_DB
-        return int(np.count_nonzero(snr >= max(LOUD_REJECT_DB, step - 10.0)))
+        return int(np.count_nonzero(snr >= self.loud_db()))
 
     def _good_steps(self) -> np.ndarray:
         # clipped steps stay in: their template was learned from clipped steps too
@@ -297,7 +304,7 @@ class Analyzer:
         for pol, name in ((0, "A"), (1, "B")):
             sel = (self.step_pol.values == pol) & np.isfinite(self.step_decay.values)
             d = self.step_decay.values[sel].astype(np.float64)
-            ab = int(np.count_nonzero((self.step_flags.values[sel] & _FLAG_BITS["ringdown"]) != 0))
+            ab = int(np.count_nonzero((self.step_flags.values[sel] & FLAG_BITS["ringdown"]) != 0))
             if len(d):
                 q1, med, q3 = np.percentile(d, [25, 50, 75])
                 ring[name] = RingDownStats(name, len(d), float(med), float(q3 - q1), ab)
@@ -445,7 +452,7 @@ class Analyzer:
             lines.append(f"{len(levels)} drive levels heard ({', '.join(f'{lv.level_dbfs:.0f} dBFS' for lv in levels)}), "
                          f"{changes} changes: an adaptive motor drive, not a fault by itself")
         # anomalies locked to a wheel position
-        rk = self.step_k.values[(self.step_flags.values & _FLAG_BITS["ringdown"]) != 0]
+        rk = self.step_k.values[(self.step_flags.values & FLAG_BITS["ringdown"]) != 0]
         anomalies = np.unique(np.concatenate([fk, np.array(sorted(ck), dtype=np.int64), rk]))
         k_all = self.step_k.values
         pl = dg.position_locked(anomalies, int(k_all.max() - k_all.min()) if len(k_all) else 0)
@@ -507,13 +514,3 @@ class Analyzer:
 
 def _r(v, digits):
     return None if v is None or not math.isfinite(v) else round(float(v), digits)
-
-
-_FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8}
-
-
-def _flag_bits(flags) -> int:
-    v = 0
-    for f in flags:
-        v |= _FLAG_BITS.get(f, 0)
-    return v

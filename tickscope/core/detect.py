@@ -98,7 +98,6 @@ class ImpactDetector:
         # and backward) and the whitening FIR, with 20 ms of zero padding against wrap-around
         self._nfft = dsp.fast_len(self.pre + self.post + int(0.02 * samplerate))
         self._hp_resp = dsp.sos_power_response(self._sos, self._nfft)
-        self._wh_resp = self._hp_resp
         self.nsum = max(1, int(round(cfg.sum_s * samplerate / self.hop)))
         scale = samplerate / 48000.0
         self.lag_choices = sorted({max(1, int(round(v * scale))) for v in (1, 2, 3, 5, 8, 12, 20, 32)})

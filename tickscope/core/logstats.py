@@ -29,14 +29,17 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import stability as stab
+from .dsp import line_fit
 from .diagnose import LONGEST_KNOWN_PERIOD_S, UNSEEN_CORRECTION_S
 from .rate import fit_rate as _fit_rate
+from ..model import FLAG_BITS, KIND_CODES
 from ..units import SECONDS_PER_DAY
 
-KIND_STEP, KIND_MISSED, KIND_FAILED, KIND_CORRECTION, KIND_REJECTED = 0, 1, 2, 3, 4
+KIND_STEP, KIND_MISSED, KIND_FAILED, KIND_CORRECTION, KIND_REJECTED = (
+    KIND_CODES[k] for k in ("step", "missed", "failed", "correction", "rejected"))
 GOOD_MATCH = 0.6
-LOW_MATCH_BIT = 2
-RINGDOWN_BIT = 8
+LOW_MATCH_BIT = FLAG_BITS["low-match"]
+RINGDOWN_BIT = FLAG_BITS["ringdown"]
 REJECT_SNR_DB = 10.0  # off-grid sounds this far over the floor are counted (as analyze does)
 
 
@@ -71,6 +74,9 @@ class LogFigures:
     step_x: np.ndarray = field(default_factory=lambda: np.zeros(0))
     step_k: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
     ringdown_hourly: list[dict] = field(default_factory=list)
+    # every event on the log's timeline and its step number across segments (-1: none)
+    event_t: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    event_k: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
 
 
 def fit_rate(k, t, nominal, **kw):
@@ -86,9 +92,11 @@ def fit_rate(k, t, nominal, **kw):
     return r
 
 
-def _fit_line(k: np.ndarray, t: np.ndarray) -> tuple[float, float]:
-    b, a = np.polyfit(k - k[-1], t, 1)
-    return float(a - b * k[-1]), float(b)
+def _timeline(s, t, override_ppm: float | None):
+    """Audio time(s) of segment ``s`` on the log's timeline, corrected for the device clock."""
+    ppm = override_ppm if override_ppm is not None else (s.clock_ppm or 0.0)
+    c = 1.0 / (1.0 + ppm * 1e-6)
+    return (s.timeline_s + t) * c if s.source_kind == "file" else s.timeline_s + t * c
 
 
 def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
@@ -107,10 +115,7 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
     for i, s in enumerate(segments):
         sel = ev["seg"] == s.id
         idx = np.flatnonzero(sel)
-        ppm = override_ppm if override_ppm is not None else (s.clock_ppm or 0.0)
-        c = 1.0 / (1.0 + ppm * 1e-6)
-        t = ev["time_s"][sel]
-        T[sel] = (s.timeline_s + t) * c if s.source_kind == "file" else s.timeline_s + t * c
+        T[sel] = _timeline(s, ev["time_s"][sel], override_ppm)
         k = ev["step"][sel].copy()
         has = k >= 0
         steps = has & (ev["kind"][sel] == KIND_STEP) & (ev["match"][sel] >= GOOD_MATCH)
@@ -120,7 +125,7 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
         G[sel] = group
         if has.any():
             if prev_k is not None and steps.any():
-                a, b = _fit_line(prev_k, prev_t)
+                b, a = line_fit(prev_k, prev_t)
                 j = int(np.flatnonzero(steps)[0])
                 guess = (T[sel][j] - a) / b
                 k0 = int(round(guess))
@@ -146,9 +151,9 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
                 tc = T[sel][steps]
                 corr = lambda kk: group_pol * ((kk % 2) - 0.5)  # noqa: E731
                 pk, pt = prev_k[-60:], prev_t[-60:]
-                a1, b1 = _fit_line(pk, pt - corr(pk))
+                b1, a1 = line_fit(pk, pt - corr(pk))
                 k2, t2 = kc[:60].astype(np.float64), tc[:60]
-                a2, b2 = _fit_line(k2, t2 - corr(k2))
+                b2, a2 = line_fit(k2, t2 - corr(k2))
                 mid = 0.5 * (pk[-1] + k2[0])
                 jump = (a2 + b2 * mid) - (a1 + b1 * mid)
                 T[idx] -= jump
@@ -190,23 +195,18 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     # timeline spans: segments and gaps between them
     spans = []
     for s in segments:
-        ppm = override_ppm if override_ppm is not None else (s.clock_ppm or 0.0)
-        c = 1.0 / (1.0 + ppm * 1e-6)
-        a = s.timeline_s * c if s.source_kind == "file" else s.timeline_s
-        spans.append((a, a + s.duration_s * c, s))
+        spans.append((_timeline(s, 0.0, override_ppm), _timeline(s, s.duration_s, override_ppm), s))
     gap_list: list[tuple[float, float, str]] = []
     for (a0, b0, s0), (a1, b1, s1) in zip(spans[:-1], spans[1:]):
         if a1 > b0 + 1e-6:
             gap_list.append((b0, a1, "between segments"))
         elif s1.join_kind == "exact" and s0.source_kind == "file":
             gap_list.append((a1, a1, "restart"))  # a resumed replay: no audio lost, the analysis restarted
-    seg_span = {s.id: (a, b) for a, b, s in spans}
+    by_id = {s.id: s for s in segments}
     for seg, g0, g1, kind in gaps:
-        a, _ = seg_span.get(seg, (0.0, 0.0))
-        s = next((x for x in segments if x.id == seg), None)
-        ppm = override_ppm if override_ppm is not None else ((s.clock_ppm or 0.0) if s else 0.0)
-        c = 1.0 / (1.0 + ppm * 1e-6)
-        gap_list.append((a + g0 * c, a + g1 * c, kind or "overflow"))
+        s = by_id.get(seg)
+        a, b = (_timeline(s, g0, override_ppm), _timeline(s, g1, override_ppm)) if s is not None else (g0, g1)
+        gap_list.append((a, b, kind or "overflow"))
     gap_list += silences
     gap_list.sort()
     duration = _union_length([(a, b) for a, b, _ in spans])  # a resumed replay re-reads a little
@@ -304,7 +304,8 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         rate=rate, clock_correction_ppm=clock_ppm, clock_ppm_u95=u95 if calibrated else 0.0,
         groups=int(G.max()) + 1 if len(G) else 1, gaps=gap_list, hourly=hourly, minutes=_merge_minutes(minutes),
         adev=adev, tie=tie, worst_hour=worst, best_stretch=best, missed_times_s=missed_t, failed_times_s=failed_t,
-        rejected_times_s=rejected_t, notes=notes, step_t=step_t, step_x=step_x, step_k=step_k, ringdown_hourly=ring)
+        rejected_times_s=rejected_t, notes=notes, step_t=step_t, step_x=step_x, step_k=step_k, ringdown_hourly=ring,
+        event_t=T, event_k=K)
 
 
 SILENT_RUN = 10  # this many missed steps in a row are a silence (microphone moved, movement stopped)
@@ -463,8 +464,4 @@ def _empty(segments, nominal, ev, gaps, minutes) -> LogFigures:
                       correction_pulses=0, rejected_events=0, rate=None, clock_correction_ppm=None, clock_ppm_u95=0.0,
                       groups=1, gaps=[], hourly=[], minutes=_merge_minutes(minutes), adev=None, tie=None,
                       worst_hour=None, best_stretch=None, missed_times_s=z, failed_times_s=z, rejected_times_s=z,
-                      notes=["no stepping pattern has been logged yet"])
-
-
-def rate_s_per_day_from_interval(interval_s: float, nominal_s: float) -> float:
-    return SECONDS_PER_DAY * (nominal_s / interval_s - 1.0)
+                      notes=["no stepping pattern has been logged yet"], event_t=ev["time_s"], event_k=ev["step"])

@@ -17,6 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..units import DB_PER_NEPER
+from .dsp import line_fit
 
 
 @dataclass(frozen=True)
@@ -84,10 +85,7 @@ def measure_ringdown(x: np.ndarray, samplerate: float, *, noise_power: float = 0
         return nan
     t = np.arange(i0, i1) / samplerate
     y = edc_db[i0:i1]
-    tm, ym = t.mean(), y.mean()
-    dt = t - tm
-    slope = float(np.dot(dt, y - ym) / np.dot(dt, dt))  # least-squares line, closed form
-    icpt = ym - slope * tm
+    slope, icpt = line_fit(t, y)
     if slope >= 0:
         return nan
     rms = float(np.sqrt(np.mean((y - (slope * t + icpt)) ** 2)))

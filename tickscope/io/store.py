@@ -31,13 +31,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import StoreError
+from ..model import KIND_CODES, flag_bits
 
 SCHEMA_VERSION = 1
 BLOCK_WINDOW_S = 10.0
 
-KIND_CODES = {"step": 0, "missed": 1, "failed": 2, "correction": 3, "rejected": 4}
-KIND_NAMES = {v: k for k, v in KIND_CODES.items()}
-FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8}
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
@@ -233,11 +231,8 @@ class LogStore:
 
     def add_event(self, seg: int, kind: str, step: int | None, time_s: float, pol: int | None,
                   peak_dbfs: float, snr_db: float, match: float, decay_ms: float, flags: tuple[str, ...]) -> None:
-        bits = 0
-        for fl in flags:
-            bits |= FLAG_BITS.get(fl, 0)
         self._event_rows.append((seg, KIND_CODES[kind], step, float(time_s), pol, _i(peak_dbfs, 100), _i(snr_db, 100),
-                                 _i(match, 1000), _i(decay_ms, 1000), bits))
+                                 _i(match, 1000), _i(decay_ms, 1000), flag_bits(flags)))
 
     def add_block(self, seg: int, start_sample: int, host_s, wall_s, adc_s) -> None:
         self._begin()
