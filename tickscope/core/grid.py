@@ -381,6 +381,7 @@ class StepTracker:
         failed = correction = None
         typical = statistics.median(self._peaks) if len(self._peaks) >= 8 else None
         # a twitching rotor sounds on the grid (the drive pulse is on time): within twitch_s
+        # (our reasoning from how the circuit drives the motor; no published tolerance)
         twitch_s = cfg.twitch_s
         weak = step is not None and typical is not None and step.imp.peak_dbfs < typical - cfg.weak_db
         if step is not None and step.t_s - pred > cfg.correction_min_s:
