@@ -34,7 +34,7 @@ class DetectorConfig:
     """Settings of the impact detector (times in seconds, levels in dB)."""
 
     hop_s: float = 0.0005  # envelope frame: 0.5 ms
-    chunk_s: float = 4.0  # processing chunk: long for files (fast), 0.25 s for live audio (prompt)
+    chunk_s: float = 16.0  # processing chunk: long for files (fast), 0.25 s for live audio (prompt)
     stats_block_s: float = 0.25  # floor and spread statistics per block of this length (any chunk size)
     floor_window_s: float = 4.0  # memory of the noise floor
     floor_quantile: float = 0.3  # the floor is this quantile of frame energies

@@ -26,7 +26,7 @@ from ..model import Event
 from .detect import Impact
 from .dsp import line_fit
 from .ringdown import measure_ringdown
-from .timing import Template, envelope_lag, learn_template, match, onset_of
+from .timing import Template, envelope_lag, learn_template, match, match_many, onset_of
 
 #: Step intervals of quartz movements (s): 2^-k fractions of a second for stepping
 #: sweep hands, and the PCA2002 output periods 1, 5, 10, 20, 30 s (NXP PCA2002
@@ -158,18 +158,19 @@ class StepTracker:
     def add(self, impacts: list[Impact], position_s: float) -> list[Event]:
         """Take new impacts (in time order) and the stream position; return decided events."""
         out: list[Event] = []
+        if self.acquired:
+            # the frame-level onset is enough to find the slot; the template match times it
+            # (all of this call's impacts together: the grid does not move until _decide)
+            fresh = [_Open(imp, imp.onset_sample / self.fs) for imp in impacts]
+            self._time_many(fresh)
+            self._open += fresh
+            impacts = []
+        late: list[_Open] = []  # impacts after the grid was found in this call
         for imp in impacts:
-            if self.acquired:
-                # the frame-level onset is enough to find the slot; the template match times it
-                o = _Open(imp, imp.onset_sample / self.fs)
-                self._time(o)
-                self._open.append(o)
-                continue
             t = (imp.snippet_start + onset_of(imp.snippet, self.fs, search_from=max(0, self.pre - int(0.004 * self.fs)))) / self.fs
             o = _Open(imp, t)
             if self.acquired:
-                self._time(o)
-                self._open.append(o)
+                late.append(o)
                 continue
             # acquisition uses exactly the impacts of the first acquire_s seconds, so the
             # result does not depend on how the audio was cut into blocks
@@ -182,10 +183,12 @@ class StepTracker:
                     out += [self._reject(b) for b in self._buffer if b.t_s < cut]
                     self._buffer = [b for b in self._buffer if b.t_s >= cut]
             if self.acquired:
-                self._time(o)
-                self._open.append(o)
+                late.append(o)
             else:
                 self._buffer.append(o)
+        if late:
+            self._time_many(late)
+            self._open += late
         if self.acquired:
             out += self._decide(position_s)
         return out
@@ -316,29 +319,40 @@ class StepTracker:
             self._b, self._a = np.polyfit(fine_k, fine_t, 1)
             self._fit.extend(zip(fine_k[-self.cfg.track_steps:], fine_t[-self.cfg.track_steps:]))
         out: list[Event] = []
-        for o in buf:
-            self._time(o)
-            self._open.append(o)
+        self._time_many(buf)
+        self._open += buf
         self._buffer = []
         return out
 
     # -- tracking ------------------------------------------------------------------------
-    def _time(self, o: _Open) -> None:
-        k = int(round((o.t_s - self._a) / self._b))
-        tmpl = self.templates[k % 2 if k >= 0 else 0]
-        lag, rho = match(o.imp.wsnippet, tmpl, max_lag=int(0.003 * self.fs))
-        expect = int(round(self.predict(k) * self.fs - o.imp.snippet_start - tmpl.onset_index))
-        if abs(expect) <= 0.010 * self.fs and (rho < 0.95 or abs(lag - expect) > 0.0003 * self.fs):
-            # The frame-level onset can be several ms early (a faint sound just before the step
-            # started the frame) and the search around it then finds only a side lobe: search
-            # around the slot's predicted time as well and keep the better match.
-            lag2, rho2 = match(o.imp.wsnippet, tmpl, max_lag=int(0.002 * self.fs), center=expect)
-            if rho2 > rho + 0.05:
-                lag, rho = lag2, rho2
-        o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag) / self.fs
-        o.match = rho
-        o.slot = k
-        o.match_any = rho  # raised against the other polarity only when the sound is not a step (_event)
+    def _time_many(self, opens: list[_Open]) -> None:
+        """Time impacts against their slots' templates (the slot from the frame-level time)."""
+        if not opens:
+            return
+        slots = [int(round((o.t_s - self._a) / self._b)) for o in opens]
+        pols = [k % 2 if k >= 0 else 0 for k in slots]
+        lag = np.zeros(len(opens))
+        rho = np.zeros(len(opens))
+        for pol in set(pols):
+            idx = [i for i, q in enumerate(pols) if q == pol]
+            lag[idx], rho[idx] = match_many(np.stack([opens[i].imp.wsnippet for i in idx]), self.templates[pol],
+                                            max_lag=int(0.003 * self.fs))
+        for i, o in enumerate(opens):
+            k = slots[i]
+            tmpl = self.templates[pols[i]]
+            lag_i, rho_i = float(lag[i]), float(rho[i])
+            expect = int(round(self.predict(k) * self.fs - o.imp.snippet_start - tmpl.onset_index))
+            if abs(expect) <= 0.010 * self.fs and (rho_i < 0.95 or abs(lag_i - expect) > 0.0003 * self.fs):
+                # The frame-level onset can be several ms early (a faint sound just before the step
+                # started the frame) and the search around it then finds only a side lobe: search
+                # around the slot's predicted time as well and keep the better match.
+                lag2, rho2 = match(o.imp.wsnippet, tmpl, max_lag=int(0.002 * self.fs), center=expect)
+                if rho2 > rho_i + 0.05:
+                    lag_i, rho_i = lag2, rho2
+            o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag_i) / self.fs
+            o.match = rho_i
+            o.slot = k
+            o.match_any = rho_i  # raised against the other polarity only when the sound is not a step (_event)
 
     def _window_after(self) -> float:
         # long intervals (end-of-life bursts every 2-4 s) gather up to 0.35 s of sound per slot

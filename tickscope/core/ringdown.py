@@ -56,9 +56,15 @@ def measure_ringdown(x: np.ndarray, samplerate: float, *, noise_power: float = 0
     if len(x) < 16:
         return nan
     e = x * x
-    # start at the envelope's peak (after the attack), smoothed over ~0.5 ms
+    # start at the envelope's peak (after the attack), smoothed over ~0.5 ms (a centred moving
+    # average, as np.convolve(e, ones(k) / k, "same"), from a running sum)
     k = max(1, int(0.0005 * samplerate))
-    sm = np.convolve(e, np.ones(k) / k, mode="same")
+    n = len(e)
+    cs = np.concatenate([[0.0], np.cumsum(e)])
+    i = np.arange(n)
+    hi = np.minimum(i + (k - 1) // 2, n - 1) + 1
+    lo = np.maximum(i + (k - 1) // 2 - k + 1, 0)
+    sm = (cs[hi] - cs[lo]) / k
     p = int(np.argmax(sm))
     peak = sm[p]
     if peak <= 0:
@@ -74,17 +80,18 @@ def measure_ringdown(x: np.ndarray, samplerate: float, *, noise_power: float = 0
     edc = np.cumsum(e[::-1])[::-1]
     if edc[0] <= 0:
         return nan
-    edc_db = 10 * np.log10(np.maximum(edc / edc[0], 1e-30))
+    ratio = edc / edc[0]  # the decay curve, linear; in dB only where the fit needs it
     snr_db = 10 * math.log10(peak / noise_power) if noise_power > 0 else 120.0
-    lo = max(stop_db, -(snr_db - margin_db))
-    if start_db - lo < min_range_db:
+    lo_db = max(stop_db, -(snr_db - margin_db))
+    if start_db - lo_db < min_range_db:
         return nan
-    i0 = int(np.argmax(edc_db <= start_db))
-    i1 = int(np.argmax(edc_db <= lo)) if np.any(edc_db <= lo) else len(edc_db) - 1
+    i0 = int(np.argmax(ratio <= 10 ** (start_db / 10)))
+    below_lo = ratio <= 10 ** (lo_db / 10)
+    i1 = int(np.argmax(below_lo)) if below_lo.any() else len(ratio) - 1
     if i1 - i0 < 4:
         return nan
     t = np.arange(i0, i1) / samplerate
-    y = edc_db[i0:i1]
+    y = 10 * np.log10(np.maximum(ratio[i0:i1], 1e-30))
     slope, icpt = line_fit(t, y)
     if slope >= 0:
         return nan

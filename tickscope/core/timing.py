@@ -60,28 +60,56 @@ def onset_of(wave: np.ndarray, samplerate: float, *, fraction: float = 0.2,
     return float(i - 1 + (level - env[i - 1]) / (env[i] - env[i - 1]))
 
 
+_NEWTON_WEIGHTS: dict[tuple[int, int], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+
+
+def _newton_weights(nbins: int, nfft: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-bin weights of the real-signal sum (1 at DC and Nyquist, 2 between), times w and w^2."""
+    key = (nbins, nfft)
+    got = _NEWTON_WEIGHTS.get(key)
+    if got is None:
+        w = np.full(nbins, 2.0)
+        w[0] = 1.0
+        if nfft % 2 == 0:
+            w[-1] = 1.0
+        wk = 2 * np.pi * np.arange(nbins) / nfft
+        got = _NEWTON_WEIGHTS[key] = (w, w * wk, w * wk * wk)
+    return got
+
+
+def _rotate(C: np.ndarray, tau: np.ndarray, nfft: int) -> np.ndarray:
+    """Rows C[r, k] * exp(2 pi i k tau[r] / nfft): the phase ramps by running products (a complex
+    exp per bin costs twice as much; the products' rounding error stays near k * 1e-16)."""
+    ramp = np.repeat(np.exp(2j * np.pi * tau / nfft)[:, None], C.shape[1], axis=1)
+    ramp[:, 0] = 1.0
+    return C * np.cumprod(ramp, axis=1)
+
+
+def _newton_peaks(C: np.ndarray, nfft: int, tau0: np.ndarray, iters: int = 6) -> tuple[np.ndarray, np.ndarray]:
+    """Refine the maxima of the correlations whose spectra are the rows of C (rfft bins), each
+    near its own lag tau0[r].  Returns the lags and the correlation values there."""
+    w, w1, w2 = _newton_weights(C.shape[1], nfft)
+    tau = np.array(tau0, dtype=np.float64)
+    live = np.ones(len(tau), dtype=bool)
+    for _ in range(iters):
+        idx = np.flatnonzero(live)
+        if not len(idx):
+            break
+        ph = _rotate(C[idx], tau[idx], nfft)
+        d1 = -(ph.imag @ w1)
+        d2 = -(ph.real @ w2)
+        ok = d2 < 0  # past a maximum's concave part: stop there
+        step = np.clip(-d1 / np.where(ok, d2, -1.0), -0.5, 0.5)
+        tau[idx[ok]] += step[ok]
+        live[idx[~ok | (np.abs(step) < 1e-6)]] = False
+    val = (_rotate(C, tau, nfft).real @ w) / nfft
+    return tau, val
+
+
 def _newton_peak(C: np.ndarray, nfft: int, tau0: float, iters: int = 6) -> tuple[float, float]:
     """Refine the maximum of the correlation whose spectrum is C (rfft bins) near lag tau0."""
-    k = np.arange(len(C))
-    w = np.full(len(C), 2.0)
-    w[0] = 1.0
-    if nfft % 2 == 0:
-        w[-1] = 1.0
-    wk = 2 * np.pi * k / nfft
-    tau = tau0
-    for _ in range(iters):
-        ph = C * np.exp(1j * wk * tau)
-        d1 = -np.sum(w * wk * ph.imag)
-        d2 = -np.sum(w * wk * wk * ph.real)
-        if d2 >= 0:
-            break
-        step = -d1 / d2
-        step = max(-0.5, min(0.5, step))
-        tau += step
-        if abs(step) < 1e-6:
-            break
-    val = float(np.sum(w * (C * np.exp(1j * wk * tau)).real) / nfft)
-    return tau, val
+    tau, val = _newton_peaks(C[None, :], nfft, np.array([tau0]), iters)
+    return float(tau[0]), float(val[0])
 
 
 def _window_span(template: Template) -> tuple[int, int]:
@@ -111,56 +139,82 @@ def match(snippet: np.ndarray, template: Template, *, max_lag: int, center: int 
     A lag of 0 means the snippet's sound sits exactly where the template's does; lags
     ``center - max_lag .. center + max_lag`` are searched.
     """
+    lags, rhos = match_many(np.asarray(snippet)[None, :], template, max_lag=max_lag, center=center)
+    return float(lags[0]), float(rhos[0])
+
+
+def match_many(snippets: np.ndarray, template: Template, *, max_lag: int,
+               center: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`match` for the rows of ``snippets`` (2-D, equal lengths) at once: the same numbers,
+    with the FFTs, the lobe search and Newton's method run over all rows together."""
+    S = np.asarray(snippets, dtype=np.float64)
+    nrow = S.shape[0]
     s0, s1 = _window_span(template)
     a = max(0, s0 + center - max_lag)
-    b = min(len(snippet), s1 + center + max_lag)
-    x = snippet[a:b]
+    b = min(S.shape[1], s1 + center + max_lag)
+    x = S[:, a:b]
     nt = s1 - s0
-    nfft = 1 << int(np.ceil(np.log2(len(x) + nt)))
-    C = np.fft.rfft(x, nfft) * _template_spectrum(template, s0, s1, nfft)
-    c = np.fft.irfft(C, nfft)
+    nfft = 1 << int(np.ceil(np.log2(x.shape[1] + nt)))
+    C = np.fft.rfft(x, nfft, axis=1) * _template_spectrum(template, s0, s1, nfft)
+    c = np.fft.irfft(C, nfft, axis=1)
     # c[j] = sum_n x[n + j] t[n]; lag j in x coordinates is lag (a + j - s0) in snippet coordinates
     lags = np.arange(center - max_lag, center + max_lag + 1) + (s0 - a)
-    lags = lags[(lags >= 0) & (lags <= len(x) - nt)]
+    lags = lags[(lags >= 0) & (lags <= x.shape[1] - nt)]
     if not len(lags):
-        return 0.0, 0.0
-    cl = c[lags]
-    top = float(cl.max())
+        return np.zeros(nrow), np.zeros(nrow)
+    cl = c[:, lags]
+    top = cl.max(axis=1)
     # A ringing step's correlation oscillates at its ring frequency.  At a low sample rate
     # (8 kHz, a 1.2 kHz ring: 6.5 samples a cycle) the true peak can fall between samples
     # and read lower than the next cycle's, so every lobe near the top is refined and the
     # best refined one wins (otherwise whole ring cycles slip: ~0.8 ms at 8 kHz).
-    inner = (cl[1:-1] >= cl[:-2]) & (cl[1:-1] >= cl[2:]) & (cl[1:-1] >= 0.75 * top)
-    cands = [int(lags[1 + i]) for i in np.flatnonzero(inner)] or [int(lags[np.argmax(cl)])]
-    if int(lags[np.argmax(cl)]) not in cands:
-        cands.append(int(lags[np.argmax(cl)]))
+    inner = (cl[:, 1:-1] >= cl[:, :-2]) & (cl[:, 1:-1] >= cl[:, 2:]) & (cl[:, 1:-1] >= 0.75 * top[:, None])
+    am = np.argmax(cl, axis=1)
+    # candidate lobes (row, lag index, order): the local maxima in lag order, then the
+    # highest sample when it is not one of them
+    r_in, i_in = np.nonzero(inner)
+    i_in = i_in + 1
+    has = np.zeros(nrow, dtype=bool)
+    has[r_in[i_in == am[r_in]]] = True
+    extra = np.flatnonzero(~has)
+    rows = np.concatenate([r_in, extra])
+    j = lags[np.concatenate([i_in, am[extra]])]
+    order = np.concatenate([np.arange(len(r_in)), np.full(len(extra), len(lags))])
     # rank the lobes by their three-point parabola peaks; refine those within 3 % of the best
-    para = []
-    for j in cands:
-        y0, y1, y2 = c[j - 1], c[j], c[(j + 1) % nfft]
-        den = y0 - 2 * y1 + y2
-        if den < 0:
-            para.append((y1 - (y0 - y2) ** 2 / (8 * den), j + 0.5 * (y0 - y2) / den, j))
-        else:
-            para.append((y1, float(j), j))
-    top_p = max(p[0] for p in para)
-    best = None
-    for pv, start, j in para:
-        if pv < top_p - 0.03 * abs(top_p):
-            continue
-        # Newton from the parabola's peak: two or three steps then suffice
-        tau_j, val_j = _newton_peak(C, nfft, float(start), iters=3)
-        if abs(tau_j - j) > 1.0:  # Newton wandered: keep the integer peak
-            tau_j, val_j = float(j), float(c[j])
-        if best is None or val_j > best[1]:
-            best = (tau_j, val_j)
-    tau, val = best
-    lag = a + tau - s0
-    i0 = int(round(tau))
-    seg = x[max(0, i0): i0 + nt]
-    den = np.sqrt(template.energy * float(np.dot(seg, seg)) + 1e-300) if len(seg) == nt else 0.0
-    rho = val / den if den > 0 else 0.0
-    return float(lag), float(rho)
+    y0, y1, y2 = c[rows, j - 1], c[rows, j], c[rows, (j + 1) % nfft]
+    den = y0 - 2 * y1 + y2
+    conc = den < 0
+    safe = np.where(conc, den, -1.0)
+    pv = np.where(conc, y1 - (y0 - y2) ** 2 / (8 * safe), y1)
+    start = np.where(conc, j + 0.5 * (y0 - y2) / safe, j.astype(np.float64))
+    top_p = np.full(nrow, -np.inf)
+    np.maximum.at(top_p, rows, pv)
+    keep = pv >= top_p[rows] - 0.03 * np.abs(top_p[rows])
+    rows, j, start, order = rows[keep], j[keep], start[keep], order[keep]
+    # Newton from the parabola's peak: two or three steps then suffice
+    tau, val = _newton_peaks(C[rows], nfft, start, iters=3)
+    wander = np.abs(tau - j) > 1.0  # Newton wandered: keep the integer peak
+    tau = np.where(wander, j.astype(np.float64), tau)
+    val = np.where(wander, c[rows, j], val)
+    # the best refined lobe of each row (the first in candidate order among equals)
+    pick = np.lexsort((order, -val, rows))
+    first = np.ones(len(pick), dtype=bool)
+    first[1:] = rows[pick][1:] != rows[pick][:-1]
+    best = pick[first]
+    out_tau = np.zeros(nrow)
+    out_val = np.zeros(nrow)
+    out_tau[rows[best]] = tau[best]
+    out_val[rows[best]] = val[best]
+    lag = a + out_tau - s0
+    i0 = np.rint(out_tau).astype(np.int64)
+    rho = np.zeros(nrow)
+    cs = np.concatenate([np.zeros((nrow, 1)), np.cumsum(x * x, axis=1)], axis=1)
+    ok = (i0 >= 0) & (i0 + nt <= x.shape[1])
+    r_ok = np.flatnonzero(ok)
+    seg_e = cs[r_ok, i0[r_ok] + nt] - cs[r_ok, i0[r_ok]]
+    den = np.sqrt(template.energy * seg_e + 1e-300)
+    rho[r_ok] = np.where(den > 0, out_val[r_ok] / den, 0.0)
+    return lag, rho
 
 
 def _shift(x: np.ndarray, delay: float) -> np.ndarray:
