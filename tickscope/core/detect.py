@@ -417,7 +417,8 @@ def _noise_whitener(x: np.ndarray, frame_e: np.ndarray, hop: int, samplerate: fl
     nfft = dsp.fast_len(2 * len(seg))
     seg = np.fft.irfft(np.fft.rfft(seg, nfft) * dsp.sos_power_response(sos, nfft), nfft)[: len(seg)]
     seg = seg[int(0.01 * samplerate): len(seg) - int(0.01 * samplerate)]
-    r = np.correlate(seg, seg, mode="full")[len(seg) - 1: len(seg) + order]
+    # autocorrelation at lags 0..order only (the full correlation costs n^2)
+    r = np.array([float(np.dot(seg[: len(seg) - j], seg[j:])) for j in range(order + 1)])
     if r[0] <= 0:
         return np.ones(1)
     r = r.copy()

@@ -17,7 +17,6 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..units import DB_PER_NEPER
-from .dsp import line_fit
 
 
 @dataclass(frozen=True)
@@ -60,11 +59,15 @@ def measure_ringdown(x: np.ndarray, samplerate: float, *, noise_power: float = 0
     # average, as np.convolve(e, ones(k) / k, "same"), from a running sum)
     k = max(1, int(0.0005 * samplerate))
     n = len(e)
-    cs = np.concatenate([[0.0], np.cumsum(e)])
-    i = np.arange(n)
-    hi = np.minimum(i + (k - 1) // 2, n - 1) + 1
-    lo = np.maximum(i + (k - 1) // 2 - k + 1, 0)
-    sm = (cs[hi] - cs[lo]) / k
+    h = (k - 1) // 2
+    cs = np.empty(n + 1)
+    cs[0] = 0.0
+    np.cumsum(e, out=cs[1:])
+    # window of sample i: e[max(0, i + h - k + 1) .. min(n - 1, i + h)] (zeros outside)
+    hi = cs[np.minimum(np.arange(n) + h, n - 1) + 1] if n <= k + h else np.concatenate([cs[h + 1: n + 1], np.full(h, cs[n])])
+    lo_start = k - 1 - h  # first sample whose window starts inside e
+    lo = np.concatenate([np.zeros(min(lo_start, n)), cs[: max(0, n - lo_start)]])
+    sm = (hi - lo) / k
     p = int(np.argmax(sm))
     peak = sm[p]
     if peak <= 0:
@@ -90,10 +93,13 @@ def measure_ringdown(x: np.ndarray, samplerate: float, *, noise_power: float = 0
     i1 = int(np.argmax(below_lo)) if below_lo.any() else len(ratio) - 1
     if i1 - i0 < 4:
         return nan
-    t = np.arange(i0, i1) / samplerate
+    # least-squares line through the curve in dB at evenly spaced points (closed form)
     y = 10 * np.log10(np.maximum(ratio[i0:i1], 1e-30))
-    slope, icpt = line_fit(t, y)
+    m = i1 - i0
+    c = np.arange(m) - 0.5 * (m - 1)
+    slope = float(np.dot(c, y)) * 12.0 / (m * (m * m - 1.0)) * samplerate
     if slope >= 0:
         return nan
-    rms = float(np.sqrt(np.mean((y - (slope * t + icpt)) ** 2)))
+    resid = y - float(np.mean(y)) - (slope / samplerate) * c
+    rms = float(np.sqrt(np.dot(resid, resid) / m))
     return RingDown(float(-DB_PER_NEPER / slope * 1e3), float(y[0] - y[-1]), rms)
