@@ -335,32 +335,33 @@ class ImpactDetector:
         """
         n = self.pre + self.post
         raw = np.zeros((len(ready), n), dtype=np.float64)
-        levels = []
-        ms1 = int(0.001 * self.samplerate)
-        ms10 = int(0.010 * self.samplerate)
-        lag = self.lag or 1
-        for i, (onset, floor_power) in enumerate(ready):
+        trunc = []
+        for i, (onset, _) in enumerate(ready):
             a = onset - self.pre
             b = onset + self.post
             ra = max(a, self._raw_start)
             rb = min(b, self._raw_start + len(self._raw))
-            row = raw[i]
-            row[ra - a: rb - a] = self._raw[ra - self._raw_start: rb - self._raw_start]
-            # the level of this impact only: the first 10 ms (a later sound in the snippet is another impact)
-            head = row[max(0, self.pre - ms1): self.pre + ms10]
-            peak = float(np.max(np.abs(head))) if len(head) else 0.0
-            clipped = _flat_top(head, peak)
-            # level over the floor, measured the way the floor was (lagged difference, frame energy)
-            # on the first 10 ms of this impact
-            hd = row[self.pre - ms1: self.pre + ms10].astype(np.float32)
-            if len(hd) > lag + self.hop:
-                dd = hd[lag:] - hd[:-lag]
-                m = (len(dd) // self.hop) * self.hop
-                fe = np.einsum("ij,ij->i", dd[:m].reshape(-1, self.hop), dd[:m].reshape(-1, self.hop)) / self.hop
-                snr = 10 * math.log10(max(float(fe.max()), 1e-30) / max(floor_power, 1e-30))
-            else:
-                snr = 0.0
-            levels.append((onset, a, peak, clipped, snr, (rb < b) or (ra > a)))
+            raw[i, ra - a: rb - a] = self._raw[ra - self._raw_start: rb - self._raw_start]
+            trunc.append((rb < b) or (ra > a))
+        # the level of each impact only: its first 10 ms (a later sound in the snippet is another impact)
+        ms1 = int(0.001 * self.samplerate)
+        ms10 = int(0.010 * self.samplerate)
+        head = raw[:, max(0, self.pre - ms1): self.pre + ms10]
+        peak = np.abs(head).max(axis=1) if head.shape[1] else np.zeros(len(ready))
+        clipped = _flat_tops(head, peak)
+        # level over the floor, measured the way the floor was (lagged difference, frame energy)
+        # on the first 10 ms of each impact
+        lag = self.lag or 1
+        hd = raw[:, self.pre - ms1: self.pre + ms10].astype(np.float32)
+        if hd.shape[1] > lag + self.hop:
+            dd = hd[:, lag:] - hd[:, :-lag]
+            m = (dd.shape[1] // self.hop) * self.hop
+            dd = dd[:, :m].reshape(len(ready), -1, self.hop)
+            fe = np.einsum("ijk,ijk->ij", dd, dd) / self.hop
+            floors = np.array([f for _, f in ready])
+            snr = 10 * np.log10(np.maximum(fe.max(axis=1).astype(np.float64), 1e-30) / np.maximum(floors, 1e-30))
+        else:
+            snr = np.zeros(len(ready))
         # zero-phase high-pass and whitening in one spectrum; the 6 ms before the onset absorb
         # the start-up transient (the pre-onset mean is removed first, so a DC offset cannot
         # ring the filter)
@@ -368,9 +369,10 @@ class ImpactDetector:
         X = np.fft.rfft(base, self._nfft, axis=1)
         hp = np.fft.irfft(X * self._hp_resp, self._nfft, axis=1)[:, :n]
         wh = np.fft.irfft(X * self._wh_resp, self._nfft, axis=1)[:, :n] if len(self.whitener) > 1 else hp
-        return [Impact(onset_sample=onset, peak_dbfs=20 * math.log10(max(peak, 1e-12)), frame_snr_db=snr,
-                       snippet_start=a, snippet=hp[i], wsnippet=wh[i], clipped=clipped, truncated=trunc)
-                for i, (onset, a, peak, clipped, snr, trunc) in enumerate(levels)]
+        return [Impact(onset_sample=onset, peak_dbfs=20 * math.log10(max(float(peak[i]), 1e-12)),
+                       frame_snr_db=float(snr[i]), snippet_start=onset - self.pre, snippet=hp[i], wsnippet=wh[i],
+                       clipped=bool(clipped[i]), truncated=trunc[i])
+                for i, (onset, _) in enumerate(ready)]
 
 
 def _quick_quantile(e: np.ndarray, q: float) -> float:
@@ -385,15 +387,13 @@ def _small_median(values) -> float:
     return float(v[n // 2]) if n % 2 else 0.5 * float(v[n // 2 - 1] + v[n // 2])
 
 
-def _flat_top(raw: np.ndarray, peak: float) -> bool:
-    """True when the waveform sits at its extreme for 3+ consecutive samples (clipping)."""
-    if peak <= 0:
-        return False
-    at = np.abs(raw) >= 0.999 * peak
-    if np.count_nonzero(at) < 3:
-        return False
-    run = np.convolve(at.astype(np.int8), np.ones(3, dtype=np.int8), mode="valid")
-    return bool(np.any(run >= 3))
+def _flat_tops(rows: np.ndarray, peak: np.ndarray) -> np.ndarray:
+    """Per row: True when the waveform sits at its extreme for 3+ consecutive samples (clipping)."""
+    if rows.shape[1] < 3:
+        return np.zeros(len(rows), dtype=bool)
+    at = np.abs(rows) >= 0.999 * peak[:, None]
+    run3 = at[:, :-2] & at[:, 1:-1] & at[:, 2:]
+    return run3.any(axis=1) & (peak > 0)
 
 
 def _noise_whitener(x: np.ndarray, frame_e: np.ndarray, hop: int, samplerate: float,
