@@ -24,7 +24,6 @@ import numpy as np
 
 from ..model import Event
 from .detect import Impact
-from .dsp import line_fit
 from .ringdown import measure_ringdown
 from .timing import Template, envelope_lag, learn_template, match, match_many, onset_of
 
@@ -450,11 +449,15 @@ class StepTracker:
             if step.match >= cfg.good_match:
                 self._fit.append((k, step.t_s))
                 if len(self._fit) >= 3:
-                    kk = np.array([p[0] for p in self._fit], dtype=np.float64)
-                    tt = np.array([p[1] for p in self._fit])
-                    b, a = line_fit(kk - kk[-1], tt)
+                    # least-squares line through the last steps (plain floats: 32 points)
+                    k_last = self._fit[-1][0]
+                    n_fit = len(self._fit)
+                    km = sum(p[0] - k_last for p in self._fit) / n_fit
+                    tm = sum(p[1] for p in self._fit) / n_fit
+                    sxx = sum((p[0] - k_last - km) ** 2 for p in self._fit)
+                    b = sum((p[0] - k_last - km) * (p[1] - tm) for p in self._fit) / sxx
                     self._b = b
-                    self._a = a - b * kk[-1]
+                    self._a = (tm - b * km) - b * k_last
         elif not self._in_gap(pred):
             out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
         return out
@@ -478,12 +481,13 @@ class StepTracker:
         if nxt:
             i1 = min(i1, int(round(min(nxt) * self.fs)) - imp.snippet_start - int(0.001 * self.fs))
         pre_seg = imp.snippet[int(0.001 * self.fs): max(int(0.001 * self.fs) + 1, i0 - int(0.001 * self.fs))]
-        noise = float(np.mean(pre_seg**2)) if len(pre_seg) > 8 else 0.0
+        noise = float(np.dot(pre_seg, pre_seg)) / len(pre_seg) if len(pre_seg) > 8 else 0.0
         # the end of the window, too: under a phone's gain control the noise before a step
         # is amplified more than the noise during it
         tail = imp.snippet[max(i0, i1 - int(0.012 * self.fs)): i1]
         if len(tail) > 8 and i1 - i0 > int(0.05 * self.fs):
-            noise = min(noise, float(np.mean(tail**2))) if noise > 0 else float(np.mean(tail**2))
+            tail_power = float(np.dot(tail, tail)) / len(tail)
+            noise = min(noise, tail_power) if noise > 0 else tail_power
         rd = measure_ringdown(imp.snippet[max(i0, 0): max(i1, i0 + 1)], self.fs, noise_power=noise)
         return Event("step", o.t_s, step=k, polarity="AB"[k % 2], peak_dbfs=imp.peak_dbfs,
                      snr_db=imp.frame_snr_db, match=o.match, decay_ms=rd.decay_ms, flags=tuple(flags))

@@ -217,13 +217,16 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int,
     return lag, rho
 
 
-def _shift(x: np.ndarray, delay: float) -> np.ndarray:
-    """Delay x by a fractional number of samples (positive = later), by an FFT phase ramp."""
-    n = len(x)
+def _shift(x: np.ndarray, delay) -> np.ndarray:
+    """Delay x (1-D, or each row of 2-D x by its own delay) by a fractional number of samples
+    (positive = later), by an FFT phase ramp."""
+    x = np.asarray(x, dtype=np.float64)
+    n = x.shape[-1]
     nfft = 1 << int(np.ceil(np.log2(2 * n)))
-    X = np.fft.rfft(x, nfft)
-    k = np.arange(len(X))
-    return np.fft.irfft(X * np.exp(-2j * np.pi * k * delay / nfft), nfft)[:n]
+    X = np.fft.rfft(x, nfft, axis=-1)
+    k = np.arange(X.shape[-1])
+    ramp = np.exp(-2j * np.pi * np.multiply.outer(np.asarray(delay, dtype=np.float64), k) / nfft)
+    return np.fft.irfft(X * ramp, nfft, axis=-1)[..., :n]
 
 
 def learn_template(snippets: list[np.ndarray], samplerate: float, *, pre: int,
@@ -256,18 +259,15 @@ def learn_template(snippets: list[np.ndarray], samplerate: float, *, pre: int,
         on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag))
         win = _window(L, on, samplerate, window_s)
         t = Template(ref, on, win, 1, float(np.sum((ref * win) ** 2)))
-        acc = np.zeros(L)
-        n = 0
-        for s in S:
-            lag, rho = match(s, t, max_lag=max_lag)
-            if rho < 0.3:  # not this polarity's sound
-                continue
-            acc += _shift(s, -lag)
-            n += 1
-        if n == 0:
-            acc, n = ref, 1
-        ref = acc / n
-        tmpl = n
+        lags, rhos = match_many(np.stack(S), t, max_lag=max_lag)
+        use = np.flatnonzero(rhos >= 0.3)  # the others are not this polarity's sound
+        n = len(use)
+        if n:
+            acc = np.zeros(L)
+            for row in _shift(np.stack([S[i] for i in use]), -lags[use]):
+                acc += row
+            ref = acc / n
+        tmpl = max(n, 1)
     on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag))
     win = _window(L, on, samplerate, window_s)
     return Template(ref, on, win, int(tmpl or 1), float(np.sum((ref * win) ** 2)))
