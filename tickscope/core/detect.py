@@ -140,11 +140,19 @@ class ImpactDetector:
         if self.lag is None:
             self._tune(np.concatenate(self._inbuf))
         if self._inlen >= self.chunk:
-            buf = np.concatenate(self._inbuf)
-            n_full = (len(buf) // self.chunk) * self.chunk
-            for i in range(0, n_full, self.chunk):
-                out += self._process_chunk(buf[i: i + self.chunk])
-            rest = buf[n_full:]
+            # Everything buffered, in whole statistics blocks: what was held back, completed to a
+            # whole block from the new samples (a small copy), then the new samples' whole blocks
+            # in place (no copy of the bulk of the audio).
+            unit = self.hop * self.sub
+            held = self._inbuf[:-1]
+            if held:
+                need = (-sum(len(h) for h in held)) % unit
+                out += self._process_chunk(np.concatenate(held + [x[:need]]))
+                x = x[need:]
+            n_whole = (len(x) // unit) * unit
+            if n_whole:
+                out += self._process_chunk(x[:n_whole])
+            rest = x[n_whole:].copy()  # the caller may reuse its buffer
             self._inbuf = [rest] if len(rest) else []
             self._inlen = len(rest)
         return out
@@ -235,7 +243,7 @@ class ImpactDetector:
     def _process_chunk(self, x: np.ndarray) -> list[Impact]:
         n0 = self._consumed
         self.max_abs = max(self.max_abs, float(x.max()), -float(x.min()))
-        self.sum_x += float(np.sum(x, dtype=np.float64))
+        self.sum_x += float(np.sum(x))  # float32 pairwise within the chunk, float64 across chunks
         e = self._frame_energy(x, self._tail, self.lag)
         self._tail = np.concatenate([self._tail, x])[-self.lag:] if self.lag > len(x) else x[-self.lag:].copy()
         P = len(self._prev_frames)
