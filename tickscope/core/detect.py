@@ -117,8 +117,9 @@ class ImpactDetector:
         self._spreads: deque = deque(maxlen=self._floors.maxlen)
         self._last_onset_frame = -(10**12)
         self._quiet_until_frame = -1
-        self._raw = np.zeros(0, dtype=np.float32)  # recent raw audio
+        self._raw = np.zeros(0, dtype=np.float32)  # recent raw audio (our own copy)
         self._raw_start = 0
+        self._fresh = np.zeros(0, dtype=np.float32)  # the chunk being processed, right after _raw (not copied)
         self._waiting: list[tuple[int, float]] = []  # (onset sample, frame snr) awaiting their snippet
         self.floor_db = float("nan")  # current noise floor, dB re full-scale frame energy per sample
         self.samples_seen = 0
@@ -190,6 +191,7 @@ class ImpactDetector:
         pad = (-self._consumed) % self.hop  # keep frames aligned to the hop grid
         self._consumed += pad
         self._raw = np.zeros(0, dtype=np.float32)
+        self._fresh = np.zeros(0, dtype=np.float32)
         self._raw_start = self._consumed
         self._tail = np.zeros(0, dtype=np.float32)
         self._prev_frames = np.zeros(len(self._prev_frames))
@@ -204,7 +206,22 @@ class ImpactDetector:
 
     # -- internals ---------------------------------------------------------------------------
     def _append_raw(self, x: np.ndarray) -> None:
-        self._raw = np.concatenate([self._raw, x]) if len(self._raw) else x.copy()
+        """Audio after the raw audio so far.  The chunk itself is not copied: snippets are cut from
+        it and what later snippets need is kept (a copy of the last ~0.1 s) by _emit_ready."""
+        if len(self._fresh):
+            self._raw = np.concatenate([self._raw, self._fresh])
+        self._fresh = x
+
+    def _raw_end(self) -> int:
+        return self._raw_start + len(self._raw) + len(self._fresh)
+
+    def _fetch(self, out: np.ndarray, a: int) -> None:
+        """Copy the raw audio from sample ``a`` on into ``out`` (zeros where there is none)."""
+        b = a + len(out)
+        for start, piece in ((self._raw_start, self._raw), (self._raw_start + len(self._raw), self._fresh)):
+            lo, hi = max(a, start), min(b, start + len(piece))
+            if hi > lo:
+                out[lo - a: hi - a] = piece[lo - start: hi - start]
 
     def _frame_energy(self, x: np.ndarray, prev: np.ndarray, lag: int) -> np.ndarray:
         """Mean power per frame of x[n] - x[n-lag] (prev holds the samples before x)."""
@@ -250,10 +267,11 @@ class ImpactDetector:
         ext = np.concatenate([self._prev_frames, e])
         cs = np.concatenate([[0.0], np.cumsum(ext)])
         ns = self.nsum
-        idx = np.arange(P, len(ext))
-        # mean power over the nsum frames ending at each frame, and over 5..12 frames before
-        now = (cs[idx + 1] - cs[idx + 1 - ns]) / ns
-        bg = (cs[idx - 4] - cs[idx - 12]) / 8.0
+        m = len(ext)
+        # mean power over the nsum frames ending at each frame i (i = P .. m-1), and over 5..12
+        # frames before it (cs[j] is the sum of the first j frames)
+        now = (cs[P + 1: m + 1] - cs[P + 1 - ns: m + 1 - ns]) / ns
+        bg = (cs[P - 4: m - 4] - cs[P - 12: m - 12]) / 8.0
         nf = len(e)
         # Statistics per fixed block of frames (0.25 s), whatever the processing chunk: files are
         # processed in long chunks (fast), live audio in short ones (prompt), with equal results.
@@ -315,7 +333,7 @@ class ImpactDetector:
 
     def _emit_ready(self, final: bool) -> list[Impact]:
         out: list[Impact] = []
-        end = self._raw_start + len(self._raw)
+        end = self._raw_end()
         keep, ready = [], []
         for onset, snr in self._waiting:
             if onset + self.post <= end or final:
@@ -330,9 +348,9 @@ class ImpactDetector:
         back = self.pre + (self.nsum + 2) * self.hop
         need_from = min([o - self.pre for o, _ in keep], default=end - back)
         need_from = max(self._raw_start, min(need_from, end - back))
-        if need_from > self._raw_start:
-            self._raw = self._raw[need_from - self._raw_start:]
-            self._raw_start = need_from
+        kept = np.empty(end - need_from, dtype=np.float32)
+        self._fetch(kept, need_from)
+        self._raw, self._raw_start, self._fresh = kept, need_from, np.zeros(0, dtype=np.float32)
         return out
 
     def _cut(self, ready: list[tuple[int, float]]) -> list[Impact]:
@@ -344,13 +362,11 @@ class ImpactDetector:
         n = self.pre + self.post
         raw = np.zeros((len(ready), n), dtype=np.float64)
         trunc = []
+        end = self._raw_end()
         for i, (onset, _) in enumerate(ready):
             a = onset - self.pre
-            b = onset + self.post
-            ra = max(a, self._raw_start)
-            rb = min(b, self._raw_start + len(self._raw))
-            raw[i, ra - a: rb - a] = self._raw[ra - self._raw_start: rb - self._raw_start]
-            trunc.append((rb < b) or (ra > a))
+            self._fetch(raw[i], a)
+            trunc.append(onset + self.post > end or a < self._raw_start)
         # the level of each impact only: its first 10 ms (a later sound in the snippet is another impact)
         ms1 = int(0.001 * self.samplerate)
         ms10 = int(0.010 * self.samplerate)
