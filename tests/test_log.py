@@ -1,4 +1,6 @@
 """Weekend logging: the SQLite log, crash safety, resume, the report and its figures."""
+import csv
+import io
 import json
 import os
 import random
@@ -16,6 +18,7 @@ from tickscope.cli import main
 from tickscope.core.logstats import log_figures
 from tickscope.core.simulate import Scenario
 from tickscope.errors import StoreError
+from tickscope.export import write_log_csv
 from tickscope.io.simfile import write_simulation
 from tickscope.io.store import LogStore
 from tickscope.logsession import LogSession
@@ -416,3 +419,52 @@ def test_report_calibrates_a_device_log_from_its_own_block_readings(tmp_path, ca
     assert cal["clock_correction_ppm"] == pytest.approx(40.0, abs=0.5)
     assert "host clock" in cal["time_base"]
     assert main(["report", db, "--clock-from-host", "--clock-ppm", "3"]) == 2
+
+
+def test_polarity_names_hold_across_a_restart(tmp_path):
+    """A restarted device log names A/B from its own first step; the report names them once for the log.
+
+    The movement: A steps ring 8 ms, B steps 12 ms (physical polarity = step number parity).  The
+    second segment starts on a B step, which that segment calls A.
+    """
+    rng = np.random.default_rng(5)
+    store = LogStore(str(tmp_path / "restart.db"))
+    store.init_meta("polarity test", "test")
+    common = dict(sample_rate_hz=8000.0, channel=0, clock_ppm=None, source_kind="device", source="bench mic")
+
+    def events(k0, k1, t_shift):
+        out = []
+        for own, kk in enumerate(range(k0, k1)):
+            t = 0.5 + kk * (1 - 2e-5) + rng.normal(0, 3e-6) - t_shift
+            out.append(Event("step", float(t), step=own, polarity="AB"[own % 2], peak_dbfs=-14.0, snr_db=35.0,
+                             match=0.97, decay_ms=(8.0, 12.0)[kk % 2] + rng.normal(0, 0.05)))
+        return out
+
+    for i, (k0, k1) in enumerate(((0, 4000), (4901, 9000))):  # a 15 min gap; segment 2 starts on step 4901 (B)
+        t_shift = k0 * (1 - 2e-5)
+        seg = store.new_segment(started_wall=1.8e9 + t_shift, timeline_s=t_shift, join_kind="wall" if i else "first",
+                                **common)
+        ls = LogSession(store, seg, None, nominal_s=1.0, timeline_s=t_shift)
+        evs = events(k0, k1, t_shift)
+        ls.take(evs, evs[-1].time_s + 1)
+        ls.finish("test")
+    st = LogStore(str(tmp_path / "restart.db"), readonly=True)
+    ev = st.events()
+    fig = log_figures(st.segments(), ev)
+    # as stored, segment 2 calls its 12 ms steps A
+    seg2 = ev["seg"] == st.segments()[1].id
+    assert np.median(ev["decay_ms"][seg2 & (ev["pol"] == 0)]) == pytest.approx(12.0, abs=0.2)
+    # the report: A rings 8 ms and B 12 ms in every hour, before and after the restart
+    hours = [r for r in fig.ringdown_hourly if r["A"] and r["B"]]
+    assert len(hours) >= 2 and any(r["hour"] >= 2 for r in hours)
+    for r in hours:
+        assert r["A"]["median_ms"] == pytest.approx(8.0, abs=0.2), r
+        assert r["B"]["median_ms"] == pytest.approx(12.0, abs=0.2), r
+    assert any("other way round" in n for n in fig.notes)
+    # the steps CSV uses the log's names too
+    buf = io.StringIO()
+    write_log_csv(buf, fig.event_t, fig.event_k, ev, fig.event_pol)
+    rows = list(csv.DictReader(io.StringIO(buf.getvalue())))
+    for r in rows:
+        assert (float(r["decay_ms"]) < 10) == (r["polarity"] == "A")
+    st.db.close()

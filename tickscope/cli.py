@@ -553,7 +553,7 @@ def cmd_report(args) -> int:
     fig = log_figures(segs, ev, gaps=gaps, minutes=minutes, override_ppm=over_ppm, override_u95=over_u)
     if args.steps_csv:
         with open(args.steps_csv, "w", newline="") as fh:
-            write_log_csv(fh, fig.event_t, fig.event_k, ev)
+            write_log_csv(fh, fig.event_t, fig.event_k, ev, fig.event_pol)
     d = log_to_dict(fig, db=args.db, meta=meta, segments=segs, time_base=time_base, device_clock=device_clock)
     label = meta.get("label") or os.path.basename(args.db)
     if args.out:

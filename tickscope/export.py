@@ -148,8 +148,10 @@ def log_to_dict(fig, *, db: str, meta: dict, segments, time_base: str, device_cl
 _KIND_NAMES = {v: k for k, v in KIND_CODES.items()}
 
 
-def write_log_csv(fh, T, K, ev: dict) -> int:
-    """Every logged event with the columns of ``analyze --steps-csv`` (time on the log's timeline)."""
+def write_log_csv(fh, T, K, ev: dict, P=None) -> int:
+    """Every logged event with the columns of ``analyze --steps-csv`` (time on the log's timeline;
+    ``P``: the log's polarity names, see :func:`tickscope.core.logstats.polarity_on_log`)."""
+    P = ev["pol"] if P is None else P
     w = csv.writer(fh, lineterminator="\n")
     w.writerow(CSV_HEADER)
     last_k = last_t = None
@@ -169,7 +171,7 @@ def write_log_csv(fh, T, K, ev: dict) -> int:
         if kind != "step":
             flags.insert(0, kind)
         pk, dc = float(ev["peak_dbfs"][i]), float(ev["decay_ms"][i])
-        pol = int(ev["pol"][i])
+        pol = int(P[i])
         w.writerow([n, "" if k < 0 else k, f"{T[i]:.9f}", ("A" if pol == 0 else "B") if kind == "step" and pol >= 0 else "",
                     interval, "" if not math.isfinite(pk) else f"{pk:.2f}", "" if not math.isfinite(dc) else f"{dc:.3f}",
                     ";".join(flags)])

@@ -77,6 +77,7 @@ class LogFigures:
     # every event on the log's timeline and its step number across segments (-1: none)
     event_t: np.ndarray = field(default_factory=lambda: np.zeros(0))
     event_k: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    event_pol: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))  # 0 A, 1 B, -1 none
 
 
 def fit_rate(k, t, nominal, **kw):
@@ -168,6 +169,35 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
     return T, K, G, notes
 
 
+def polarity_on_log(segments, ev: dict[str, np.ndarray], K: np.ndarray) -> tuple[np.ndarray, list[int]]:
+    """The log's A/B name of every event (0 A, 1 B, -1 none) and the segments that were renamed.
+
+    Each segment names its polarities from its own first step, so after a restart the names can
+    swap.  The coil's polarity alternates with every step, so the log's step number (numbered on
+    across segments) names them once for the whole log: the parity of K, as in the first
+    segment.  A segment whose steps could not be numbered on from the one before keeps its own
+    names (the parity across it is unknown).
+    """
+    P = ev["pol"].copy()
+    renamed: list[int] = []
+    numbered = (K >= 0) & (P >= 0)
+    steps = numbered & (ev["kind"] == KIND_STEP)
+    if not steps.any():
+        return P, renamed
+    # the first segment's names define the log's: K parity equals its own labels there
+    first = int(np.flatnonzero(steps)[0])
+    flip0 = int((K[first] % 2) != P[first])
+    for s in segments:
+        sel = steps & (ev["seg"] == s.id)
+        if not sel.any():
+            continue
+        mism = float(np.mean(((K[sel] + flip0) % 2) != P[sel]))
+        if mism > 0.5:
+            renamed.append(s.id)
+    P[numbered] = (K[numbered] + flip0) % 2
+    return P, renamed
+
+
 def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), override_ppm: float | None = None,
                 override_u95: float = 0.0) -> LogFigures:
     """Everything the log report shows (see module docstring)."""
@@ -177,6 +207,10 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     if nominal is None or not len(kinds):
         return _empty(segments, nominal, ev, gaps, minutes)
     T, K, G, notes = number_steps(segments, ev, nominal, override_ppm)
+    P, renamed = polarity_on_log(segments, ev, K)
+    for sid in renamed:
+        notes.append(f"segment {sid} named the two polarities the other way round (each segment names them "
+                     f"from its own first step); its steps are shown under the log's names")
     silent, silences = _silences(ev, T, K, nominal)
     good = (kinds == KIND_STEP) & (ev["match"] >= GOOD_MATCH) & ((ev["flags"] & LOW_MATCH_BIT) == 0) & (K >= 0)
     steps_all = kinds == KIND_STEP
@@ -234,13 +268,13 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
                        "jitter_us": None if r is None else r.jitter_us})
         row = {"hour": h}
         for pol, name in ((0, "A"), (1, "B")):
-            d = ev["decay_ms"][steps_all & in_h & (ev["pol"] == pol)]
+            d = ev["decay_ms"][steps_all & in_h & (P == pol)]
             d = d[np.isfinite(d)]
             row[name] = None if not len(d) else {"median_ms": float(np.median(d)),
                                                  "q1_ms": float(np.percentile(d, 25)),
                                                  "q3_ms": float(np.percentile(d, 75)),
                                                  "abnormal": int(np.count_nonzero(
-                                                     (ev["flags"][steps_all & in_h & (ev["pol"] == pol)] & RINGDOWN_BIT) != 0))}
+                                                     (ev["flags"][steps_all & in_h & (P == pol)] & RINGDOWN_BIT) != 0))}
         ring.append(row)
     # time error and Allan deviation, per group (never across a wall-clock join)
     adev = tie = None
@@ -305,7 +339,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         groups=int(G.max()) + 1 if len(G) else 1, gaps=gap_list, hourly=hourly, minutes=_merge_minutes(minutes),
         adev=adev, tie=tie, worst_hour=worst, best_stretch=best, missed_times_s=missed_t, failed_times_s=failed_t,
         rejected_times_s=rejected_t, notes=notes, step_t=step_t, step_x=step_x, step_k=step_k, ringdown_hourly=ring,
-        event_t=T, event_k=K)
+        event_t=T, event_k=K, event_pol=P)
 
 
 SILENT_RUN = 10  # this many missed steps in a row are a silence (microphone moved, movement stopped)
@@ -464,4 +498,5 @@ def _empty(segments, nominal, ev, gaps, minutes) -> LogFigures:
                       correction_pulses=0, rejected_events=0, rate=None, clock_correction_ppm=None, clock_ppm_u95=0.0,
                       groups=1, gaps=[], hourly=[], minutes=_merge_minutes(minutes), adev=None, tie=None,
                       worst_hour=None, best_stretch=None, missed_times_s=z, failed_times_s=z, rejected_times_s=z,
-                      notes=["no stepping pattern has been logged yet"], event_t=ev["time_s"], event_k=ev["step"])
+                      notes=["no stepping pattern has been logged yet"], event_t=ev["time_s"], event_k=ev["step"],
+                      event_pol=ev["pol"])
