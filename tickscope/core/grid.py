@@ -25,7 +25,7 @@ import numpy as np
 from ..model import Event
 from .detect import Impact
 from .ringdown import measure_ringdown
-from .timing import Template, envelope_lag, learn_template, match, match_many, onset_of
+from .timing import FIRST_IMPACT_PEAK_S, Template, envelope_lag, learn_template, match, match_many, onset_of
 
 #: Step intervals of quartz movements (s): 2^-k fractions of a second for stepping
 #: sweep hands, and the PCA2002 output periods 1, 5, 10, 20, 30 s (NXP PCA2002
@@ -166,7 +166,8 @@ class StepTracker:
             impacts = []
         late: list[_Open] = []  # impacts after the grid was found in this call
         for imp in impacts:
-            t = (imp.snippet_start + onset_of(imp.snippet, self.fs, search_from=max(0, self.pre - int(0.004 * self.fs)))) / self.fs
+            t = (imp.snippet_start + onset_of(imp.snippet, self.fs, search_from=max(0, self.pre - int(0.004 * self.fs)),
+                                              search_to=self.pre + int(FIRST_IMPACT_PEAK_S * self.fs))) / self.fs
             o = _Open(imp, t)
             if self.acquired:
                 late.append(o)

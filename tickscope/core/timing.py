@@ -18,6 +18,11 @@ from ..errors import ParameterError
 from . import dsp
 
 
+#: the first impact's envelope peaks this soon after its coarse onset (an attack of a few ms;
+#: our own choice, wide enough for the simulator's and typical movements' attacks)
+FIRST_IMPACT_PEAK_S = 0.010
+
+
 @dataclass(frozen=True)
 class Template:
     """The average sound of one polarity, aligned, in snippet coordinates."""
@@ -42,14 +47,16 @@ def _envelope(x: np.ndarray, samplerate: float, smooth_s: float = 0.0) -> np.nda
 
 
 def onset_of(wave: np.ndarray, samplerate: float, *, fraction: float = 0.2,
-             search_from: int = 0) -> float:
+             search_from: int = 0, search_to: int | None = None) -> float:
     """Sub-sample index where the envelope of ``wave`` first reaches ``fraction`` of its peak.
 
-    The search walks back from the envelope's maximum, so noise long before the sound
-    cannot trigger it.
+    The search walks back from the envelope's maximum in ``search_from .. search_to``, so
+    noise long before the sound cannot trigger it, and a later, louder impact of the same
+    step (a hand's bounce) cannot pass for its start.
     """
     env = _envelope(wave, samplerate)
-    p = search_from + int(np.argmax(env[search_from:]))
+    stop = len(env) if search_to is None else max(search_from + 1, min(len(env), search_to))
+    p = search_from + int(np.argmax(env[search_from:stop]))
     level = fraction * env[p]
     i = p
     while i > search_from and env[i - 1] >= level:
@@ -254,9 +261,13 @@ def learn_template(snippets: list[np.ndarray], samplerate: float, *, pre: int,
     energies = [float(np.dot(s[pre: pre + int(window_s * samplerate)], s[pre: pre + int(window_s * samplerate)])) for s in S]
     ref = S[int(np.argsort(energies)[len(energies) // 2])].copy()  # a typical one, not the loudest outlier
     max_lag = max(2, int(round(max_lag_s * samplerate)))
+    # the step is timed at its first impact, which starts at the coarse onset: its envelope
+    # peaks within a few ms (a later, louder bounce of the hand is not the start)
+    first_s = int(round(FIRST_IMPACT_PEAK_S * samplerate))
     tmpl = None
     for _ in range(iterations):
-        on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag))
+        on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag),
+                      search_to=pre + first_s)
         win = _window(L, on, samplerate, window_s)
         t = Template(ref, on, win, 1, float(np.sum((ref * win) ** 2)))
         lags, rhos = match_many(np.stack(S), t, max_lag=max_lag)
@@ -268,7 +279,7 @@ def learn_template(snippets: list[np.ndarray], samplerate: float, *, pre: int,
                 acc += row
             ref = acc / n
         tmpl = max(n, 1)
-    on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag))
+    on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag), search_to=pre + first_s)
     win = _window(L, on, samplerate, window_s)
     return Template(ref, on, win, int(tmpl or 1), float(np.sum((ref * win) ** 2)))
 
