@@ -311,7 +311,10 @@ class ImpactDetector:
             # that noise alone seldom starts an impact.
             if q50[j] == q50[j]:  # not nan: the block had 16 frames or more
                 self._spreads.append(float(q90[j] / q50[j]) if q50[j] > 0 else 1.0)
-            spread = _small_median(self._spreads) if self._spreads else 1.0
+            # the lower quartile over the last seconds: a block holding a step's ring-down, a voice or
+            # a phone's gain pumping after a step reads tens of times the background's spread, and
+            # early in a recording such blocks can be half of those seen
+            spread = sorted(self._spreads)[len(self._spreads) // 4] if self._spreads else 1.0
             thr_b[j] = max(floor * max(rel, spread ** 3), min_level)
             fl_b[j] = floor
         lens = np.diff(starts + [nf])

@@ -103,6 +103,51 @@ def find_interval(times_s: np.ndarray, weights: np.ndarray | None = None, *,
     return P, t[0] + phase % P, float(coh[j])
 
 
+def _step_phase(t: np.ndarray, w: np.ndarray, P: float, sound_s: float) -> float:
+    """Time of the steps' phase on a grid of interval P: the earliest strong cluster of impact phases.
+
+    The impacts' phases modulo P are gathered in 1 ms bins (weights ``w``) and smoothed over
+    +-4 ms (a few ms of drift across the window).  The strongest cluster may be a step's later
+    impact (a bounce as loud as the step): the earliest cluster within ``sound_s`` before it
+    that holds at least half its weight is the steps' first impact.
+    """
+    nb = max(16, min(20000, int(round(P / 0.001))))
+    bw = P / nb
+    ph = np.mod(t - t[0], P)
+    hist = np.bincount(np.minimum((ph / bw).astype(np.int64), nb - 1), weights=w, minlength=nb)
+    half = max(1, int(round(0.004 / bw)))
+    ext = np.concatenate([hist[-half:], hist, hist[:half]])
+    cs = np.concatenate([[0.0], np.cumsum(ext)])
+    dens = cs[2 * half + 1:] - cs[: len(cs) - 2 * half - 1]  # circular box sum, one per bin
+    top = int(np.argmax(dens))
+    reach = int(round(min(sound_s, 0.45 * P) / bw))
+    for j in range(reach, 0, -1):  # earliest first
+        c = (top - j) % nb
+        if dens[c] >= 0.5 * dens[top] and dens[c] >= dens[(c - 1) % nb] and dens[c] >= dens[(c + 1) % nb]:
+            return float(t[0] + c * bw)
+    return float(t[0] + top * bw)
+
+
+def _grid_line(chosen: dict) -> tuple[np.ndarray, np.ndarray, float, float, np.ndarray]:
+    """Slot numbers, times, the line t = a + b k through them (outliers left out) and which were kept."""
+    ks = np.array(sorted(chosen))
+    ts = np.array([chosen[k].t_s for k in ks])
+    b, a = np.polyfit(ks, ts, 1)
+    res = ts - (a + b * ks)
+    keep = np.abs(res - np.median(res)) < max(0.005, 4 * np.median(np.abs(res - np.median(res))) + 1e-4)
+    if keep.sum() >= 3:
+        b, a = np.polyfit(ks[keep], ts[keep], 1)
+    return ks, ts, float(a), float(b), keep
+
+
+def _line_spread(chosen: dict) -> float:
+    """Median absolute deviation (s) of the chosen impacts from the line through them."""
+    ks = np.array(sorted(chosen), dtype=np.float64)
+    ts = np.array([chosen[int(k)].t_s for k in ks])
+    b, a = np.polyfit(ks, ts, 1)
+    return float(np.median(np.abs(ts - (a + b * ks))))
+
+
 def nominal_interval(measured_s: float, tolerance: float = 0.005) -> float | None:
     """The quartz step interval within ``tolerance`` (relative) of a measured one, or None."""
     for c in QUARTZ_INTERVALS_S:
@@ -146,6 +191,7 @@ class StepTracker:
         self._gaps: list[tuple[float, float]] = []
         self._next_try_s = -math.inf
         self._peaks: deque = deque(maxlen=64)  # levels of recent steps (what a normal step sounds like)
+        self._offgrid: deque = deque(maxlen=64)  # (time, peak) of recent rejected sounds (the noise's blips)
 
     # -- public -------------------------------------------------------------------------
     def add_gap(self, start_s: float, end_s: float) -> None:
@@ -237,45 +283,56 @@ class StepTracker:
                 self.failed = True
             return []
         P, phase, coh = found
-        # A fraction of the true interval lines up too; if every other slot of the grid is
-        # (nearly) empty, the interval is twice as long.
-        for _ in range(3):
+        # A fraction of the true interval lines up too; if only every m-th slot of the grid holds
+        # sound (m = 2, 3 or 5; the others (nearly) empty), the interval is m times as long.
+        for _ in range(4):
             kk = np.round((t - phase) / P).astype(np.int64)
             near = np.abs(t - (phase + kk * P)) <= 0.3 * P  # wide: the phase may be pulled by a bounce
-            w_even = float(np.sum(w[near & (kk % 2 == 0)]))
-            w_odd = float(np.sum(w[near & (kk % 2 == 1)]))
-            if min(w_even, w_odd) < 0.2 * max(w_even, w_odd) and t[-1] - t[0] >= 4 * P:
-                if w_odd > w_even:
-                    phase += P
-                P *= 2
-            else:
+            grown = False
+            for m in (2, 3, 5):
+                if t[-1] - t[0] < 2 * m * P:
+                    continue
+                cw = np.array([float(np.sum(w[near & (kk % m == c)])) for c in range(m)])
+                c_best = int(np.argmax(cw))
+                if np.all(np.delete(cw, c_best) < 0.2 * cw[c_best]):
+                    phase += c_best * P
+                    P *= m
+                    grown = True
+                    break
+            if not grown:
                 break
-        # one step per slot: the earliest strong impact near each grid point
+        # The coherence peak is broad over a few seconds, and a second clock or a phone's pumping
+        # can skew it by tenths of a percent: tens of ms of drift across the window.  A quartz
+        # movement runs within a few hundred ppm of its nominal interval (and so does the
+        # recording's clock), so the steps are first gathered on the nominal grid.
+        # The coherence phase is a weighted mean over everything that repeats with the step (a
+        # bounce, a burst, a second clock ticking at nearly the same rate), so it can sit tens of
+        # ms off the steps: on the nominal grid the steps' own phase is found instead, as the
+        # earliest strong cluster of impact phases (see _step_phase).
         tol = min(0.2 * P, 0.06)
-        # the coherence phase is a weighted mean over the whole sound of a slot (a bounce, or a
-        # burst of steps), so the slot's first sound may lie well before it
-        back = min(0.25 * P, 0.35) if P >= 1.5 else tol
-        near: dict[int, list[_Open]] = {}
-        for o in buf:
-            k = int(round((o.t_s - phase + 0.5 * (back - tol)) / P))
-            r = o.t_s - (phase + k * P)
-            if -back <= r <= tol:
-                near.setdefault(k, []).append(o)
-        chosen: dict[int, _Open] = {}
-        for k, group in near.items():
-            top = max(o.imp.frame_snr_db for o in group)
-            chosen[k] = min((o for o in group if o.imp.frame_snr_db >= top - 6.0), key=lambda o: o.t_s)
+        # (A looser first guess is allowed here -- a phone's gain pumping before every step has
+        # skewed the coherence peak by 0.7 % -- since the line fitted through the steps must still
+        # land within the nominal tolerance below.)
+        nom = nominal_interval(P, 4 * self.cfg.nominal_tolerance)
+        if nom is not None:
+            P = nom
+            tol = min(0.2 * P, 0.06)
+            phase = _step_phase(t, w, P, self.cfg.cluster_s if P < 1.5 else self.cfg.burst_cluster_s)
+            back = tol
+        else:
+            # the slot's first sound may lie well before the coherence phase (bursts)
+            back = min(0.25 * P, 0.35) if P >= 1.5 else tol
+        # one step per slot (see _pick_steps), then again on the line fitted through those steps
+        chosen = self._pick_steps(buf, phase, P, back, tol)
         if len(chosen) < 3:
             if final:
                 self.failed = True
             return []
-        ks = np.array(sorted(chosen))
-        ts = np.array([chosen[k].t_s for k in ks])
-        b, a = np.polyfit(ks, ts, 1)
-        res = ts - (a + b * ks)
-        keep = np.abs(res - np.median(res)) < max(0.005, 4 * np.median(np.abs(res - np.median(res))) + 1e-4)
-        if keep.sum() >= 3:
-            b, a = np.polyfit(ks[keep], ts[keep], 1)
+        ks, ts, a, b, keep = _grid_line(chosen)
+        refined = self._pick_steps(buf, a, b, tol, tol)
+        if len(refined) >= 3:
+            chosen = refined
+            ks, ts, a, b, keep = _grid_line(chosen)
         self.measured_s = float(b)
         self.nominal_s = nominal_interval(b, self.cfg.nominal_tolerance)
         self.coherence = coh
@@ -323,6 +380,38 @@ class StepTracker:
         self._open += buf
         self._buffer = []
         return out
+
+    def _pick_steps(self, buf: list[_Open], phase: float, P: float, back: float, tol: float) -> dict[int, _Open]:
+        """The step of each slot ``phase + k P`` among the impacts from ``back`` before it to ``tol`` after.
+
+        A step's sound can hold several impacts (a hand's bounce as loud as the step): the step
+        is the earliest impact within 6 dB of the slot's loudest.  But where that earliest one is
+        a different sound -- a quieter second clock ticking just before -- the loudest impacts
+        form the movement's line: when the loudest and the earliest differ by a delay that is not
+        the same from slot to slot (a bounce follows its step at a fixed delay), the chain of
+        impacts that lines up better is taken, the loudest on a tie.
+        """
+        near: dict[int, list[_Open]] = {}
+        for o in buf:
+            k = int(round((o.t_s - phase + 0.5 * (back - tol)) / P))
+            r = o.t_s - (phase + k * P)
+            if -back <= r <= tol:
+                near.setdefault(k, []).append(o)
+        early: dict[int, _Open] = {}
+        loud: dict[int, _Open] = {}
+        for k, group in near.items():
+            top = max(o.imp.frame_snr_db for o in group)
+            early[k] = min((o for o in group if o.imp.frame_snr_db >= top - 6.0), key=lambda o: o.t_s)
+            loud[k] = max(group, key=lambda o: o.imp.frame_snr_db)
+        differ = [k for k in early if early[k] is not loud[k]]
+        if len(differ) < 3 or len(early) < 4:
+            return early
+        delays = np.array([loud[k].t_s - early[k].t_s for k in differ])
+        if float(np.std(delays)) < 0.002:
+            return early  # the same step's later impact, at a fixed delay
+        spread_early = _line_spread(early)
+        spread_loud = _line_spread(loud)
+        return loud if spread_loud <= max(2 * spread_early, spread_early + 0.0005) else early
 
     # -- tracking ------------------------------------------------------------------------
     def _time_many(self, opens: list[_Open]) -> None:
@@ -419,6 +508,8 @@ class StepTracker:
                         and o.match >= cfg.good_match and o.imp.peak_dbfs > failed.imp.peak_dbfs + 3]
                 if cors:
                     correction = min(cors, key=lambda o: o.t_s)
+            if failed is not None and correction is None and not self._stands_out(failed, pred):
+                failed = None  # as loud as the noise's own blips around it: no evidence of a twitch
         after = self._window_after()
         anchor = step or correction or failed
         rest = []
@@ -432,6 +523,7 @@ class StepTracker:
                     out.append(self._event(o, "secondary", k - 1))
                 else:
                     out.append(self._reject(o))
+                    self._offgrid.append((o.t_s, o.imp.peak_dbfs))
             else:
                 rest.append(o)
         self._open = rest
@@ -462,6 +554,23 @@ class StepTracker:
         elif not self._in_gap(pred):
             out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
         return out
+
+    def _stands_out(self, o: _Open, pred: float) -> bool:
+        """Whether a weak sound at a slot stands above the off-grid sounds of the second around it.
+
+        Where a phone's gain control lifts the noise while the movement is silent, the noise
+        itself starts an impact every few tens of ms; a twitch must be clearly louder than
+        those heard in the second before it (6 dB over their median) to count as a failed step.
+        (Not those after it: the silence after a failed step lets the gain rise, whatever the
+        twitch was.)  With fewer than three such sounds before it (a quiet room, or a gain that
+        had not yet risen) any weak sound on the slot counts.
+        """
+        lo, hi = pred - 1.0, pred - self.cfg.slot_tolerance_s
+        levels = [p for t, p in self._offgrid if lo <= t < hi]  # rejected already
+        levels += [q.imp.peak_dbfs for q in self._open if lo <= q.t_s < hi]  # to be rejected with this slot
+        if len(levels) < 3:
+            return True
+        return o.imp.peak_dbfs >= statistics.median(levels) + 6.0
 
     def _in_gap(self, t: float) -> bool:
         return any(a - 0.03 <= t <= b + 0.03 for a, b in self._gaps)
