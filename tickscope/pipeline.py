@@ -291,10 +291,14 @@ class Analyzer:
             pattern = "not-stepping"
         else:
             pattern = "stepping"
-        # an escapement's tick-tock: unequal alternate intervals, or large scatter
+        # An escapement's tick-tock: unequal alternate intervals, or large scatter.  The A/B offset
+        # measured on a stepper carries the two templates' onset difference, which for ringing,
+        # varying sounds has reached 1.5 ms (a sweep of simulated phones and rooms), so at long
+        # intervals the tick-tock must exceed 0.5 % of the interval (5 ms at 1 s; our own margin)
         asym_us = self._alternation_us()
+        tick_tock_us = max(1000.0, 0.005 * (tr.nominal_s or 0.0) * 1e6)
         if pattern == "stepping" and rate is not None and (
-                (asym_us is not None and abs(asym_us) > 1000.0) or rate.jitter_us > 2000.0):
+                (asym_us is not None and abs(asym_us) > tick_tock_us) or rate.jitter_us > 2000.0):
             pattern = "not-stepping"
         if pattern != "stepping":
             rate_out = None
