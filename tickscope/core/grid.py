@@ -192,6 +192,7 @@ class StepTracker:
         self._next_try_s = -math.inf
         self._peaks: deque = deque(maxlen=64)  # levels of recent steps (what a normal step sounds like)
         self._offgrid: deque = deque(maxlen=64)  # (time, peak) of recent rejected sounds (the noise's blips)
+        self._pol_res = {0: deque(maxlen=32), 1: deque(maxlen=32)}  # each polarity's offset from the line
 
     # -- public -------------------------------------------------------------------------
     def add_gap(self, start_s: float, end_s: float) -> None:
@@ -422,10 +423,17 @@ class StepTracker:
         pols = [k % 2 if k >= 0 else 0 for k in slots]
         lag = np.zeros(len(opens))
         rho = np.zeros(len(opens))
+        # where the grid is well known, near-tied correlation lobes are settled by the predicted
+        # time of the slot (with this polarity's offset): a ring cycle must not slip
+        prefer = np.full(len(opens), np.nan)
+        if len(self._fit) >= 8:
+            for i, (o, k) in enumerate(zip(opens, slots)):
+                pr = self.predict(k) + self._pol_offset(k)
+                prefer[i] = pr * self.fs - o.imp.snippet_start - self.templates[pols[i]].onset_index
         for pol in set(pols):
             idx = [i for i, q in enumerate(pols) if q == pol]
             lag[idx], rho[idx] = match_many(np.stack([opens[i].imp.wsnippet for i in idx]), self.templates[pol],
-                                            max_lag=int(0.003 * self.fs))
+                                            max_lag=int(0.003 * self.fs), prefer=prefer[idx])
         for i, o in enumerate(opens):
             k = slots[i]
             tmpl = self.templates[pols[i]]
@@ -540,6 +548,8 @@ class StepTracker:
             self._last_step_t = step.t_s
             self._peaks.append(step.imp.peak_dbfs)
             if step.match >= cfg.good_match:
+                if len(self._fit) >= 3:
+                    self._pol_res[k % 2].append(step.t_s - self.predict(k))
                 self._fit.append((k, step.t_s))
                 if len(self._fit) >= 3:
                     # least-squares line through the last steps (plain floats: 32 points)
@@ -554,6 +564,11 @@ class StepTracker:
         elif not self._in_gap(pred):
             out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
         return out
+
+    def _pol_offset(self, k: int) -> float:
+        """How far the steps of slot k's polarity have sounded from the tracking line lately (s)."""
+        res = self._pol_res[k % 2]
+        return statistics.median(res) if len(res) >= 4 else 0.0
 
     def _stands_out(self, o: _Open, pred: float) -> bool:
         """Whether a weak sound at a slot stands above the off-grid sounds of the second around it.

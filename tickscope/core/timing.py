@@ -150,10 +150,16 @@ def match(snippet: np.ndarray, template: Template, *, max_lag: int, center: int 
     return float(lags[0]), float(rhos[0])
 
 
-def match_many(snippets: np.ndarray, template: Template, *, max_lag: int,
-               center: int = 0) -> tuple[np.ndarray, np.ndarray]:
+def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center: int = 0,
+               prefer: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """:func:`match` for the rows of ``snippets`` (2-D, equal lengths) at once: the same numbers,
-    with the FFTs, the lobe search and Newton's method run over all rows together."""
+    with the FFTs, the lobe search and Newton's method run over all rows together.
+
+    ``prefer`` (a lag per row, nan for none): among lobes within 3 % of the best, take the one
+    nearest this lag rather than the highest.  A ringing sound whose pitch varies a little from
+    tick to tick can make the next ring cycle's lobe read a hair higher; the step grid knows
+    where the step is to far better than a cycle, so it settles such near-ties.
+    """
     S = np.asarray(snippets, dtype=np.float64)
     nrow = S.shape[0]
     s0, s1 = _window_span(template)
@@ -204,7 +210,15 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int,
     tau = np.where(wander, j.astype(np.float64), tau)
     val = np.where(wander, c[rows, j], val)
     # the best refined lobe of each row (the first in candidate order among equals)
-    pick = np.lexsort((order, -val, rows))
+    score = -val
+    if prefer is not None:
+        pref = np.asarray(prefer, dtype=np.float64)[rows] - a + s0  # in correlation-index units
+        row_best = np.full(nrow, -np.inf)
+        np.maximum.at(row_best, rows, val)
+        near_tie = (val >= row_best[rows] - 0.03 * np.abs(row_best[rows])) & np.isfinite(pref)
+        # near-ties rank by distance to the preferred lag, ahead of every other lobe of the row
+        score = np.where(near_tie, -1e300 + np.abs(tau - np.where(np.isfinite(pref), pref, 0.0)), -val)
+    pick = np.lexsort((order, score, rows))
     first = np.ones(len(pick), dtype=bool)
     first[1:] = rows[pick][1:] != rows[pick][:-1]
     best = pick[first]
