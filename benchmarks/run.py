@@ -363,6 +363,79 @@ def bench_log(tmp, audio_hours: float, event_hours: float):
     st.db.close()
 
 
+def realistic_scenario(i: int) -> dict:
+    """Random phone-and-room conditions for sweep case i (reproducible: seeded by i)."""
+    import random
+
+    r = random.Random(i)
+    kw = dict(duration_s=120, seed=1000 + i, rate_s_per_day=r.uniform(-20, 20),
+              samplerate_hz=r.choice([8000, 16000, 22050, 44100, 48000]),
+              movement=r.choice(["wallclock", "wristwatch", "alarmclock"]),
+              snr_db=r.uniform(12, 30), noise=r.choice(["white", "pink"]))
+    if r.random() < 0.5:
+        kw["reverb_rt60_ms"] = r.uniform(150, 600)
+    if r.random() < 0.4:
+        kw["agc"] = True
+    if r.random() < 0.3:
+        kw["gate_dbfs"] = r.uniform(-45, -30)
+    if r.random() < 0.4:
+        kw["second_impact_ms"] = r.uniform(30, 90)
+        kw["second_impact_db"] = r.uniform(-8, 0)
+    if r.random() < 0.3:  # a quieter second clock somewhere in the room
+        kw["second_clock_rate_s_per_day"] = r.uniform(-300, 300)
+        kw["second_clock_db"] = r.uniform(-16, -8)
+    if r.random() < 0.3:
+        kw["transients_per_min"] = r.uniform(1, 6)
+    if r.random() < 0.3:
+        kw["hum_hz"] = r.choice([50, 60])
+    if r.random() < 0.3:
+        kw["variation_db"] = r.uniform(0.5, 2.5)
+        kw["variation_freq_pct"] = r.uniform(0.5, 2)
+    if r.random() < 0.3:
+        kw["jitter_us"] = r.uniform(2, 30)
+    if r.random() < 0.3:
+        kw["missed_steps"] = tuple(sorted(r.sample(range(15, 110), r.randint(1, 3))))
+    return kw
+
+
+def realistic_case(i: int) -> dict:
+    kw = realistic_scenario(i)
+    sc = Scenario(**kw)
+    x, truth = render_all(sc)
+    x = x[:, sc.step_channel].astype(np.float32)
+    an = Analyzer(sc.samplerate_hz)
+    for j in range(0, len(x), 8192):
+        an.feed(Block(x[j:j + 8192], j))
+    s = an.finish()
+    n_true = sum(1 for st in truth["steps"] if st["kind"] == "step")
+    exp = truth["expected"]["rate_device_time_s_per_day"]
+    stat = s.extras.get("rate_ci95_statistical_s_per_day")
+    return dict(i=i, kw=kw, sound=s.sound, steps=s.steps_detected, true=n_true, missed=s.missed_steps,
+                true_missed=len(kw.get("missed_steps", ())), rate=None if s.rate is None else s.rate.rate_s_per_day,
+                exp=exp, stat=stat, reported=None if s.rate is None else s.rate.ci95_s_per_day)
+
+
+def bench_realistic(n: int):
+    hdr(f"random phone-and-room recordings ({n} x 120 s: AGC, gates, reverb, bounces, second clocks, knocks, "
+        "varying ticks, 8-48 kHz, SNR 12-30 dB)")
+    print("  targets: exact step and missed-step counts; the rate within its interval")
+    from multiprocessing import Pool
+
+    t0 = time.perf_counter()
+    with Pool(min(2, os.cpu_count() or 1)) as pool:
+        res = pool.map(realistic_case, range(n))
+    counts = [r for r in res if r["steps"] != r["true"] or r["missed"] != r["true_missed"] or r["sound"] != "stepping"]
+    stat_miss = [r for r in res if r["rate"] is not None and r["stat"] is not None and abs(r["rate"] - r["exp"]) > r["stat"]]
+    rep_miss = [r for r in res if r["rate"] is not None and abs(r["rate"] - r["exp"]) > r["reported"]]
+    print(f"  counts exact in {n - len(counts)}/{n}; rate within the fit's interval in {n - len(stat_miss)}/{n}, "
+          f"within the reported interval in {n - len(rep_miss)}/{n} ({time.perf_counter() - t0:.0f} s)")
+    for r in counts + [r for r in stat_miss if r not in counts]:
+        kw = {k: (round(v, 2) if isinstance(v, float) else v) for k, v in r["kw"].items() if k != "duration_s"}
+        rate = "none" if r["rate"] is None else f"{r['rate']:+.3f} (truth {r['exp']:+.3f}, fit +-{r['stat']:.3f})"
+        print(f"    case {r['i']}: {r['sound']}, steps {r['steps']}/{r['true']}, missed {r['missed']}/"
+              f"{r['true_missed']}, rate {rate}; {kw}")
+
+
 def main():
     if len(sys.argv) == 4 and sys.argv[1] == "--log-worker":
         log_worker(sys.argv[2], float(sys.argv[3]))
@@ -371,7 +444,7 @@ def main():
     ap.add_argument("--quick", action="store_true", help="short files, few trials (a smoke run)")
     ap.add_argument("--log-hours", type=float, default=None,
                     help="hours of audio for the log benchmark (default 6; 60 for a full weekend: about 15 minutes)")
-    ap.add_argument("--only", choices=("throughput", "timing", "coverage", "librosa", "live", "log"),
+    ap.add_argument("--only", choices=("throughput", "timing", "coverage", "librosa", "live", "log", "realistic"),
                     help="run one benchmark")
     a = ap.parse_args()
     if a.only:
@@ -381,7 +454,8 @@ def main():
              "coverage": lambda: bench_coverage(200, 60),
              "librosa": lambda: bench_librosa(tmp, 600),
              "live": lambda: bench_live(tmp, 60),
-             "log": lambda: bench_log(tmp, a.log_hours or (1.0 if a.quick else 6.0), 60.0)}[a.only]()
+             "log": lambda: bench_log(tmp, a.log_hours or (1.0 if a.quick else 6.0), 60.0),
+             "realistic": lambda: bench_realistic(20 if a.quick else 140)}[a.only]()
         return
     with tempfile.TemporaryDirectory() as tmp:
         if a.quick:
@@ -391,6 +465,7 @@ def main():
             bench_librosa(tmp, 60)
             bench_live(tmp, 15)
             bench_log(tmp, a.log_hours or 1.0, 60.0)
+            bench_realistic(20)
         else:
             bench_throughput(tmp, [1.0, 4.0])
             bench_timing([40, 30, 20, 10], 120)
@@ -398,6 +473,7 @@ def main():
             bench_librosa(tmp, 600)
             bench_live(tmp, 60)
             bench_log(tmp, a.log_hours or 6.0, 60.0)
+            bench_realistic(140)
 
 
 if __name__ == "__main__":
