@@ -1,6 +1,6 @@
 """tickscope benchmarks: speed, memory, timing accuracy, interval coverage, and a baseline.
 
-    python benchmarks/run.py            # everything (about 15 minutes on 2 cores)
+    python benchmarks/run.py            # everything (about 20 minutes on 2 cores)
     python benchmarks/run.py --quick    # shorter files and fewer trials
 
 Figures are printed with their targets.  Ratios are measured within one run, so a busy
