@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import statistics
 from collections import deque
 
 import numpy as np
@@ -28,12 +29,6 @@ TYPICAL_DEVICE_PPM = 50.0
 HUM_ANALYSIS_S = 8.0
 ASYMMETRY_FLOOR_US = 300.0
 LOUD_REJECT_DB = 10.0  # off-grid sounds this far above the floor are counted as rejected events
-
-
-def _median(v: list[float]) -> float:
-    """Median of an already sorted list."""
-    n = len(v)
-    return v[n // 2] if n % 2 else 0.5 * (v[n // 2 - 1] + v[n // 2])
 
 
 class _Column:
@@ -184,8 +179,8 @@ class Analyzer:
                     if len(dq) >= 20:
                         # median and MAD on plain floats: for 200 values sorting in Python is
                         # several times cheaper than the numpy calls
-                        med = _median(sorted(dq))
-                        mad = 1.4826 * _median(sorted([abs(v - med) for v in dq]))
+                        med = statistics.median(dq)
+                        mad = 1.4826 * statistics.median([abs(v - med) for v in dq])
                         if abs(ld - med) > max(5 * mad, math.log(1.5)):
                             flags = flags + ("ringdown",)
                     dq.append(ld)

@@ -448,7 +448,6 @@ def _noise_whitener(x: np.ndarray, frame_e: np.ndarray, hop: int, samplerate: fl
     r = np.array([float(np.dot(seg[: len(seg) - j], seg[j:])) for j in range(order + 1)])
     if r[0] <= 0:
         return np.ones(1)
-    r = r.copy()
     r[0] *= 1.0 + 1e-3  # a little white floor keeps the filter tame
     try:
         a = dsp.levinson(r, order)

@@ -24,6 +24,7 @@ import numpy as np
 
 from ..model import Event
 from .detect import Impact
+from .dsp import line_fit
 from .ringdown import measure_ringdown
 from .timing import FIRST_IMPACT_PEAK_S, Template, envelope_lag, learn_template, match, match_many, onset_of
 
@@ -302,22 +303,18 @@ class StepTracker:
                     break
             if not grown:
                 break
-        # The coherence peak is broad over a few seconds, and a second clock or a phone's pumping
-        # can skew it by tenths of a percent: tens of ms of drift across the window.  A quartz
-        # movement runs within a few hundred ppm of its nominal interval (and so does the
-        # recording's clock), so the steps are first gathered on the nominal grid.
-        # The coherence phase is a weighted mean over everything that repeats with the step (a
-        # bounce, a burst, a second clock ticking at nearly the same rate), so it can sit tens of
-        # ms off the steps: on the nominal grid the steps' own phase is found instead, as the
-        # earliest strong cluster of impact phases (see _step_phase).
-        tol = min(0.2 * P, 0.06)
-        # (A looser first guess is allowed here -- a phone's gain pumping before every step has
-        # skewed the coherence peak by 0.7 % -- since the line fitted through the steps must still
-        # land within the nominal tolerance below.)
+        # The coherence peak is broad over a few seconds, and its phase is a weighted mean over
+        # everything that repeats with the step (a bounce, a burst, a phone's gain pumping, a second
+        # clock at nearly the same rate): the interval can be skewed by tenths of a percent and the
+        # phase by tens of ms.  A quartz movement (and the recording's clock) runs within a few
+        # hundred ppm of its nominal interval, so near one (2 %: gain pumping has skewed the peak
+        # by 0.7 %; the line fitted through the steps must still land within the nominal tolerance
+        # below) the steps are gathered on the nominal grid at their own phase (see _step_phase).
         nom = nominal_interval(P, 4 * self.cfg.nominal_tolerance)
         if nom is not None:
             P = nom
-            tol = min(0.2 * P, 0.06)
+        tol = min(0.2 * P, 0.06)
+        if nom is not None:
             phase = _step_phase(t, w, P, self.cfg.cluster_s if P < 1.5 else self.cfg.burst_cluster_s)
             back = tol
         else:
@@ -552,15 +549,11 @@ class StepTracker:
                     self._pol_res[k % 2].append(step.t_s - self.predict(k))
                 self._fit.append((k, step.t_s))
                 if len(self._fit) >= 3:
-                    # least-squares line through the last steps (plain floats: 32 points)
-                    k_last = self._fit[-1][0]
-                    n_fit = len(self._fit)
-                    km = sum(p[0] - k_last for p in self._fit) / n_fit
-                    tm = sum(p[1] for p in self._fit) / n_fit
-                    sxx = sum((p[0] - k_last - km) ** 2 for p in self._fit)
-                    b = sum((p[0] - k_last - km) * (p[1] - tm) for p in self._fit) / sxx
+                    kk = np.array([p[0] for p in self._fit], dtype=np.float64)
+                    tt = np.array([p[1] for p in self._fit])
+                    b, a = line_fit(kk - kk[-1], tt)
                     self._b = b
-                    self._a = (tm - b * km) - b * k_last
+                    self._a = a - b * kk[-1]
         elif not self._in_gap(pred):
             out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
         return out

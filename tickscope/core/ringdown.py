@@ -104,11 +104,11 @@ def measure_ringdown(x: np.ndarray, samplerate: float, *, noise_power: float = 0
     ratio = rev[m - i1: m - i0][::-1]  # the curve over [i0, i1)
     # least-squares line through the curve in dB at evenly spaced points (closed form)
     y = np.log(np.maximum(ratio, 1e-30)) * (10.0 / math.log(10.0))  # dB (np.log is 2x faster than log10)
-    m = i1 - i0
-    c = np.arange(m) - 0.5 * (m - 1)
-    slope = float(np.dot(c, y)) * 12.0 / (m * (m * m - 1.0)) * samplerate
+    nfit = i1 - i0
+    c = np.arange(nfit) - 0.5 * (nfit - 1)
+    slope = float(np.dot(c, y)) * 12.0 / (nfit * (nfit * nfit - 1.0)) * samplerate
     if slope >= 0:
         return nan
     resid = y - float(np.mean(y)) - (slope / samplerate) * c
-    rms = float(np.sqrt(np.dot(resid, resid) / m))
+    rms = float(np.sqrt(np.dot(resid, resid) / nfit))
     return RingDown(float(-DB_PER_NEPER / slope * 1e3), float(y[0] - y[-1]), rms)

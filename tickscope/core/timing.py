@@ -113,12 +113,6 @@ def _newton_peaks(C: np.ndarray, nfft: int, tau0: np.ndarray, iters: int = 6) ->
     return tau, val
 
 
-def _newton_peak(C: np.ndarray, nfft: int, tau0: float, iters: int = 6) -> tuple[float, float]:
-    """Refine the maximum of the correlation whose spectrum is C (rfft bins) near lag tau0."""
-    tau, val = _newton_peaks(C[None, :], nfft, np.array([tau0]), iters)
-    return float(tau[0]), float(val[0])
-
-
 def _window_span(template: Template) -> tuple[int, int]:
     """First and one-past-last index of the template's matching window (cached on the template)."""
     span = template.__dict__.get("_span")
@@ -271,31 +265,31 @@ def learn_template(snippets: list[np.ndarray], samplerate: float, *, pre: int,
     if not snippets:
         raise ParameterError("learn_template needs at least one snippet")
     L = min(len(s) for s in snippets)
-    S = [np.asarray(s[:L], dtype=np.float64) for s in snippets]
+    S = np.stack([np.asarray(s[:L], dtype=np.float64) for s in snippets])
     energies = [float(np.dot(s[pre: pre + int(window_s * samplerate)], s[pre: pre + int(window_s * samplerate)])) for s in S]
     ref = S[int(np.argsort(energies)[len(energies) // 2])].copy()  # a typical one, not the loudest outlier
     max_lag = max(2, int(round(max_lag_s * samplerate)))
     # the step is timed at its first impact, which starts at the coarse onset: its envelope
     # peaks within a few ms (a later, louder bounce of the hand is not the start)
     first_s = int(round(FIRST_IMPACT_PEAK_S * samplerate))
-    tmpl = None
+    tmpl = 1
     for _ in range(iterations):
         on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag),
                       search_to=pre + first_s)
         win = _window(L, on, samplerate, window_s)
         t = Template(ref, on, win, 1, float(np.sum((ref * win) ** 2)))
-        lags, rhos = match_many(np.stack(S), t, max_lag=max_lag)
+        lags, rhos = match_many(S, t, max_lag=max_lag)
         use = np.flatnonzero(rhos >= 0.3)  # the others are not this polarity's sound
         n = len(use)
         if n:
             acc = np.zeros(L)
-            for row in _shift(np.stack([S[i] for i in use]), -lags[use]):
+            for row in _shift(S[use], -lags[use]):
                 acc += row
             ref = acc / n
         tmpl = max(n, 1)
     on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag), search_to=pre + first_s)
     win = _window(L, on, samplerate, window_s)
-    return Template(ref, on, win, int(tmpl or 1), float(np.sum((ref * win) ** 2)))
+    return Template(ref, on, win, int(tmpl), float(np.sum((ref * win) ** 2)))
 
 
 def _window(L: int, onset: float, samplerate: float, window_s: float) -> np.ndarray:

@@ -106,27 +106,24 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
     # Integer PCM is read as integers and scaled here: libsndfile's own float conversion costs
     # ~5x the rest of reading.  The result is the same float32 (1/2^15 and 1/2^31 are powers of
     # two; 24-bit samples are exact in float32), as tests/test_audiofile.py checks.
-    native = _NATIVE_READ.get(info.subtype)
+    dtype, scale = _NATIVE_READ.get(info.subtype, ("float32", None))
     try:
         with sf.SoundFile(path) as f:
             if start_frame:
                 f.seek(int(start_frame))
             while True:
                 try:
-                    if native is None:
-                        x = f.read(block_frames, dtype="float32", always_2d=True)
-                    else:
-                        x = f.read(block_frames, dtype=native[0], always_2d=True)
+                    x = f.read(block_frames, dtype=dtype, always_2d=True)
                 except (sf.LibsndfileError, RuntimeError) as e:
                     if pos == 0:
                         raise InputError(f"{path}: cannot read audio ({_short(e)})") from e
                     break  # a truncated or damaged tail: keep what was read
                 if not len(x):
                     break
-                if native is None:
+                if scale is None:
                     y = np.ascontiguousarray(x[:, channel])
                 else:
-                    y = np.multiply(x[:, channel], native[1], dtype=np.float32)
+                    y = np.multiply(x[:, channel], scale, dtype=np.float32)
                 yield Block(y, pos)
                 pos += len(y)
     except (sf.LibsndfileError, OSError) as e:
