@@ -307,7 +307,7 @@ class StepTracker:
         # everything that repeats with the step (a bounce, a burst, a phone's gain pumping, a second
         # clock at nearly the same rate): the interval can be skewed by tenths of a percent and the
         # phase by tens of ms.  A quartz movement (and the recording's clock) runs within a few
-        # hundred ppm of its nominal interval, so near one (2 %: gain pumping has skewed the peak
+        # hundred ppm of its nominal interval, so near one (2 %, our own margin: gain pumping has skewed the peak
         # by 0.7 %; the line fitted through the steps must still land within the nominal tolerance
         # below) the steps are gathered on the nominal grid at their own phase (see _step_phase).
         nom = nominal_interval(P, 4 * self.cfg.nominal_tolerance)
@@ -406,7 +406,7 @@ class StepTracker:
             return early
         delays = np.array([loud[k].t_s - early[k].t_s for k in differ])
         if float(np.std(delays)) < 0.002:
-            return early  # the same step's later impact, at a fixed delay
+            return early  # the same step's later impact, at a fixed delay (2 ms: our own margin)
         spread_early = _line_spread(early)
         spread_loud = _line_spread(loud)
         return loud if spread_loud <= max(2 * spread_early, spread_early + 0.0005) else early
@@ -568,7 +568,8 @@ class StepTracker:
 
         Where a phone's gain control lifts the noise while the movement is silent, the noise
         itself starts an impact every few tens of ms; a twitch must be clearly louder than
-        those heard in the second before it (6 dB over their median) to count as a failed step.
+        those heard in the second before it (6 dB over their median: our own margin, set from the
+        sweep of simulated phone recordings) to count as a failed step.
         (Not those after it: the silence after a failed step lets the gain rise, whatever the
         twitch was.)  With fewer than three such sounds before it (a quiet room, or a gain that
         had not yet risen) any weak sound on the slot counts.
