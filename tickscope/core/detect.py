@@ -281,23 +281,24 @@ class ImpactDetector:
         nb_full = nf // sub
         starts = list(range(0, nf, sub))
         q_floor = np.empty(len(starts))
+        q20 = np.full(len(starts), np.nan)
         q50 = np.full(len(starts), np.nan)
         q90 = np.full(len(starts), np.nan)
         kq = int(self.cfg.floor_quantile * (sub - 1))
         if nb_full:
             q_floor[:nb_full] = np.partition(e[: nb_full * sub].reshape(nb_full, sub), kq, axis=1)[:, kq]
             if sub >= 16:
-                i50, i90 = sub // 2, int(0.9 * (sub - 1))
-                part = np.partition(now[: nb_full * sub].reshape(nb_full, sub), [i50, i90], axis=1)
-                q50[:nb_full], q90[:nb_full] = part[:, i50], part[:, i90]
+                i20, i50, i90 = int(0.2 * (sub - 1)), sub // 2, int(0.9 * (sub - 1))
+                part = np.partition(now[: nb_full * sub].reshape(nb_full, sub), [i20, i50, i90], axis=1)
+                q20[:nb_full], q50[:nb_full], q90[:nb_full] = part[:, i20], part[:, i50], part[:, i90]
         if nb_full < len(starts):  # a partial block at the end of the stream
             s0 = nb_full * sub
             q_floor[nb_full] = _quick_quantile(e[s0:], self.cfg.floor_quantile)
             seg = now[s0:]
             if len(seg) >= 16:
-                i50, i90 = len(seg) // 2, int(0.9 * (len(seg) - 1))
-                part = np.partition(seg, [i50, i90])
-                q50[nb_full], q90[nb_full] = part[i50], part[i90]
+                i20, i50, i90 = int(0.2 * (len(seg) - 1)), len(seg) // 2, int(0.9 * (len(seg) - 1))
+                part = np.partition(seg, [i20, i50, i90])
+                q20[nb_full], q50[nb_full], q90[nb_full] = part[i20], part[i50], part[i90]
         thr_b = np.empty(len(starts))
         fl_b = np.empty(len(starts))
         min_level = 10 ** (self.cfg.min_level_dbfs / 10)
@@ -310,7 +311,7 @@ class ImpactDetector:
             # degrees of freedom), low-frequency noise a lot.  The threshold rises with it so
             # that noise alone seldom starts an impact.
             if q50[j] == q50[j]:  # not nan: the block had 16 frames or more
-                self._spreads.append(float(q90[j] / q50[j]) if q50[j] > 0 else 1.0)
+                self._spreads.append(_block_spread(float(q20[j]), float(q50[j]), float(q90[j])))
             # the lower quartile over the last seconds: a block holding a step's ring-down, a voice or
             # a phone's gain pumping after a step reads tens of times the background's spread, and
             # early in a recording such blocks can be half of those seen
@@ -400,6 +401,26 @@ class ImpactDetector:
                        frame_snr_db=float(snr[i]), snippet_start=onset - self.pre, snippet=hp[i], wsnippet=wh[i],
                        clipped=bool(clipped[i]), truncated=trunc[i])
                 for i, (onset, _) in enumerate(ready)]
+
+
+def _block_spread(q20: float, q50: float, q90: float) -> float:
+    """How much a block's 2 ms energies fluctuate: the ratio of their 90th to 50th percentile,
+    held to what the quieter half of the block implies.
+
+    For background noise alone q90/q50 is close to (q50/q20)**1.4 (white, pink and brown noise
+    at 8 and 48 kHz agree within 6 %: measured with this detector's energies).  Where sound
+    fills more than a tenth of every block (a mechanical timer beating 4.4 times a second,
+    each beat ringing ~50 ms: a real recording) q90 lies inside the beats and the ratio
+    reads ~100, which would lift the threshold 60 dB over the floor and hide every beat;
+    the quieter half still reads the background, so the ratio is capped at 1.5 times what
+    it implies (our own margin: it never binds on noise alone).
+    """
+    if not q50 > 0:
+        return 1.0
+    r = q90 / q50
+    if q20 > 0:
+        r = min(r, 1.5 * (q50 / q20) ** 1.4)
+    return r
 
 
 def _quick_quantile(e: np.ndarray, q: float) -> float:
