@@ -113,6 +113,46 @@ def test_escapement_is_not_claimed_as_quartz():
     assert s.measured_interval_s == pytest.approx(0.2, rel=0.01)
 
 
+def test_busy_fast_steps_with_a_bounce_are_all_found():
+    # 8 steps a second, each with a bounce 30 ms later as loud as the step: sound fills more than a
+    # tenth of every 0.25 s block, which once lifted the detector's threshold 60 dB over the floor
+    # (its noise spread read from inside the steps) and only 10 of the 60 steps were found
+    _check(Scenario(duration_s=8, step_interval_s=0.125, second_impact_ms=30, second_impact_db=-3,
+                    snr_db=35, seed=1))
+
+
+def test_dense_tick_tock_is_heard_and_its_beat_reported():
+    # a kitchen timer's escapement beating 4.5 times a second, tick and tock 20 ms apart in length,
+    # each beat ringing: the same detector limit heard only 6 of its 34 beats
+    sc = Scenario(duration_s=8, step_interval_s=0.22, polarity_asymmetry_us=10000, snr_db=35, seed=1)
+    s, _, _, _ = analyze_scenario(sc)
+    assert s.sound == "not-stepping" and s.rate is None
+    assert s.extras["beats"]["heard"] >= 33
+    assert s.measured_interval_s == pytest.approx(0.22, rel=0.002)
+    # A->B minus B->A: (0.22 + 0.01) - (0.22 - 0.01) = +20 ms
+    assert s.extras["beats"]["alternation_ms"] == pytest.approx(20.0, abs=0.5)
+
+
+def test_beats_that_do_not_repeat_are_not_claimed_as_quartz():
+    # Every beat a different cluster of impacts (a real recording of a wall clock sounded like this):
+    # loud, on a 1 s grid, but most beats unlike those the templates were learned from.  Once
+    # reported as a stepping movement with failed steps, correction pulses and a rate.
+    sc = Scenario(duration_s=30, snr_db=35, seed=1, jitter_us=1000, rattle_impacts=6,
+                  variation_freq_pct=15, variation_db=4)
+    s, _, _, _ = analyze_scenario(sc)
+    assert s.sound == "not-stepping" and s.rate is None
+    b = s.extras["beats"]
+    assert b["heard"] >= 28 and b["like_first"] < 0.5 * b["heard"]
+    assert "failed_steps" not in s.extras
+    assert s.measured_interval_s == pytest.approx(1.0, rel=0.01)
+    assert any("sound like the first ones" in w for w in s.warnings)
+
+
+def test_a_quartz_step_followed_by_a_rattle_is_still_timed():
+    # the same rattle after a step that itself repeats (the rotor's impact comes first): a quartz movement
+    _check(Scenario(duration_s=30, snr_db=35, seed=1, rattle_impacts=5, rate_s_per_day=2.5))
+
+
 def test_recording_that_starts_in_digital_silence():
     # seen on the loopback: capture starts before playback, so the sound begins abruptly out of
     # exact zeros; that first "impact" stands 200 dB over its floor and once pulled the grid to 0.5 s

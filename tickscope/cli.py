@@ -750,6 +750,9 @@ _SIM_HELP = {
     "variation_freq_pct": "tick-to-tick resonance frequency variation (RMS), percent",
     "second_impact_ms": "delay of a second impact on every step (hand bounce), ms; 0 = none",
     "second_impact_db": "level of the second impact relative to the step, dB",
+    "rattle_impacts": "further impacts at random delays on every beat, each with its own resonances "
+                      "(a sound that does not repeat: a cheap escapement, a rattling case); 0 = none",
+    "rattle_spread_ms": "the rattle's impacts fall within this many ms after the beat",
     "transients_per_min": "knocks and speech-like bursts per minute, off the step grid",
     "transient_db": "knock peak relative to the step peak, dB",
     "reverb_rt60_ms": "room reverberation time RT60, ms; 0 = dry",

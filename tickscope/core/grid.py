@@ -194,6 +194,12 @@ class StepTracker:
         self._peaks: deque = deque(maxlen=64)  # levels of recent steps (what a normal step sounds like)
         self._offgrid: deque = deque(maxlen=64)  # (time, peak) of recent rejected sounds (the noise's blips)
         self._pol_res = {0: deque(maxlen=32), 1: deque(maxlen=32)}  # each polarity's offset from the line
+        # how well the sounds on the grid repeat: slots that held any sound, those whose sound
+        # matched the step templates well, and the first sound's offset from the prediction
+        # per polarity (count, sum, sum of squares; s)
+        self.slots_heard = 0
+        self.slots_matched = 0
+        self._first_offset = {0: [0, 0.0, 0.0], 1: [0, 0.0, 0.0]}
 
     # -- public -------------------------------------------------------------------------
     def add_gap(self, start_s: float, end_s: float) -> None:
@@ -515,6 +521,15 @@ class StepTracker:
                     correction = min(cors, key=lambda o: o.t_s)
             if failed is not None and correction is None and not self._stands_out(failed, pred):
                 failed = None  # as loud as the noise's own blips around it: no evidence of a twitch
+        if in_slot:
+            self.slots_heard += 1
+            if any(o is not None and o.match >= cfg.good_match for o in (step, correction)):
+                self.slots_matched += 1
+            d = min(o.t_s for o in in_slot) - pred
+            fo = self._first_offset[k % 2]
+            fo[0] += 1
+            fo[1] += d
+            fo[2] += d * d
         after = self._window_after()
         anchor = step or correction or failed
         rest = []
@@ -557,6 +572,18 @@ class StepTracker:
         elif not self._in_gap(pred):
             out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
         return out
+
+    def onset_scatter_s(self) -> float | None:
+        """The spread (standard deviation, s) of the first sound in each slot about the grid,
+        each polarity's mean offset removed (a tick-tock is not scatter)."""
+        n = ss = 0.0
+        for cnt, s1, s2 in self._first_offset.values():
+            if cnt:
+                n += cnt
+                ss += max(s2 - s1 * s1 / cnt, 0.0)
+        if n < 4:
+            return None
+        return math.sqrt(ss / (n - 2))
 
     def _pol_offset(self, k: int) -> float:
         """How far the steps of slot k's polarity have sounded from the tracking line lately (s)."""

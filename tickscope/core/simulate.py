@@ -5,7 +5,7 @@ case).  Every onset is placed at an exact, fractional-sample time: the waveform 
 evaluated analytically at each sample instant, never rounded to a sample.  On top
 of the movement the simulator adds what real recordings do: noise (white or pink)
 at a stated SNR, mains hum, knocks and speech-like bursts, a second impact on each
-step, tick-to-tick variation, room reverberation, a phone's automatic gain control
+step, tick-to-tick variation, beats that do not repeat (a rattle of random impacts), room reverberation, a phone's automatic gain control
 or noise gate, clipping, a second clock in the room, and an audio-clock offset.
 Lossy encoding happens where the file is written (:mod:`tickscope.io.simfile`).
 
@@ -84,6 +84,11 @@ class Scenario:
     variation_freq_pct: float = 0.0  # tick-to-tick resonance variation (RMS, percent)
     second_impact_ms: float = 0.0  # 0 = none; else delay of the hand bounce
     second_impact_db: float = -6.0
+    # a sound that does not repeat (not a stepping motor: a cheap escapement, a rattling case):
+    # every beat adds this many impacts at random delays within rattle_spread_ms, each with its
+    # own resonances (0.7-1.4x the movement's) and level (0 to -12 dB); use with jitter_us
+    rattle_impacts: int = 0
+    rattle_spread_ms: float = 40.0
     transients_per_min: float = 0.0  # knocks and speech-like bursts, off the step grid
     transient_db: float = 6.0  # knock peak relative to the step peak
     reverb_rt60_ms: float = 0.0  # 0 = dry room
@@ -113,6 +118,9 @@ class Scenario:
 
 
 def _check(sc: Scenario) -> None:
+    if sc.rattle_impacts < 0 or not sc.rattle_spread_ms > 0:
+        raise ParameterError(f"rattle_impacts={sc.rattle_impacts!r}, rattle_spread_ms={sc.rattle_spread_ms!r}: "
+                             "expected >= 0 impacts within > 0 ms")
     if sc.samplerate_hz < 4000 or sc.samplerate_hz > 384000:
         raise ParameterError(f"samplerate_hz={sc.samplerate_hz!r}: expected 4000..384000")
     if not sc.duration_s > 0:
@@ -132,7 +140,7 @@ def _check(sc: Scenario) -> None:
 @dataclass
 class _Event:
     t_true_s: float
-    kind: str  # step | failed | correction | bounce | knock | voice | other_clock
+    kind: str  # step | failed | correction | bounce | rattle | knock | voice | other_clock
     amp: float
     modes: tuple[tuple[float, float, float], ...] = ()
     duration_s: float = 0.2
@@ -245,6 +253,10 @@ def build_events(sc: Scenario) -> tuple[list[_Event], dict]:
                 d = sc.second_impact_ms * 1e-3 * (1 + rng.normal(0, 0.02))
                 events.append(_Event(t_sound + d, "bounce", amp * 10 ** (sc.second_impact_db / 20),
                                      _band_limit(BOUNCE_MODES, sc.samplerate_hz), 0.05))
+            for _ in range(sc.rattle_impacts):
+                d = rng.uniform(0.002, max(0.003, sc.rattle_spread_ms * 1e-3))
+                m = _band_limit(tuple((f * rng.uniform(0.7, 1.4), tau, a) for f, tau, a in modes), sc.samplerate_hz)
+                events.append(_Event(t_sound + d, "rattle", amp * 10 ** (rng.uniform(-12.0, 0.0) / 20), m, 0.1))
         elif kind == "failed":
             # a twitch: weak, short, duller
             tw = tuple((f * 0.8, tau * 0.4, a) for f, tau, a in modes)

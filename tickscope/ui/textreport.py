@@ -65,7 +65,8 @@ def residual_strip(times_s: np.ndarray | None, res_us: np.ndarray | None, *, wid
             else:
                 t.append(ch, style=styles[r][c])
         t.append("\n")
-    t.append(" " * label_w + f"{_tlabel(t0)} {time_unit}".ljust(cols - 8) + f"{_tlabel(t1)} {time_unit}", style="dim")
+    left, right = f"{_tlabel(t0)} {time_unit}", f"{_tlabel(t1)} {time_unit}"
+    t.append(" " * label_w + left.ljust(max(cols - len(right), len(left) + 1)) + right, style="dim")
     t.append("\n" + " " * label_w + f"{caption} · band: range per column · block: median", style="dim")
     return t
 
@@ -119,16 +120,27 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
         tab.add_row("failed steps", str(ex["failed_steps"]), f"{ex['correction_pulses']} corrected; {ex['seconds_lost']:g} s lost")
     if "polarity_asymmetry_us" in ex:
         tab.add_row("A→B − B→A", f"{ex['polarity_asymmetry_us']:+.1f} µs", f"± {ex['polarity_asymmetry_ci95_us']:.1f} (95 %)")
-    tab.add_row("steps heard", f"{s.steps_detected}", f"{r.n_outliers} outliers left out of the fit" if r else "")
-    miss = ", ".join(f"{t:.1f}" for t in s.missed_step_times_s[:6]) + (" …" if s.missed_steps > 6 else "")
-    tab.add_row("missed steps", f"{s.missed_steps}", f"at {miss} s" if s.missed_steps else "none on the grid")
+    if s.sound == "not-stepping":
+        # beats on a grid of their own: no steps to miss, nothing to diagnose
+        b = ex.get("beats") or {}
+        tab.add_row("beats heard", f"{b.get('heard', s.steps_detected)}",
+                    f"every {_fmt(s.measured_interval_s, '.4f', ' s')} on average; "
+                    f"{b.get('like_first', '?')} sound like the first ones")
+        if b.get("scatter_ms") is not None:
+            tab.add_row("beat scatter", f"{b['scatter_ms']:.1f} ms", "SD of each beat's first sound about the grid")
+        if b.get("alternation_ms") is not None:
+            tab.add_row("tick − tock", f"{b['alternation_ms']:+.2f} ms", "mean A→B interval minus mean B→A")
+    else:
+        tab.add_row("steps heard", f"{s.steps_detected}", f"{r.n_outliers} outliers left out of the fit" if r else "")
+        miss = ", ".join(f"{t:.1f}" for t in s.missed_step_times_s[:6]) + (" …" if s.missed_steps > 6 else "")
+        tab.add_row("missed steps", f"{s.missed_steps}", f"at {miss} s" if s.missed_steps else "none on the grid")
     tab.add_row("other sounds", f"{s.rejected_events}", f"off the grid, ignored; {s.secondary_impacts} later impacts within steps")
     tab.add_row("step level", _fmt(s.step_snr_db, ".1f", " dB"), f"above the noise floor; peak {s.peak_dbfs:.1f} dBFS")
     if s.hum_hz:
         tab.add_row("mains hum", f"{s.hum_hz:.0f} Hz", f"{s.hum_db:+.0f} dB over the floor")
     parts.append(tab)
 
-    if s.residuals_us is not None and len(s.residuals_us) >= 3:
+    if s.sound == "stepping" and s.residuals_us is not None and len(s.residuals_us) >= 3:
         parts.append(Panel(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, min(width - 20, 100))),
                            title="timing residuals", title_align="left", box=box.ROUNDED, expand=False))
     if s.ringdown:
