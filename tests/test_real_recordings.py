@@ -73,6 +73,7 @@ def test_wall_clock_beats_are_heard_and_not_taken_for_quartz_steps():
     assert s.extras["beats"]["scatter_ms"] > 3.0
     # no motor diagnosis for a sound that is not a stepping motor's
     assert "failed_steps" not in s.extras and not s.extras["diagnosis"]
+    assert s.missed_steps == 0 and s.missed_step_times_s == []
 
 
 def test_kitchen_timer_tick_tock_is_heard_with_its_beat_interval():

@@ -381,8 +381,9 @@ class Analyzer:
             measured_interval_s=tr.measured_s,
             sound=pattern,
             steps_detected=n_steps,
-            missed_steps=self.missed_t.n,
-            missed_step_times_s=[float(v) for v in self.missed_t.values],
+            # only a stepping motor misses steps: a beat grid of another sound claims none
+            missed_steps=self.missed_t.n if pattern == "stepping" else 0,
+            missed_step_times_s=[float(v) for v in self.missed_t.values] if pattern == "stepping" else [],
             rejected_events=self.n_rejected,
             secondary_impacts=self.n_secondary,
             rate=rate_out,
