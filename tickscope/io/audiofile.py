@@ -1,8 +1,17 @@
-"""Audio files in and out (libsndfile through soundfile): the same Block stream as live capture."""
+"""Audio files in and out: the same Block stream as live capture.
+
+Files are read with libsndfile (through soundfile): WAV, FLAC, Ogg Vorbis and Opus, MP3, AIFF
+and the rest of its formats.  What it cannot read -- phones' AAC (.m4a), AMR and 3GP, video
+soundtracks -- is decoded by ffmpeg where it is installed, streamed through a pipe as float32
+(the stream's own sample rate and channels, no resampling), so memory stays flat here too.
+"""
 from __future__ import annotations
 
+import json
 import math
 import os
+import shutil
+import subprocess
 from collections.abc import Iterator
 from dataclasses import dataclass
 
@@ -34,6 +43,18 @@ class FileInfo:
     def duration_s(self) -> float:
         return self.frames / self.samplerate if self.samplerate else 0.0
 
+    @property
+    def lossy(self) -> bool:
+        """Whether the audio went through a lossy codec (its step times may shift; see Analyzer)."""
+        if self.format == FFMPEG_FORMAT:
+            return not (self.subtype.startswith("pcm_") or self.subtype in _LOSSLESS_CODECS)
+        return self.subtype in ("VORBIS", "OPUS", "MPEG_LAYER_I", "MPEG_LAYER_II", "MPEG_LAYER_III",
+                                "GSM610", "G721_32", "G723_24", "G723_40", "VOX_ADPCM", "IMA_ADPCM", "MS_ADPCM",
+                                "NMS_ADPCM_16", "NMS_ADPCM_24", "NMS_ADPCM_32")
+
+
+_LOSSLESS_CODECS = {"flac", "alac", "wavpack", "ape", "tta", "mlp", "truehd", "shorten"}
+
 
 def probe(path: str) -> FileInfo:
     """Open an audio file's header and check it is something we can analyze.
@@ -51,16 +72,91 @@ def probe(path: str) -> FileInfo:
         raise InputError(f"{path} is empty (0 bytes)")
     try:
         info = sf.info(path)
+        fi = FileInfo(path, int(info.samplerate), int(info.channels), int(info.frames), info.format, info.subtype)
     except (sf.LibsndfileError, RuntimeError, OSError) as e:
-        raise InputError(f"{path} is not a readable audio file ({_short(e)})") from e
-    if info.frames <= 0 or info.samplerate <= 0:
+        fi = _probe_ffmpeg(path, _short(e))
+    if fi.frames <= 0 or fi.samplerate <= 0:
         raise InputError(f"{path} holds no audio samples")
-    if not MIN_RATE_HZ <= info.samplerate <= MAX_RATE_HZ:
-        raise InputError(f"{path}: sample rate {info.samplerate} Hz is outside {MIN_RATE_HZ}..{MAX_RATE_HZ} Hz")
-    fi = FileInfo(path, int(info.samplerate), int(info.channels), int(info.frames), info.format, info.subtype)
+    if not MIN_RATE_HZ <= fi.samplerate <= MAX_RATE_HZ:
+        raise InputError(f"{path}: sample rate {fi.samplerate} Hz is outside {MIN_RATE_HZ}..{MAX_RATE_HZ} Hz")
     if fi.duration_s < MIN_DURATION_S:
         raise InputError(f"{path} is only {fi.duration_s:.2f} s long: record at least 30 s of ticking")
     return fi
+
+
+FFMPEG_FORMAT = "FFMPEG"  # FileInfo.format of a file decoded by ffmpeg (subtype: its codec)
+
+
+def _probe_ffmpeg(path: str, why: str) -> FileInfo:
+    """The first audio stream of a file libsndfile cannot read, as ffprobe sees it."""
+    if shutil.which("ffprobe") is None or shutil.which("ffmpeg") is None:
+        raise InputError(f"{path} is not a file libsndfile reads ({why}); for a phone's .m4a, .aac, .amr or "
+                         ".3gp install ffmpeg (e.g. apt-get install ffmpeg) or convert it to FLAC")
+    try:
+        r = subprocess.run(["ffprobe", "-v", "error", "-select_streams", "a:0", "-show_entries",
+                            "stream=codec_name,sample_rate,channels,duration:format=duration", "-of", "json", path],
+                           capture_output=True, text=True, timeout=60, stdin=subprocess.DEVNULL)
+        d = json.loads(r.stdout or "{}")
+    except (OSError, subprocess.SubprocessError, ValueError) as e:
+        raise InputError(f"{path} is not a readable audio file (ffprobe: {e})") from e
+    streams = d.get("streams") or []
+    if r.returncode != 0 or not streams:
+        msg = (r.stderr or "").strip().splitlines()
+        raise InputError(f"{path} is not a readable audio file ({why}; ffprobe: "
+                         f"{msg[-1] if msg else 'no audio stream'})")
+    st = streams[0]
+    try:
+        rate = int(st.get("sample_rate") or 0)
+        channels = int(st.get("channels") or 0)
+        dur = float(st.get("duration") or (d.get("format") or {}).get("duration") or 0.0)
+    except ValueError as e:
+        raise InputError(f"{path}: ffprobe gave an unreadable stream description ({e})") from e
+    if channels <= 0:
+        raise InputError(f"{path} holds no audio channels")
+    # the container's duration: the exact count of frames is only known once decoded
+    return FileInfo(path, rate, channels, int(round(dur * rate)), FFMPEG_FORMAT, str(st.get("codec_name", "?")))
+
+
+def _ffmpeg_frames(path: str, info: FileInfo, block_frames: int) -> Iterator[np.ndarray]:
+    """Decode with ffmpeg: float32 arrays of shape (frames, channels), block_frames at a time."""
+    cmd = ["ffmpeg", "-v", "error", "-nostdin", "-i", path, "-map", "0:a:0", "-vn", "-f", "f32le",
+           "-acodec", "pcm_f32le", "-"]
+    try:
+        proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL)
+    except OSError as e:
+        raise InputError(f"{path}: cannot start ffmpeg ({e})") from e
+    # stderr is drained by a thread, so a chatty decoder can never block the pipe we read
+    import threading
+
+    err: list[bytes] = []
+    t = threading.Thread(target=lambda: err.append(proc.stderr.read()), daemon=True)
+    t.start()
+    nbytes = block_frames * info.channels * 4
+    rest = b""
+    try:
+        while True:
+            chunk = proc.stdout.read(nbytes)
+            if not chunk:
+                break
+            chunk = rest + chunk
+            whole = len(chunk) // (4 * info.channels) * 4 * info.channels
+            rest = chunk[whole:]
+            if whole:
+                yield np.frombuffer(chunk[:whole], dtype="<f4").reshape(-1, info.channels)
+        rc = proc.wait()
+        t.join(timeout=5)
+        if rc != 0:
+            msg = b"".join(err).decode(errors="replace").strip().splitlines()
+            raise _FfmpegFailed(msg[-1] if msg else f"ffmpeg exited with status {rc}")
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        proc.stdout.close()
+
+
+class _FfmpegFailed(Exception):
+    pass
 
 
 def _short(e: Exception) -> str:
@@ -73,10 +169,23 @@ def choose_channel(path: str, info: FileInfo, seconds: float = 20.0) -> int:
     if info.channels == 1:
         return 0
     n = int(min(info.frames, seconds * info.samplerate))
-    try:
-        x = sf.read(path, frames=n, dtype="float32", always_2d=True)[0]
-    except (sf.LibsndfileError, RuntimeError) as e:
-        raise InputError(f"{path}: cannot read audio ({_short(e)})") from e
+    if info.format == FFMPEG_FORMAT:
+        parts, got = [], 0
+        try:
+            for x in _ffmpeg_frames(path, info, BLOCK_FRAMES):
+                parts.append(x)
+                got += len(x)
+                if got >= n:
+                    break
+        except _FfmpegFailed as e:
+            if not parts:
+                raise InputError(f"{path}: cannot decode audio (ffmpeg: {e})") from e
+        x = np.concatenate(parts)[:n] if parts else np.zeros((0, info.channels), np.float32)
+    else:
+        try:
+            x = sf.read(path, frames=n, dtype="float32", always_2d=True)[0]
+        except (sf.LibsndfileError, RuntimeError) as e:
+            raise InputError(f"{path}: cannot read audio ({_short(e)})") from e
     hop = max(2, int(0.0005 * info.samplerate))
     best, best_c = -1.0, 0
     for c in range(info.channels):
@@ -103,6 +212,9 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
     if not 0 <= channel < info.channels:
         raise ParameterError(f"--channel {channel}: {info.path} has channels 0..{info.channels - 1}")
     pos = 0
+    if info.format == FFMPEG_FORMAT:
+        yield from _ffmpeg_blocks(path, info, channel, block_frames, start_frame)
+        return
     # Integer PCM is read as integers and scaled here: libsndfile's own float conversion costs
     # ~5x the rest of reading.  The result is the same float32 (1/2^15 and 1/2^31 are powers of
     # two; 24-bit samples are exact in float32), as tests/test_audiofile.py checks.
@@ -131,15 +243,34 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
             raise InputError(f"{path}: cannot read audio ({_short(e)})") from e
 
 
+def _ffmpeg_blocks(path: str, info: FileInfo, channel: int, block_frames: int, start_frame: int) -> Iterator[Block]:
+    pos = 0
+    skip = int(start_frame)  # decoded and dropped: exact to the sample, as libsndfile's seek
+    try:
+        for x in _ffmpeg_frames(path, info, block_frames):
+            if skip:
+                drop = min(skip, len(x))
+                x, skip = x[drop:], skip - drop
+                if not len(x):
+                    continue
+            y = np.ascontiguousarray(x[:, channel])
+            yield Block(y, pos)
+            pos += len(y)
+    except _FfmpegFailed as e:
+        if pos == 0:
+            raise InputError(f"{path}: cannot decode audio (ffmpeg: {e})") from e
+        # a truncated or damaged tail: keep what was decoded
+
+
 def audio_format_for(path: str, subtype: str | None = None) -> tuple[str, str]:
     """(format, subtype) that ``path``'s extension asks for (lossless defaults: 24-bit, WAV float)."""
     ext = os.path.splitext(path)[1].lower()
-    fmt = {".wav": "WAV", ".flac": "FLAC", ".ogg": "OGG", ".oga": "OGG", ".mp3": "MP3", ".aiff": "AIFF",
-           ".aif": "AIFF", ".w64": "W64", ".caf": "CAF"}.get(ext)
+    fmt = {".wav": "WAV", ".flac": "FLAC", ".ogg": "OGG", ".oga": "OGG", ".opus": "OGG", ".mp3": "MP3",
+           ".aiff": "AIFF", ".aif": "AIFF", ".w64": "W64", ".caf": "CAF"}.get(ext)
     if fmt is None:
-        raise ParameterError(f"{path}: unknown audio extension {ext!r} (use .wav, .flac, .ogg or .mp3)")
+        raise ParameterError(f"{path}: unknown audio extension {ext!r} (use .wav, .flac, .ogg, .opus or .mp3)")
     if subtype is None:
-        subtype = {"OGG": "VORBIS", "MP3": "MPEG_LAYER_III", "WAV": "FLOAT"}.get(fmt, "PCM_24")
+        subtype = "OPUS" if ext == ".opus" else {"OGG": "VORBIS", "MP3": "MPEG_LAYER_III", "WAV": "FLOAT"}.get(fmt, "PCM_24")
     if fmt in ("OGG", "MP3") and subtype not in ("VORBIS", "OPUS", "MPEG_LAYER_III"):
         raise ParameterError(f"{path}: subtype {subtype} does not fit a lossy {fmt} file")
     return fmt, subtype
