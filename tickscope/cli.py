@@ -86,7 +86,7 @@ def cmd_analyze(args) -> int:
     elif not 0 <= channel < info.channels:
         raise ParameterError(f"--channel {channel}: {path} has channels 0..{info.channels - 1}")
     clock_ppm, clock_u, time_base = _clock(args)
-    an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u)
+    an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u, lossy=info.lossy)
     csv_fh = None
     if args.steps_csv:
         try:
@@ -105,6 +105,9 @@ def cmd_analyze(args) -> int:
             csv_fh.close()
     summary.extras["clock_calibrated"] = clock_ppm is not None
     summary.extras["time_base"] = time_base
+    if summary.duration_s < info.duration_s - max(1.0, 0.01 * info.duration_s):
+        summary.warnings.append(f"the file ends at {summary.duration_s:.1f} s though its header says "
+                                f"{info.duration_s:.1f} s (cut short or damaged): analyzed what it holds")
     if chosen_note:
         summary.warnings.insert(0, chosen_note)
     if demo and not args.json:
@@ -161,7 +164,9 @@ def cmd_simulate(args) -> int:
         sc = Scenario(**changes)
     except TypeError as e:
         raise ParameterError(str(e)) from e
-    truth = write_simulation(args.out, sc, description=args.description or "")
+    if args.compression_level is not None and not 0.0 <= args.compression_level <= 1.0:
+        raise ParameterError(f"--compression-level {args.compression_level}: expected 0..1")
+    truth = write_simulation(args.out, sc, description=args.description or "", compression_level=args.compression_level)
     n = sum(1 for s in truth["steps"] if s["kind"] == "step")
     _console(stderr=True).print(f"wrote {args.out} ({sc.duration_s:g} s, {n} steps) and {truth_path_for(args.out)}")
     return 0
@@ -905,10 +910,13 @@ def build_parser() -> argparse.ArgumentParser:
     rp.set_defaults(func=cmd_report)
 
     s = sub.add_parser("simulate", help="write a simulated recording with its truth file",
-                       description="Write a recording of a simulated stepping-motor movement (WAV, FLAC, OGG or MP3 by "
-                       "extension) and NAME.truth.json beside it with every parameter and every true step time.")
-    s.add_argument("out", help="output audio file (.wav, .flac, .ogg, .mp3)")
+                       description="Write a recording of a simulated stepping-motor movement (WAV, FLAC, Ogg Vorbis, "
+                       "Opus or MP3 by extension) and NAME.truth.json beside it with every parameter and every true step time.")
+    s.add_argument("out", help="output audio file (.wav, .flac, .ogg, .opus, .mp3)")
     s.add_argument("--description", help="a line describing the scenario, stored in the truth file")
+    s.add_argument("--compression-level", type=float, metavar="C",
+                   help="lossy formats: 0 (best quality, largest) .. 1 (smallest); e.g. 0.9 gives Opus at ~28 kbit/s, "
+                        "like a messaging app's voice note")
     _add_sim_options(s)
     s.set_defaults(func=cmd_simulate)
     return p
