@@ -18,7 +18,7 @@ from .core.detect import DetectorConfig, ImpactDetector
 from .core.grid import StepTracker, TrackerConfig
 from .core import diagnose as dg
 from .core import dsp
-from .core.rate import fit_rate, residuals_s
+from .core.rate import fit_rate, level_shifts, residuals_s, stretch_weights
 from .errors import ParameterError
 from .model import FLAG_BITS, Block, Event, RateEstimate, RingDownStats, Summary, flag_bits
 from .units import SECONDS_PER_DAY, ppm_to_s_per_day
@@ -72,17 +72,23 @@ class Analyzer:
         Keep only about this many recent steps (and other events) in memory: a long log
         stores its steps in the database and its summary covers the recent past.  None
         keeps everything (a file, a listening session).
+    lossy : bool
+        The audio went through a lossy codec: abrupt shifts of the step times are looked for,
+        and the rate is fitted within the stretches between them (see ``rate.level_shifts``).
     """
 
     def __init__(self, samplerate: float, *, channel: int = 0, clock_ppm: float | None = None,
                  clock_ppm_u95: float = 0.0, detector: DetectorConfig | None = None,
-                 tracker: TrackerConfig | None = None, history_steps: int | None = None):
+                 tracker: TrackerConfig | None = None, history_steps: int | None = None,
+                 lossy: bool = False):
         if not samplerate or samplerate <= 0:
             raise ParameterError(f"samplerate={samplerate!r}: expected > 0")
         self.samplerate = float(samplerate)
         self.channel = channel
         self.clock_ppm = clock_ppm
         self.clock_ppm_u95 = clock_ppm_u95
+        self.lossy = lossy
+        self.shifts: tuple[int, float] | None = None  # (count, largest us) found by the last rate()
         self.detector = ImpactDetector(samplerate, detector)
         self.tracker = StepTracker(samplerate, self.detector.pre, tracker,
                                    emit_delay_s=(self.detector.post + 2 * self.detector.hop) / samplerate)
@@ -250,8 +256,22 @@ class Analyzer:
         k = self.step_k.values[good]
         if k.max() - k.min() < 2:
             return None
-        return fit_rate(k, self.step_t.values[good], nominal, clock_ppm=self.clock_ppm or 0.0,
-                        clock_ppm_u95=self.clock_ppm_u95)
+        t = self.step_t.values[good]
+        groups = level_shifts(k, t) if self.lossy else None
+        self.shifts = None
+        weights = None
+        if groups is not None:
+            weights = stretch_weights(k, t, groups)
+            # the size of each shift: the change of intercept from one stretch of a polarity to its next
+            r = fit_rate(k, t, nominal, groups=groups, weights=weights)
+            sizes = []
+            for g in range(1, int(groups.max()) + 1):
+                a, b = groups == g - 1, groups == g
+                if k[a][0] % 2 == k[b][0] % 2:  # labels of one polarity are consecutive
+                    sizes.append(abs(float(np.median((t - r.interval_s * k)[b]) - np.median((t - r.interval_s * k)[a]))))
+            self.shifts = (len(sizes), max(sizes) * 1e6) if sizes else None
+        return fit_rate(k, t, nominal, clock_ppm=self.clock_ppm or 0.0,
+                        clock_ppm_u95=self.clock_ppm_u95, groups=groups, weights=weights)
 
     def loud_db(self, recent: int | None = None) -> float:
         """Off-grid sounds this far over the floor matter: within 10 dB of the typical step
@@ -351,6 +371,10 @@ class Analyzer:
             warnings.append(f"the rate is on the audio device's own, uncalibrated time base; such clocks are "
                             f"commonly off by tens of ppm (+-{TYPICAL_DEVICE_PPM:.0f} ppm = "
                             f"+-{ppm_to_s_per_day(TYPICAL_DEVICE_PPM):.1f} s/day): calibrate and pass --clock-ppm")
+        if rate_out is not None and self.shifts is not None and not diag.get("json", {}).get("inhibition"):
+            warnings.append(f"the lossy codec shifted the step times abruptly {self.shifts[0]} time"
+                            f"{'s' if self.shifts[0] > 1 else ''} (by up to {self.shifts[1]:.0f} us): the rate is "
+                            "fitted within the stretches between shifts; a lossless recording (WAV, FLAC) avoids this")
         if rate_out is not None and (rate_out.span_s < 20 or rate_out.n_steps < 10):
             warnings.append(f"the recording is short ({rate_out.span_s:.0f} s of steps): record at least a minute "
                             "for a useful rate, ten for a precise one")

@@ -22,11 +22,18 @@ from ..model import RateEstimate
 from ..units import SECONDS_PER_DAY
 
 
-def _lsq(k: np.ndarray, t: np.ndarray, polarity_term: bool, groups: np.ndarray | None = None):
+#: the batch-means view of fit_rate replaces the models' slope variance when it exceeds it by
+#: this factor: the 99th percentile of chi2(6)/6 (8 batch means, a line through them)
+BATCH_VIEW_F = 2.80
+
+
+def _lsq(k: np.ndarray, t: np.ndarray, polarity_term: bool, groups: np.ndarray | None = None,
+         sw: np.ndarray | None = None):
     """Least squares t = a_g + b k (+ c [k odd]); returns (b, a, c, residuals).
 
     With ``groups`` every group (a stretch of a log whose phase is not tied to the others)
-    has its own intercept; ``a`` is then the first group's.
+    has its own intercept; ``a`` is then the first group's.  With ``sw`` (square roots of
+    weights) the rows are weighted; the residuals returned are not.
     """
     km = k.mean()
     if groups is None:
@@ -38,7 +45,10 @@ def _lsq(k: np.ndarray, t: np.ndarray, polarity_term: bool, groups: np.ndarray |
     if polarity_term:
         cols.append((k % 2) - 0.5)
     A = np.vstack(cols).T
-    coef, *_ = np.linalg.lstsq(A, t, rcond=None)
+    if sw is None:
+        coef, *_ = np.linalg.lstsq(A, t, rcond=None)
+    else:
+        coef, *_ = np.linalg.lstsq(A * sw[:, None], t * sw, rcond=None)
     res = t - A @ coef
     a = coef[0] - coef[ng] * km
     return coef[ng], a, (coef[ng + 1] if polarity_term else 0.0), res
@@ -47,7 +57,8 @@ def _lsq(k: np.ndarray, t: np.ndarray, polarity_term: bool, groups: np.ndarray |
 def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, *,
              clock_ppm: float = 0.0, clock_ppm_u95: float = 0.0,
              outlier_sigmas: float = 5.0, polarity_term: bool = True,
-             min_ci_s_per_day: float = 0.001, groups: np.ndarray | None = None) -> RateEstimate:
+             min_ci_s_per_day: float = 0.001, groups: np.ndarray | None = None,
+             weights: np.ndarray | None = None) -> RateEstimate:
     """Fit the daily rate to step numbers and times.
 
     Parameters
@@ -73,6 +84,9 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     groups : np.ndarray [shape=(n,), int], optional
         Stretches whose phase is not tied together (segments of a log joined only by the
         wall clock): each gets its own intercept, and the rate is their common slope.
+    weights : np.ndarray [shape=(n,)], optional
+        Relative weights of the steps (inverse variances: a stretch a lossy codec timed more
+        roughly counts less).  The interval is then that of the weighted fit.
 
     Returns
     -------
@@ -100,9 +114,19 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         raise ParameterError("groups must have one entry per step")
     if g is not None and len(np.unique(g)) == 1:
         g = None
+    if g is not None and polarity_term and all(len(np.unique(k[g == v] % 2)) == 1 for v in np.unique(g)):
+        polarity_term = False  # each group's intercept holds its polarity's offset
+    if weights is not None:
+        w = np.asarray(weights, dtype=np.float64)
+        if w.shape != k.shape or not np.all(w > 0):
+            raise ParameterError("weights must be positive, one per step")
+        sw_all = np.sqrt(w / w.mean())
+    else:
+        sw_all = None
     keep = np.ones(len(k), dtype=bool)
     for _ in range(3):
-        b, a, c, _r = _lsq(k[keep], t[keep], polarity_term, None if g is None else g[keep])
+        b, a, c, _r = _lsq(k[keep], t[keep], polarity_term, None if g is None else g[keep],
+                           None if sw_all is None else sw_all[keep])
         if g is None:
             r = t - (a + b * k + c * ((k % 2) - 0.5))
         else:
@@ -114,6 +138,8 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
                 off = float(np.median(t[sel] - b * k[sel] - c * ((k[sel] % 2) - 0.5))) if sel.any() else 0.0
                 out = ~keep & (g == gg)
                 r[out] = t[out] - (off + b * k[out] + c * ((k[out] % 2) - 0.5))
+        if sw_all is not None:
+            r = r * sw_all  # in units of each step's own scatter
         med = np.median(r[keep])
         s = 1.4826 * np.median(np.abs(r[keep] - med))
         new = np.abs(r - med) <= max(outlier_sigmas * s, 1e-9)
@@ -123,16 +149,20 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     kk, tt = k[keep], t[keep]
     gg = None if g is None else g[keep]
     n = len(kk)
-    b, a, c, res = _lsq(kk, tt, polarity_term, gg)
+    sw = None if sw_all is None else sw_all[keep]
+    b, a, c, res_t = _lsq(kk, tt, polarity_term, gg, sw)
+    res = res_t if sw is None else res_t * sw  # the statistics below are of the weighted residuals
     n_groups = 1 if gg is None else len(np.unique(gg))
-    if gg is None:
+    if gg is None and sw is None:
         sxx = float(np.sum((kk - kk.mean()) ** 2))
         span_steps = float(kk.max() - kk.min()) + 1
     else:
         sxx = span_steps = 0.0
-        for v in np.unique(gg):
-            kv = kk[gg == v]
-            sxx += float(np.sum((kv - kv.mean()) ** 2))
+        for v in (np.unique(gg) if gg is not None else [None]):
+            sel = slice(None) if v is None else gg == v
+            kv = kk[sel]
+            wv = np.ones(len(kv)) if sw is None else sw[sel] ** 2
+            sxx += float(np.sum(wv * (kv - np.average(kv, weights=wv)) ** 2))
             span_steps += float(kv.max() - kv.min()) + 1
     dof = max(n - 1 - n_groups - int(polarity_term), 1)
     s2 = float(np.sum(res**2)) / dof
@@ -166,6 +196,39 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
             infl = max(infl, var_mix / (s2 / sxx)) if s2 > 0 and sxx > 0 else infl
             var_b = var_mix
     n_eff = max(3.0, n / infl)
+    # Third view: slow structure neither model above describes -- a level shift where a lossy codec
+    # changes mode (low-bitrate Opus moved every step by 30-50 us at once, mid-recording) or a
+    # phone's gain control changes its state, a room warming up.  The residuals are averaged over
+    # 8 consecutive stretches (the method of batch means for correlated data; from memory) and the
+    # slope is then known only as well as a line through those 8 means determines it.  This view
+    # is taken only when its variance exceeds the models' by 2.80, the 99th percentile of
+    # chi2(6)/6, so that residuals the models describe seldom widen the interval.
+    # (Also for a lossy file's weighted stretches: a codec's timing error also drifts smoothly with
+    # a step's place in its frames; not for a log's wall-joined segments, whose drifts the
+    # white-frequency view describes.)
+    nb = 8
+    if (gg is None or sw is not None) and n >= 8 * nb:
+        parts = np.array_split(np.argsort(kk, kind="stable"), nb)
+        if sw is None:
+            kb = np.array([kk[i].mean() for i in parts])
+            rb = np.array([res_t[i].mean() for i in parts])
+            kc = kb - kb.mean()
+            sxx_b = float(np.sum(kc * kc))
+            e = rb - rb.mean() - kc * (float(np.sum(kc * rb)) / sxx_b)
+            var_bm = float(np.sum(e * e)) / (nb - 2) / sxx_b
+        else:
+            # weighted batch means, and a line through them weighted by each batch's total weight
+            wv = sw * sw
+            wb = np.array([wv[i].sum() for i in parts])
+            kb = np.array([np.average(kk[i], weights=wv[i]) for i in parts])
+            rb = np.array([np.average(res_t[i], weights=wv[i]) for i in parts])
+            kc = kb - np.average(kb, weights=wb)
+            sxx_b = float(np.sum(wb * kc * kc))
+            e = rb - np.average(rb, weights=wb) - kc * (float(np.sum(wb * kc * rb)) / sxx_b)
+            var_bm = float(np.sum(wb * e * e)) / (nb - 2) / sxx_b
+        if var_bm > BATCH_VIEW_F * var_b:
+            var_b = var_bm
+            n_eff = float(nb)
     q = dsp.t_ppf(0.975, max(n_eff - 2, 1))
     se_b = math.sqrt(var_b)
     scale = 1.0 + clock_ppm * 1e-6
@@ -181,7 +244,7 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         n_steps=int(n),
         n_outliers=int(len(k) - n),
         span_s=float(tt.max() - tt.min()),
-        jitter_us=float(math.sqrt(np.mean(res**2)) * 1e6),
+        jitter_us=float(math.sqrt(np.mean(res_t**2)) * 1e6),
         residual_correlation=rho,
         clock_correction_ppm=float(clock_ppm),
         polarity_offset_us=float(c * 1e6),
@@ -195,3 +258,139 @@ def residuals_s(steps: np.ndarray, times_s: np.ndarray, *, polarity_term: bool =
     if len(k) < 3:
         return np.zeros(len(k))
     return _lsq(k, t, polarity_term and len(np.unique(k % 2)) == 2 and len(k) >= 6)[3]
+
+
+def level_shifts(steps: np.ndarray, times_s: np.ndarray, *, z: float = 6.0, max_shifts: int = 8,
+                 window: int = 8) -> np.ndarray | None:
+    """Stretches between abrupt shifts of the step times, as group labels for :func:`fit_rate`.
+
+    A lossy codec can move every step by tens of microseconds at once and keep them there:
+    low-bitrate Opus does so when a step's place in its 20 ms frame crosses a certain point
+    (measured here: 30-40 us at the moment the drifting phase crossed it, the two polarities a
+    few steps apart; and ~50 us on the first few steps, while the encoder settles).  A line
+    through such times tilts, and its interval does not know it.  A movement's phase does not
+    jump (logic regulation aside, which :mod:`diagnose` models), so stretches between such shifts
+    are given their own intercept and the rate comes from within them.
+
+    All the steps are searched, and each polarity on its own (binary segmentation of the residuals
+    from the line), and a stretch ends at any shift found:
+    the largest standardized CUSUM ``|S_j| / (sigma sqrt(j (n - j) / n))``, sigma from successive
+    differences (blind to the shifts themselves), is taken as a shift when it exceeds ``z`` and
+    the means of the ``window`` steps on either side differ by more than 4 standard errors of
+    their own scatter (abrupt: a drifting rate bends the residuals smoothly, by far less over so
+    few steps).  Both thresholds are our own margins: white residuals of 60-3600 steps never
+    reached them in our trials.
+
+    Returns None when no shift is found, else an int array (one label per step, in input order;
+    each label holds steps of one polarity).
+    """
+    k = np.asarray(steps, dtype=np.float64)
+    t = np.asarray(times_s, dtype=np.float64)
+    n = len(k)
+    if n < 4 * window:
+        return None
+    par = (k % 2).astype(np.int64)
+    both = len(np.unique(par)) == 2
+    # shifts that move both polarities alike are seen best in all the steps; those that move one,
+    # or the two a few steps apart, in each polarity alone: a stretch ends at either
+    common = _shift_cuts(k, t, z, max_shifts, window, both)
+    series = [np.flatnonzero(par == p) for p in (0, 1)]
+    if not both or min(len(s) for s in series) < 2 * window:
+        series = [np.arange(n)]
+    labels = np.zeros(n, dtype=np.int64)
+    found, nxt = bool(common), 0
+    for sel in series:
+        own = _shift_cuts(k[sel], t[sel], z, max_shifts, window, False) if len(series) > 1 else []
+        found = found or bool(own)
+        cuts_k = np.array(sorted(set(common) | set(own)), dtype=np.float64)
+        lab = np.searchsorted(cuts_k, k[sel], side="right")
+        lab = np.unique(lab, return_inverse=True)[1] + nxt  # no empty stretches
+        labels[sel] = lab
+        nxt = int(lab.max()) + 1
+    return labels if found else None
+
+
+def _shift_cuts(k: np.ndarray, t: np.ndarray, z: float, max_shifts: int, window: int, pol: bool) -> list[float]:
+    """Step numbers at which stretches start after an abrupt shift (see level_shifts); ``pol``: the
+    series holds both polarities (their offset is fitted)."""
+    order = np.argsort(k, kind="stable")
+    k, t = k[order], t[order]
+    # outliers (a slipped ring cycle moves a step by a whole period) out first, as in fit_rate
+    keep = np.ones(len(k), dtype=bool)
+    for _ in range(3):
+        b, a, c_p, r = _lsq(k[keep], t[keep], pol)
+        s_r = 1.4826 * float(np.median(np.abs(r - np.median(r))))
+        full = t - (a + b * k + c_p * ((k % 2) - 0.5))
+        new = np.abs(full - np.median(full[keep])) <= max(5 * s_r, 1e-9)
+        if new.sum() < 2 * window or np.array_equal(new, keep):
+            break
+        keep = new
+    k, t = k[keep], t[keep]
+    n = len(k)
+    cuts: list[int] = []  # a new stretch starts at these positions
+    for _ in range(max_shifts):
+        g = np.searchsorted(np.array(cuts, dtype=np.int64), np.arange(n), side="right") if cuts else None
+        res = _lsq(k, t, pol, g)[3]
+        sig = 1.4826 * float(np.median(np.abs(np.diff(res)))) / math.sqrt(2.0)
+        if not sig > 0:
+            break
+        # slips of a ring cycle and other outliers would dominate a cumulative sum: held at 5 sigma
+        res = np.clip(res, -5 * sig, 5 * sig)
+        best = None
+        bounds = [0] + cuts + [n]
+        for a, b in zip(bounds[:-1], bounds[1:]):
+            m = b - a
+            if m < 2 * 3:
+                continue
+            r = res[a:b] - res[a:b].mean()
+            s = np.cumsum(r)[:-1]
+            j = np.arange(1, m)
+            zz = np.abs(s) / (sig * np.sqrt(j * (m - j) / m))
+            zz[:2] = zz[-2:] = 0.0  # a stretch of fewer than 3 steps is not worth an intercept
+            i = int(np.argmax(zz))
+            if zz[i] > z and (best is None or zz[i] > best[0]):
+                best = (float(zz[i]), a + i + 1)
+        if best is None or not _abrupt(res, best[1], window):
+            break  # nothing stands out, or a smooth bend rather than a shift
+        cuts = sorted(cuts + [best[1]])
+    return [float(k[c]) for c in cuts]
+
+
+def _abrupt(res: np.ndarray, c: int, window: int) -> bool:
+    """Whether the residuals jump between positions c-1 and c: the means of the ``window`` steps on
+    either side differ by more than 4 standard errors of their own scatter."""
+    lo, hi = res[max(c - window, 0): c], res[c: c + window]
+    if len(lo) < 2 or len(hi) < 2:
+        return False
+    d = np.concatenate([lo - lo.mean(), hi - hi.mean()])
+    s_loc = math.sqrt(float(np.sum(d * d)) / (len(d) - 2))
+    return abs(float(hi.mean() - lo.mean())) > 4.0 * s_loc * math.sqrt(1.0 / len(lo) + 1.0 / len(hi))
+
+
+def stretch_weights(steps: np.ndarray, times_s: np.ndarray, groups: np.ndarray) -> np.ndarray:
+    """Per-step weights 1/sigma^2 of each stretch of :func:`level_shifts`, sigma from the successive
+    differences of its residuals: the part of a recording a codec timed roughly (Opus at low bit rates
+    scattered one stretch by ~12 us and the next by ~2 us) counts for less.  A stretch of fewer than
+    8 steps takes the median sigma of the others; no sigma is taken below a tenth of that median.
+    Two passes: the residuals of the second come from the fit weighted by the first (an unweighted
+    line, pulled by the rough stretch, tilts the residuals of the clean one).
+    """
+    k = np.asarray(steps, dtype=np.float64)
+    t = np.asarray(times_s, dtype=np.float64)
+    g = np.asarray(groups)
+    pol = len(np.unique(k % 2)) == 2 and not all(len(np.unique(k[g == v] % 2)) == 1 for v in np.unique(g))
+    out = np.ones(len(k))
+    for _ in range(2):
+        res = _lsq(k, t, pol, g, np.sqrt(out / out.mean()))[3]
+        sig = {}
+        for v in np.unique(g):
+            sel = np.flatnonzero(g == v)
+            sel = sel[np.argsort(k[sel], kind="stable")]
+            if len(sel) >= 8:
+                sig[v] = 1.4826 * float(np.median(np.abs(np.diff(res[sel])))) / math.sqrt(2.0)
+        med = float(np.median(list(sig.values()))) if sig else 1.0
+        if not med > 0:
+            return np.ones(len(k))
+        for v in np.unique(g):
+            out[g == v] = 1.0 / max(sig.get(v, med), 0.1 * med) ** 2
+    return out

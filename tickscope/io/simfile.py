@@ -22,14 +22,20 @@ def truth_path_for(audio_path: str) -> str:
 
 
 def write_simulation(path: str, sc: Scenario, *, subtype: str | None = None,
-                     progress: Callable[[float], None] | None = None, description: str = "") -> dict:
-    """Render ``sc`` to ``path`` chunk by chunk and write the truth JSON beside it."""
+                     progress: Callable[[float], None] | None = None, description: str = "",
+                     compression_level: float | None = None) -> dict:
+    """Render ``sc`` to ``path`` chunk by chunk and write the truth JSON beside it.
+
+    ``compression_level`` (0..1, lossy formats) is handed to libsndfile: higher is smaller.
+    """
     ext = os.path.splitext(path)[1].lower()
     fmt, st = audio_format_for(path, subtype)
     r = Renderer(sc)
     peak = 0.0
     try:
-        with sf.SoundFile(path, "w", samplerate=sc.samplerate_hz, channels=sc.channels, format=fmt, subtype=st) as f:
+        extra = {} if compression_level is None else {"compression_level": float(compression_level)}
+        with sf.SoundFile(path, "w", samplerate=sc.samplerate_hz, channels=sc.channels, format=fmt, subtype=st,
+                          **extra) as f:
             while True:
                 x = r.render(int(CHUNK_S * sc.samplerate_hz))
                 if not len(x):
@@ -47,7 +53,9 @@ def write_simulation(path: str, sc: Scenario, *, subtype: str | None = None,
     truth["description"] = description
     truth["audio_file"] = os.path.basename(path)
     truth["peak_full_scale"] = peak
-    truth["lossy"] = ext in (".ogg", ".mp3")
+    truth["lossy"] = ext in (".ogg", ".oga", ".opus", ".mp3")
+    if compression_level is not None:
+        truth["compression_level"] = float(compression_level)
     try:
         with open(truth_path_for(path), "w") as f:
             json.dump(truth, f, indent=1)
