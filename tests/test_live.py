@@ -82,6 +82,24 @@ def test_dashboard_renders(size):
     assert "◆" in text  # the estimate on the interval ruler
 
 
+def test_dashboard_for_beats_that_are_not_steps():
+    # the live screen says what the report says: beats, no missed steps, no rate
+    from rich.console import Console
+
+    from conftest import analyze_scenario
+    from tickscope.ui.dashboard import LiveStatus, render_live
+
+    s, *_ = analyze_scenario(Scenario(duration_s=30, snr_db=35, seed=1, jitter_us=1000, rattle_impacts=6,
+                                      variation_freq_pct=15, variation_db=4))
+    assert s.sound == "not-stepping"
+    buf = io.StringIO()
+    Console(file=buf, width=80, height=24, color_system=None).print(
+        render_live(s, LiveStatus("pulse", 48000, 0, 30.0, -18.0, 0, None), width=80))
+    text = buf.getvalue()
+    assert "not a quartz stepping pattern" in text and f"beats {s.extras['beats']['heard']}" in text
+    assert "missed" not in text and "s/day" not in text
+
+
 def test_logging_screen_adds_hourly_rates_and_still_fits(tmp_path):
     from rich.console import Console
 

@@ -134,8 +134,16 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
         head.append("listening for steps…" if s.steps_detected < 3 else "finding the step grid…", style="bold")
         parts.append(head)
     counts = Text()
-    counts.append(f"steps {s.steps_detected}", style="bold")
-    counts.append(f" · missed {s.missed_steps}", style="red" if s.missed_steps else "")
+    beats = ex.get("beats")
+    if s.sound == "not-stepping" and beats:
+        # beats of another kind of sound: nothing to miss or fail (as in the report)
+        counts.append(f"beats {beats['heard']}", style="bold")
+        counts.append(f" · {beats['like_first']} like the first")
+        if beats.get("scatter_ms") is not None:
+            counts.append(f" · scatter {beats['scatter_ms']:.1f} ms")
+    else:
+        counts.append(f"steps {s.steps_detected}", style="bold")
+        counts.append(f" · missed {s.missed_steps}", style="red" if s.missed_steps else "")
     if ex.get("failed_steps"):
         counts.append(f" · failed {ex['failed_steps']}", style="red")
     counts.append(f" · other sounds {s.rejected_events}")
@@ -145,7 +153,7 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
     parts.append(counts)
     if extra:
         parts.extend(extra)
-    if s.residuals_us is not None and len(s.residuals_us) >= 3:
+    if s.sound != "not-stepping" and s.residuals_us is not None and len(s.residuals_us) >= 3:
         parts.append(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, width - 14), height=5))
     lv = Text("input ")
     lv.append_text(level_bar(st.level_dbfs, 20 if width < 100 else 32))
