@@ -397,7 +397,7 @@ def _run_log(args, store) -> int:
                             time_base=time_base, host_sync=host_sync_status() if kind == "device" else None,
                             version=__version__)
     an = Analyzer(fs, channel=channel, clock_ppm=clock_ppm, clock_ppm_u95=clock_u, detector=detector,
-                  history_steps=HISTORY_STEPS)
+                  history_steps=HISTORY_STEPS, lossy=args.source is not None and info.lossy)
     clips = None
     if args.keep_audio == "anomalies":
         clips = ClipKeeper(fs, int(args.clip_budget_mb * 1e6), used_bytes=store.clip_bytes())
