@@ -267,7 +267,7 @@ class Analyzer:
             sizes = []
             for g in range(1, int(groups.max()) + 1):
                 a, b = groups == g - 1, groups == g
-                if k[a][0] % 2 == k[b][0] % 2:  # labels of one polarity are consecutive
+                if set(k[a] % 2) == set(k[b] % 2):  # consecutive labels of one series (a polarity, or both)
                     sizes.append(abs(float(np.median((t - r.interval_s * k)[b]) - np.median((t - r.interval_s * k)[a]))))
             self.shifts = (len(sizes), max(sizes) * 1e6) if sizes else None
         return fit_rate(k, t, nominal, clock_ppm=self.clock_ppm or 0.0,

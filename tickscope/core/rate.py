@@ -282,7 +282,7 @@ def level_shifts(steps: np.ndarray, times_s: np.ndarray, *, z: float = 6.0, max_
     reached them in our trials.
 
     Returns None when no shift is found, else an int array (one label per step, in input order;
-    each label holds steps of one polarity).
+    each label holds steps of one polarity, unless one polarity has too few steps to search).
     """
     k = np.asarray(steps, dtype=np.float64)
     t = np.asarray(times_s, dtype=np.float64)
