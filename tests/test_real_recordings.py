@@ -17,7 +17,7 @@ import soundfile as sf
 from scipy import signal
 
 from tickscope.cli import main
-from tickscope.model import Block
+from tickscope.io.audiofile import blocks, choose_channel, probe
 from tickscope.pipeline import Analyzer
 
 REAL = Path(os.environ.get("TICKSCOPE_REAL_DIR", Path(__file__).resolve().parents[1] / "recordings" / "real"))
@@ -46,15 +46,13 @@ def _reference_beats(path: Path, min_gap_s: float) -> np.ndarray:
 
 
 def _analyze(path: Path):
-    x, fs = sf.read(path, dtype="float32", always_2d=True)
-    best = None
-    for ch in range(x.shape[1]):
-        an = Analyzer(fs, channel=ch)
-        an.feed(Block(np.ascontiguousarray(x[:, ch]), 0))
-        s = an.finish()
-        if best is None or s.extras.get("beats", {}).get("heard", 0) > best.extras.get("beats", {}).get("heard", 0):
-            best = s
-    return best
+    # as `analyze` does it: the channel with the clearest impacts, the file in blocks
+    info = probe(str(path))
+    ch = choose_channel(str(path), info)
+    an = Analyzer(info.samplerate, channel=ch, lossy=info.lossy)
+    for b in blocks(str(path), info, ch):
+        an.feed(b)
+    return an.finish()
 
 
 def test_wall_clock_beats_are_heard_and_not_taken_for_quartz_steps():

@@ -262,16 +262,19 @@ class Analyzer:
         weights = None
         if groups is not None:
             weights = stretch_weights(k, t, groups)
-            # the size of each shift: the change of intercept from one stretch of a polarity to its next
-            r = fit_rate(k, t, nominal, groups=groups, weights=weights)
+        r = fit_rate(k, t, nominal, clock_ppm=self.clock_ppm or 0.0,
+                     clock_ppm_u95=self.clock_ppm_u95, groups=groups, weights=weights)
+        if groups is not None:
+            # the size of each shift: the change of intercept from one stretch of a polarity to its
+            # next (the fitted interval does not depend on the clock correction)
+            off = t - r.interval_s * k
             sizes = []
             for g in range(1, int(groups.max()) + 1):
                 a, b = groups == g - 1, groups == g
                 if set(k[a] % 2) == set(k[b] % 2):  # consecutive labels of one series (a polarity, or both)
-                    sizes.append(abs(float(np.median((t - r.interval_s * k)[b]) - np.median((t - r.interval_s * k)[a]))))
+                    sizes.append(abs(float(np.median(off[b]) - np.median(off[a]))))
             self.shifts = (len(sizes), max(sizes) * 1e6) if sizes else None
-        return fit_rate(k, t, nominal, clock_ppm=self.clock_ppm or 0.0,
-                        clock_ppm_u95=self.clock_ppm_u95, groups=groups, weights=weights)
+        return r
 
     def loud_db(self, recent: int | None = None) -> float:
         """Off-grid sounds this far over the floor matter: within 10 dB of the typical step
@@ -351,19 +354,17 @@ class Analyzer:
         if pattern == "none":
             warnings.append("no stepping-motor pattern was heard: move the microphone onto the case or closer "
                             "to the movement, quiet the room, and record at least 30 s")
-        elif pattern == "not-stepping":
+        beats = {}
+        if pattern == "not-stepping":
             iv = tr.measured_s
+            spread = tr.onset_scatter_s()
             if unlike:
-                spread = tr.onset_scatter_s()
                 how = (f"; only {tr.slots_matched} of {tr.slots_heard} beats sound like the first ones"
                        + ("" if spread is None else f", and they scatter by {spread * 1000:.1f} ms (SD) about the grid"))
             else:
                 how = "" if asym_us is None else f", alternate beats differ by {asym_us / 1000:.2f} ms"
             warnings.append(f"the sound is not a quartz stepping-motor pattern (beat interval heard {iv:.4f} s{how}): "
                             "no rate is claimed for it")
-        beats = {}
-        if pattern == "not-stepping":
-            spread = tr.onset_scatter_s()
             beats = {"beats": {"heard": tr.slots_heard, "like_first": tr.slots_matched,
                                "scatter_ms": None if spread is None else round(spread * 1000, 3),
                                "alternation_ms": None if asym_us is None else round(asym_us / 1000, 3)}}

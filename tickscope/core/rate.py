@@ -54,6 +54,48 @@ def _lsq(k: np.ndarray, t: np.ndarray, polarity_term: bool, groups: np.ndarray |
     return coef[ng], a, (coef[ng + 1] if polarity_term else 0.0), res
 
 
+def _inliers(k: np.ndarray, t: np.ndarray, polarity_term: bool, g: np.ndarray | None = None,
+             sw: np.ndarray | None = None, sigmas: float = 5.0, min_keep: int = 3) -> np.ndarray:
+    """Steps within ``sigmas`` robust sigmas (MAD) of the line, refitted on the kept steps up to
+    three times; stops before keeping fewer than ``min_keep``.  With groups, a step left out is
+    measured against its own group's line; with ``sw``, residuals are in units of each step's scatter."""
+    keep = np.ones(len(k), dtype=bool)
+    for _ in range(3):
+        b, a, c, _r = _lsq(k[keep], t[keep], polarity_term, None if g is None else g[keep],
+                           None if sw is None else sw[keep])
+        if g is None:
+            r = t - (a + b * k + c * ((k % 2) - 0.5))
+        else:
+            r = np.empty(len(k))
+            r[keep] = _r
+            # outside the kept set: against the line of the step's own group
+            for gg in np.unique(g[~keep]):
+                sel = keep & (g == gg)
+                off = float(np.median(t[sel] - b * k[sel] - c * ((k[sel] % 2) - 0.5))) if sel.any() else 0.0
+                out = ~keep & (g == gg)
+                r[out] = t[out] - (off + b * k[out] + c * ((k[out] % 2) - 0.5))
+        if sw is not None:
+            r = r * sw
+        med = np.median(r[keep])
+        s = 1.4826 * np.median(np.abs(r[keep] - med))
+        new = np.abs(r - med) <= max(sigmas * s, 1e-9)
+        if new.sum() < min_keep or np.array_equal(new, keep):
+            break
+        keep = new
+    return keep
+
+
+def _diff_sigma(res: np.ndarray) -> float:
+    """The scatter of residuals (in step order) from their successive differences (MAD): blind to
+    level shifts and slow bends, which move few differences."""
+    return 1.4826 * float(np.median(np.abs(np.diff(res)))) / math.sqrt(2.0)
+
+
+def _one_polarity_groups(k: np.ndarray, g: np.ndarray) -> bool:
+    """Whether every group holds steps of one polarity only (its intercept then holds the offset)."""
+    return all(len(np.unique(k[g == v] % 2)) == 1 for v in np.unique(g))
+
+
 def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, *,
              clock_ppm: float = 0.0, clock_ppm_u95: float = 0.0,
              outlier_sigmas: float = 5.0, polarity_term: bool = True,
@@ -114,7 +156,7 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         raise ParameterError("groups must have one entry per step")
     if g is not None and len(np.unique(g)) == 1:
         g = None
-    if g is not None and polarity_term and all(len(np.unique(k[g == v] % 2)) == 1 for v in np.unique(g)):
+    if g is not None and polarity_term and _one_polarity_groups(k, g):
         polarity_term = False  # each group's intercept holds its polarity's offset
     if weights is not None:
         w = np.asarray(weights, dtype=np.float64)
@@ -123,29 +165,7 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         sw_all = np.sqrt(w / w.mean())
     else:
         sw_all = None
-    keep = np.ones(len(k), dtype=bool)
-    for _ in range(3):
-        b, a, c, _r = _lsq(k[keep], t[keep], polarity_term, None if g is None else g[keep],
-                           None if sw_all is None else sw_all[keep])
-        if g is None:
-            r = t - (a + b * k + c * ((k % 2) - 0.5))
-        else:
-            r = np.empty(len(k))
-            r[keep] = _r
-            # outside the kept set: against the line of the step's own group
-            for gg in np.unique(g[~keep]):
-                sel = keep & (g == gg)
-                off = float(np.median(t[sel] - b * k[sel] - c * ((k[sel] % 2) - 0.5))) if sel.any() else 0.0
-                out = ~keep & (g == gg)
-                r[out] = t[out] - (off + b * k[out] + c * ((k[out] % 2) - 0.5))
-        if sw_all is not None:
-            r = r * sw_all  # in units of each step's own scatter
-        med = np.median(r[keep])
-        s = 1.4826 * np.median(np.abs(r[keep] - med))
-        new = np.abs(r - med) <= max(outlier_sigmas * s, 1e-9)
-        if new.sum() < 3 or np.array_equal(new, keep):
-            break
-        keep = new
+    keep = _inliers(k, t, polarity_term, g, sw_all, outlier_sigmas, min_keep=3)
     kk, tt = k[keep], t[keep]
     gg = None if g is None else g[keep]
     n = len(kk)
@@ -209,23 +229,16 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     nb = 8
     if (gg is None or sw is not None) and n >= 8 * nb:
         parts = np.array_split(np.argsort(kk, kind="stable"), nb)
-        if sw is None:
-            kb = np.array([kk[i].mean() for i in parts])
-            rb = np.array([res_t[i].mean() for i in parts])
-            kc = kb - kb.mean()
-            sxx_b = float(np.sum(kc * kc))
-            e = rb - rb.mean() - kc * (float(np.sum(kc * rb)) / sxx_b)
-            var_bm = float(np.sum(e * e)) / (nb - 2) / sxx_b
-        else:
-            # weighted batch means, and a line through them weighted by each batch's total weight
-            wv = sw * sw
-            wb = np.array([wv[i].sum() for i in parts])
-            kb = np.array([np.average(kk[i], weights=wv[i]) for i in parts])
-            rb = np.array([np.average(res_t[i], weights=wv[i]) for i in parts])
-            kc = kb - np.average(kb, weights=wb)
-            sxx_b = float(np.sum(wb * kc * kc))
-            e = rb - np.average(rb, weights=wb) - kc * (float(np.sum(wb * kc * rb)) / sxx_b)
-            var_bm = float(np.sum(wb * e * e)) / (nb - 2) / sxx_b
+        # (weighted) batch means, and a line through them weighted by each batch's total weight;
+        # unweighted, every batch counts alike
+        wv = np.ones(n) if sw is None else sw * sw
+        wb = np.ones(nb) if sw is None else np.array([wv[i].sum() for i in parts])
+        kb = np.array([np.average(kk[i], weights=wv[i]) for i in parts])
+        rb = np.array([np.average(res_t[i], weights=wv[i]) for i in parts])
+        kc = kb - np.average(kb, weights=wb)
+        sxx_b = float(np.sum(wb * kc * kc))
+        e = rb - np.average(rb, weights=wb) - kc * (float(np.sum(wb * kc * rb)) / sxx_b)
+        var_bm = float(np.sum(wb * e * e)) / (nb - 2) / sxx_b
         if var_bm > BATCH_VIEW_F * var_b:
             var_b = var_bm
             n_eff = float(nb)
@@ -316,22 +329,14 @@ def _shift_cuts(k: np.ndarray, t: np.ndarray, z: float, max_shifts: int, window:
     order = np.argsort(k, kind="stable")
     k, t = k[order], t[order]
     # outliers (a slipped ring cycle moves a step by a whole period) out first, as in fit_rate
-    keep = np.ones(len(k), dtype=bool)
-    for _ in range(3):
-        b, a, c_p, r = _lsq(k[keep], t[keep], pol)
-        s_r = 1.4826 * float(np.median(np.abs(r - np.median(r))))
-        full = t - (a + b * k + c_p * ((k % 2) - 0.5))
-        new = np.abs(full - np.median(full[keep])) <= max(5 * s_r, 1e-9)
-        if new.sum() < 2 * window or np.array_equal(new, keep):
-            break
-        keep = new
+    keep = _inliers(k, t, pol, min_keep=2 * window)
     k, t = k[keep], t[keep]
     n = len(k)
     cuts: list[int] = []  # a new stretch starts at these positions
     for _ in range(max_shifts):
         g = np.searchsorted(np.array(cuts, dtype=np.int64), np.arange(n), side="right") if cuts else None
         res = _lsq(k, t, pol, g)[3]
-        sig = 1.4826 * float(np.median(np.abs(np.diff(res)))) / math.sqrt(2.0)
+        sig = _diff_sigma(res)
         if not sig > 0:
             break
         # slips of a ring cycle and other outliers would dominate a cumulative sum: held at 5 sigma
@@ -378,7 +383,7 @@ def stretch_weights(steps: np.ndarray, times_s: np.ndarray, groups: np.ndarray) 
     k = np.asarray(steps, dtype=np.float64)
     t = np.asarray(times_s, dtype=np.float64)
     g = np.asarray(groups)
-    pol = len(np.unique(k % 2)) == 2 and not all(len(np.unique(k[g == v] % 2)) == 1 for v in np.unique(g))
+    pol = len(np.unique(k % 2)) == 2 and not _one_polarity_groups(k, g)
     out = np.ones(len(k))
     for _ in range(2):
         res = _lsq(k, t, pol, g, np.sqrt(out / out.mean()))[3]
@@ -387,7 +392,7 @@ def stretch_weights(steps: np.ndarray, times_s: np.ndarray, groups: np.ndarray) 
             sel = np.flatnonzero(g == v)
             sel = sel[np.argsort(k[sel], kind="stable")]
             if len(sel) >= 8:
-                sig[v] = 1.4826 * float(np.median(np.abs(np.diff(res[sel])))) / math.sqrt(2.0)
+                sig[v] = _diff_sigma(res[sel])
         med = float(np.median(list(sig.values()))) if sig else 1.0
         if not med > 0:
             return np.ones(len(k))

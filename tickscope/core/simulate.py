@@ -5,8 +5,9 @@ case).  Every onset is placed at an exact, fractional-sample time: the waveform 
 evaluated analytically at each sample instant, never rounded to a sample.  On top
 of the movement the simulator adds what real recordings do: noise (white or pink)
 at a stated SNR, mains hum, knocks and speech-like bursts, a second impact on each
-step, tick-to-tick variation, beats that do not repeat (a rattle of random impacts), room reverberation, a phone's automatic gain control
-or noise gate, clipping, a second clock in the room, and an audio-clock offset.
+step, tick-to-tick variation, beats that do not repeat (a rattle of random impacts),
+room reverberation, a phone's automatic gain control or noise gate, clipping, a second
+clock in the room, and an audio-clock offset.
 Lossy encoding happens where the file is written (:mod:`tickscope.io.simfile`).
 
 Everything here is pure: a :class:`Scenario` in, arrays and a truth dict out.

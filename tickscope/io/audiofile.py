@@ -12,6 +12,7 @@ import math
 import os
 import shutil
 import subprocess
+import threading
 from collections.abc import Iterator
 from dataclasses import dataclass
 
@@ -117,6 +118,10 @@ def _probe_ffmpeg(path: str, why: str) -> FileInfo:
     return FileInfo(path, rate, channels, int(round(dur * rate)), FFMPEG_FORMAT, str(st.get("codec_name", "?")))
 
 
+class _FfmpegFailed(Exception):
+    """ffmpeg exited with an error (its last line of stderr)."""
+
+
 def _ffmpeg_frames(path: str, info: FileInfo, block_frames: int) -> Iterator[np.ndarray]:
     """Decode with ffmpeg: float32 arrays of shape (frames, channels), block_frames at a time."""
     cmd = ["ffmpeg", "-v", "error", "-nostdin", "-i", path, "-map", "0:a:0", "-vn", "-f", "f32le",
@@ -126,8 +131,6 @@ def _ffmpeg_frames(path: str, info: FileInfo, block_frames: int) -> Iterator[np.
     except OSError as e:
         raise InputError(f"{path}: cannot start ffmpeg ({e})") from e
     # stderr is drained by a thread, so a chatty decoder can never block the pipe we read
-    import threading
-
     err: list[bytes] = []
     t = threading.Thread(target=lambda: err.append(proc.stderr.read()), daemon=True)
     t.start()
@@ -153,10 +156,6 @@ def _ffmpeg_frames(path: str, info: FileInfo, block_frames: int) -> Iterator[np.
             proc.kill()
             proc.wait()
         proc.stdout.close()
-
-
-class _FfmpegFailed(Exception):
-    pass
 
 
 def _short(e: Exception) -> str:
