@@ -819,7 +819,7 @@ def build_parser() -> argparse.ArgumentParser:
     a = sub.add_parser("analyze", help="analyze a saved recording (default: the bundled demo recording)",
                        description="Find every step in a recording, fit the daily rate with a 95 % interval, "
                        "count missed steps and measure each step's ring-down.")
-    a.add_argument("path", nargs="?", help="audio file (WAV, FLAC, OGG, MP3, ...); omitted: the bundled demo")
+    a.add_argument("path", nargs="?", help="audio file (WAV, FLAC, Ogg Vorbis or Opus, MP3, ...; a phone's .m4a and what else ffmpeg decodes, where installed); omitted: the bundled demo")
     a.add_argument("--channel", type=int, default=None, help="channel to analyze (default: the clearest)")
     a.add_argument("--clock-ppm", type=parse_ppm, default=None, metavar="X[+-U]",
                    help="the recording device's clock runs fast by X ppm (95 %% uncertainty U); the rate is corrected")
