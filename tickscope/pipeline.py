@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import statistics
-from collections import deque
 
 import numpy as np
 
@@ -18,6 +16,7 @@ from .core.detect import DetectorConfig, ImpactDetector
 from .core.grid import StepTracker, TrackerConfig
 from .core import diagnose as dg
 from .core import dsp
+from .core.dsp import RollingWindow
 from .core.rate import fit_rate, level_shifts, residuals_s, stretch_weights
 from .errors import ParameterError
 from .model import FLAG_BITS, Block, Event, RateEstimate, RingDownStats, Summary, flag_bits
@@ -112,7 +111,7 @@ class Analyzer:
         self.n_secondary = 0
         self.n_clipped = 0
         self.gaps: list[tuple[float, float]] = []
-        self._decays = {0: deque(maxlen=200), 1: deque(maxlen=200)}
+        self._decays = {0: RollingWindow(200), 1: RollingWindow(200)}
         self._hum_buf: list[np.ndarray] = []
         self._hum_n = 0
         self._finished = False
@@ -183,10 +182,8 @@ class Analyzer:
                 if math.isfinite(d) and d > 0:
                     ld = math.log(d)
                     if len(dq) >= 20:
-                        # median and MAD on plain floats: for 200 values sorting in Python is
-                        # several times cheaper than the numpy calls
-                        med = statistics.median(dq)
-                        mad = 1.4826 * statistics.median([abs(v - med) for v in dq])
+                        med = dq.median()
+                        mad = 1.4826 * dq.median_abs_deviation(med)
                         if abs(ld - med) > max(5 * mad, math.log(1.5)):
                             flags = flags + ("ringdown",)
                     dq.append(ld)

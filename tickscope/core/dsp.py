@@ -7,6 +7,8 @@ tests/test_dsp.py).
 from __future__ import annotations
 
 import math
+from bisect import bisect_left, insort
+from collections import deque
 
 import numpy as np
 
@@ -47,6 +49,78 @@ def line_fit(x: np.ndarray, y: np.ndarray) -> tuple[float, float]:
     dx = x - xm
     b = float(np.dot(dx, y - ym) / np.dot(dx, dx))
     return b, float(ym - b * xm)
+
+
+class RollingWindow:
+    """The last ``maxlen`` values, kept in arrival order and in sorted order, so that the median
+    and the median absolute deviation of a running window cost a few binary searches rather
+    than a sort per value (the same numbers as ``statistics.median`` on the window)."""
+
+    def __init__(self, maxlen: int):
+        self.maxlen = maxlen
+        self._fifo: deque = deque()
+        self._sorted: list[float] = []
+
+    def __len__(self) -> int:
+        return len(self._fifo)
+
+    def __iter__(self):
+        return iter(self._fifo)
+
+    def append(self, v: float) -> None:
+        if len(self._fifo) == self.maxlen:
+            old = self._fifo.popleft()
+            del self._sorted[bisect_left(self._sorted, old)]
+        self._fifo.append(v)
+        insort(self._sorted, v)
+
+    def median(self) -> float:
+        s = self._sorted
+        n = len(s)
+        if not n:
+            raise ValueError("median of an empty window")
+        return s[n // 2] if n % 2 else (s[n // 2 - 1] + s[n // 2]) / 2
+
+    def median_abs_deviation(self, center: float) -> float:
+        """The median of |v - center| over the window (unscaled)."""
+        s = self._sorted
+        n = len(s)
+        if not n:
+            raise ValueError("median of an empty window")
+        if n % 2:
+            return self._kth_deviation(center, n // 2)
+        return (self._kth_deviation(center, n // 2 - 1) + self._kth_deviation(center, n // 2)) / 2
+
+    def _kth_deviation(self, c: float, k: int) -> float:
+        """The k-th smallest (from 0) of |v - c|: the deviations below c and those at or above it
+        are two sorted runs; the k-th of their union by bisection on how many come from the first."""
+        s = self._sorted
+        idx = bisect_left(s, c)
+        n_lo, n_hi = idx, len(s) - idx
+
+        def lo(i):  # i-th smallest deviation among values below c
+            return c - s[idx - 1 - i]
+
+        def hi(j):  # j-th smallest deviation among values at or above c
+            return s[idx + j] - c
+
+        # take i from the low run and k + 1 - i from the high run
+        a, b = max(0, k + 1 - n_hi), min(k + 1, n_lo)
+        while a < b:
+            i = (a + b) // 2
+            j = k + 1 - i
+            # too few from the low run when its next value is below the high run's last taken
+            if j > 0 and i < n_lo and lo(i) < hi(j - 1):
+                a = i + 1
+            else:
+                b = i
+        i, j = a, k + 1 - a
+        best = -math.inf
+        if i > 0:
+            best = lo(i - 1)
+        if j > 0:
+            best = max(best, hi(j - 1))
+        return best
 
 
 def sos_power_response(sos: np.ndarray, nfft: int) -> np.ndarray:

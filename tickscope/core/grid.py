@@ -24,7 +24,7 @@ import numpy as np
 
 from ..model import Event
 from .detect import Impact
-from .dsp import line_fit
+from .dsp import RollingWindow, line_fit
 from .ringdown import measure_ringdown
 from .timing import FIRST_IMPACT_PEAK_S, Template, envelope_lag, learn_template, match, match_many, onset_of
 
@@ -191,9 +191,9 @@ class StepTracker:
         self._last_step_t = -math.inf
         self._gaps: list[tuple[float, float]] = []
         self._next_try_s = -math.inf
-        self._peaks: deque = deque(maxlen=64)  # levels of recent steps (what a normal step sounds like)
+        self._peaks = RollingWindow(64)  # levels of recent steps (what a normal step sounds like)
         self._offgrid: deque = deque(maxlen=64)  # (time, peak) of recent rejected sounds (the noise's blips)
-        self._pol_res = {0: deque(maxlen=32), 1: deque(maxlen=32)}  # each polarity's offset from the line
+        self._pol_res = {0: RollingWindow(32), 1: RollingWindow(32)}  # each polarity's offset from the line
         # how well the sounds on the grid repeat: slots that held any sound, those whose sound
         # matched the step templates well, and the first sound's offset from the prediction
         # per polarity (count, sum, sum of squares; s)
@@ -493,7 +493,7 @@ class StepTracker:
         # then send a stronger correction pulse 10-80 ms later.  A hand's bounce on every
         # step is not this: it follows a step that sounded normal.
         failed = correction = None
-        typical = statistics.median(self._peaks) if len(self._peaks) >= 8 else None
+        typical = self._peaks.median() if len(self._peaks) >= 8 else None
         # a twitching rotor sounds on the grid (the drive pulse is on time): within twitch_s
         # (our reasoning from how the circuit drives the motor; no published tolerance)
         twitch_s = cfg.twitch_s
@@ -588,7 +588,7 @@ class StepTracker:
     def _pol_offset(self, k: int) -> float:
         """How far the steps of slot k's polarity have sounded from the tracking line lately (s)."""
         res = self._pol_res[k % 2]
-        return statistics.median(res) if len(res) >= 4 else 0.0
+        return res.median() if len(res) >= 4 else 0.0
 
     def _stands_out(self, o: _Open, pred: float) -> bool:
         """Whether a weak sound at a slot stands above the off-grid sounds of the second around it.
