@@ -63,3 +63,25 @@ def test_fast_len():
             while f % q == 0:
                 f //= q
         assert f == 1
+
+
+def test_rolling_window_median_and_mad_equal_statistics_median():
+    # the running window kept sorted must give exactly what statistics.median gives (ties, even
+    # and odd counts, a center that is not the median)
+    import random
+    import statistics
+
+    from tickscope.core.dsp import RollingWindow
+
+    rnd = random.Random(3)
+    for maxlen in (1, 2, 5, 32, 200):
+        w, ref = RollingWindow(maxlen), []
+        for _ in range(400):
+            v = rnd.choice([rnd.random(), round(rnd.random(), 1), float(rnd.randint(-2, 2))])
+            w.append(v)
+            ref = (ref + [v])[-maxlen:]
+            assert list(w) == ref and len(w) == len(ref)
+            med = statistics.median(ref)
+            assert w.median() == med
+            for c in (med, rnd.random()):
+                assert w.median_abs_deviation(c) == statistics.median([abs(x - c) for x in ref])

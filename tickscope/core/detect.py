@@ -24,7 +24,7 @@ from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
-from . import dsp
+from . import dsp, kernels
 
 from ..errors import ParameterError
 
@@ -223,26 +223,23 @@ class ImpactDetector:
             if hi > lo:
                 out[lo - a: hi - a] = piece[lo - start: hi - start]
 
-    def _frame_energy(self, x: np.ndarray, prev: np.ndarray, lag: int) -> np.ndarray:
-        """Mean power per frame of x[n] - x[n-lag] (prev holds the samples before x)."""
-        hop = self.hop
-        d = np.empty(len(x), dtype=np.float32)
-        if lag < len(x):
-            np.subtract(x[lag:], x[:-lag], out=d[lag:])
+    def _frame_energy(self, x: np.ndarray, prev: np.ndarray, lag: int) -> tuple[np.ndarray, float, float, float]:
+        """Mean power per frame of x[n] - x[n-lag] (prev holds the samples before x); and the
+        largest, smallest and summed sample of x (one pass: ``kernels.frame_energy``)."""
         # before the first sample the signal is taken to have been constant (no jump at the start)
-        fill = prev[0] if len(prev) else (x[0] if len(x) else 0.0)
-        head = np.concatenate([np.full(max(0, lag - len(prev)), fill, dtype=np.float32), prev[-lag:] if len(prev) else prev])
-        m = min(lag, len(x))
-        d[:m] = x[:m] - head[:m]
-        f = d[: (len(x) // hop) * hop].reshape(-1, hop)
-        return np.einsum("ij,ij->i", f, f).astype(np.float64) / hop
+        if len(prev) >= lag:
+            head = prev[-lag:]
+        else:
+            fill = prev[0] if len(prev) else (x[0] if len(x) else 0.0)
+            head = np.concatenate([np.full(lag - len(prev), fill, dtype=np.float32), prev])
+        return kernels.frame_energy(x, head, lag, self.hop)
 
     def _tune(self, x: np.ndarray) -> None:
         """Choose the difference lag under which the loudest moments stand out most."""
         x = x[: int(self.cfg.tune_s * self.samplerate)]  # the same audio whatever the block sizes
         best, best_lag = -np.inf, 1
         for lag in self.lag_choices:
-            e = self._frame_energy(x, np.zeros(0, dtype=np.float32), lag)[lag // self.hop + 1:]
+            e = self._frame_energy(x, np.zeros(0, dtype=np.float32), lag)[0][lag // self.hop + 1:]
             if len(e) < 4 * self.nsum:
                 continue
             s = np.convolve(e, np.ones(self.nsum), mode="valid")
@@ -252,16 +249,16 @@ class ImpactDetector:
             if contrast > best * 1.05:  # prefer short lags unless a longer one is clearly better
                 best, best_lag = contrast, lag
         self.lag = best_lag
-        self.whitener = _noise_whitener(x, self._frame_energy(x, np.zeros(0, dtype=np.float32), best_lag),
+        self.whitener = _noise_whitener(x, self._frame_energy(x, np.zeros(0, dtype=np.float32), best_lag)[0],
                                         self.hop, self.samplerate)
         # the whitening FIR is causal: its spectrum times the zero-phase high-pass
         self._wh_resp = self._hp_resp * np.fft.rfft(self.whitener, self._nfft)
 
     def _process_chunk(self, x: np.ndarray) -> list[Impact]:
         n0 = self._consumed
-        self.max_abs = max(self.max_abs, float(x.max()), -float(x.min()))
-        self.sum_x += float(np.sum(x))  # float32 pairwise within the chunk, float64 across chunks
-        e = self._frame_energy(x, self._tail, self.lag)
+        e, x_max, x_min, x_sum = self._frame_energy(x, self._tail, self.lag)
+        self.max_abs = max(self.max_abs, x_max, -x_min)
+        self.sum_x += x_sum
         self._tail = np.concatenate([self._tail, x])[-self.lag:] if self.lag > len(x) else x[-self.lag:].copy()
         P = len(self._prev_frames)
         ext = np.concatenate([self._prev_frames, e])
@@ -364,7 +361,10 @@ class ImpactDetector:
         stacked rows: the same numbers as one at a time, with less overhead per impact).
         """
         n = self.pre + self.post
-        raw = np.zeros((len(ready), n), dtype=np.float64)
+        # cut straight into rows as long as the FFT (the zeros are its padding; an FFT asked to
+        # pad for itself copies each row first, costing as much as the transform)
+        padded = np.zeros((len(ready), self._nfft), dtype=np.float64)
+        raw = padded[:, :n]
         trunc = []
         end = self._raw_end()
         for i, (onset, _) in enumerate(ready):
@@ -393,8 +393,8 @@ class ImpactDetector:
         # zero-phase high-pass and whitening in one spectrum; the 6 ms before the onset absorb
         # the start-up transient (the pre-onset mean is removed first, so a DC offset cannot
         # ring the filter)
-        base = raw - raw[:, : max(1, self.pre // 2)].mean(axis=1, keepdims=True)
-        X = np.fft.rfft(base, self._nfft, axis=1)
+        raw -= raw[:, : max(1, self.pre // 2)].mean(axis=1, keepdims=True)
+        X = np.fft.rfft(padded, axis=1)
         hp = np.fft.irfft(X * self._hp_resp, self._nfft, axis=1)[:, :n]
         wh = np.fft.irfft(X * self._wh_resp, self._nfft, axis=1)[:, :n] if len(self.whitener) > 1 else hp
         return [Impact(onset_sample=onset, peak_dbfs=20 * math.log10(max(float(peak[i]), 1e-12)),

@@ -17,6 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..units import DB_PER_NEPER
+from . import kernels
 
 
 @dataclass(frozen=True)
@@ -50,6 +51,18 @@ def measure_ringdown(x: np.ndarray, samplerate: float, *, noise_power: float = 0
     -------
     RingDown
     """
+    if kernels.compiled():  # the same method in C (``_kernels.c``); this function is its reference
+        got = kernels.ringdown_line(x, samplerate, noise_power, start_db, stop_db, min_range_db, margin_db)
+        if got is None:
+            return RingDown(float("nan"), 0.0, float("nan"))
+        slope, range_db, rms = got
+        return RingDown(float(-DB_PER_NEPER / slope * 1e3), range_db, rms)
+    return _measure_ringdown_numpy(x, samplerate, noise_power=noise_power, start_db=start_db, stop_db=stop_db,
+                                   min_range_db=min_range_db, margin_db=margin_db)
+
+
+def _measure_ringdown_numpy(x: np.ndarray, samplerate: float, *, noise_power: float, start_db: float,
+                            stop_db: float, min_range_db: float, margin_db: float) -> RingDown:
     x = np.asarray(x, dtype=np.float64)
     nan = RingDown(float("nan"), 0.0, float("nan"))
     if len(x) < 16:

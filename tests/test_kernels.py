@@ -1,0 +1,86 @@
+"""The compiled loops (tickscope/core/_kernels.c) against their numpy reference versions."""
+import os
+
+import numpy as np
+import pytest
+
+from tickscope.core import kernels
+from tickscope.core.ringdown import _measure_ringdown_numpy, measure_ringdown
+
+needs_compiled = pytest.mark.skipif(not kernels.compiled() and not os.environ.get("KERNELS_REQUIRED"),
+                                    reason="the compiled module was not built (no C compiler at install time)")
+
+
+def test_compiled_module_is_built_where_ci_requires_it():
+    # CI installs with a compiler: a C file that stopped compiling must fail there, not fall back quietly
+    if os.environ.get("KERNELS_REQUIRED") and not os.environ.get("TICKSCOPE_PURE_NUMPY"):
+        assert kernels.compiled()
+
+
+@needs_compiled
+@pytest.mark.parametrize("hop,lag,n", [(24, 7, 48000), (4, 1, 4003), (22, 31, 10), (48, 5, 0), (24, 24, 24 * 5 + 3)])
+def test_frame_energy_matches_numpy(hop, lag, n):
+    rng = np.random.default_rng(hop * 1000 + lag)
+    x = (rng.standard_normal(n) * rng.uniform(0.01, 1)).astype(np.float32)
+    x[n // 3: n // 3 + 5] = 0.9  # a loud stretch
+    head = rng.standard_normal(lag).astype(np.float32)
+    e_c, mx_c, mn_c, s_c = kernels.frame_energy(x, head, lag, hop)
+    e_n, mx_n, mn_n, s_n = kernels.frame_energy(x, head, lag, hop, use_compiled=False)
+    assert e_c.shape == e_n.shape == (n // hop,)
+    np.testing.assert_allclose(e_c, e_n, rtol=2e-6, atol=0)  # float32 sums in another order
+    if n:
+        assert (mx_c, mn_c) == (mx_n, mn_n) == (float(x.max()), float(x.min()))
+        assert s_c == pytest.approx(float(np.sum(x, dtype=np.float64)), rel=1e-5, abs=1e-3)
+
+
+def test_frame_energy_numpy_reference_by_hand():
+    # the definition, written out: frame f = mean of (x[n] - x[n-lag])^2 over its hop samples
+    x = np.array([1, 2, 4, 8, 16, 32, 64], dtype=np.float32)
+    head = np.array([0.5, 0.25], dtype=np.float32)  # the two samples before x (lag 2)
+    for use in (False, True):
+        if use and not kernels.compiled():
+            continue
+        e, mx, mn, s = kernels.frame_energy(x, head, 2, 3, use_compiled=use)
+        d = [1 - 0.5, 2 - 0.25, 4 - 1, 8 - 2, 16 - 4, 32 - 8]
+        assert e.tolist() == pytest.approx([sum(v * v for v in d[:3]) / 3, sum(v * v for v in d[3:]) / 3])
+        assert (mx, mn, s) == (64.0, 1.0, 127.0)
+
+
+@needs_compiled
+def test_ringdown_matches_numpy():
+    rng = np.random.default_rng(7)
+    measured = 0
+    for i in range(600):
+        n = int(rng.integers(10, 6000))
+        fs = float(rng.choice([8000, 44100, 48000, 96000]))
+        t = np.arange(n) / fs
+        tau_s = rng.uniform(0.001, 0.05)
+        x = np.exp(-t / tau_s) * np.sin(2 * np.pi * rng.uniform(300, 4000) * t) * rng.uniform(0.01, 1)
+        noise = rng.uniform(0, 1e-3) ** 2
+        x = x + rng.standard_normal(n) * np.sqrt(noise) * rng.uniform(0, 2)
+        npw = noise if i % 3 else 0.0
+        ref = _measure_ringdown_numpy(x, fs, noise_power=npw, start_db=-3.0, stop_db=-25.0, min_range_db=8.0,
+                                      margin_db=10.0)
+        got = measure_ringdown(x, fs, noise_power=npw)
+        if np.isnan(ref.decay_ms):
+            assert np.isnan(got.decay_ms) and got.fit_range_db == 0.0
+            continue
+        measured += 1
+        assert got.decay_ms == pytest.approx(ref.decay_ms, rel=1e-9)
+        assert got.fit_range_db == pytest.approx(ref.fit_range_db, rel=1e-9, abs=1e-9)
+        assert got.fit_rms_db == pytest.approx(ref.fit_rms_db, rel=1e-6, abs=1e-9)
+    assert measured > 400  # most of these decays are measurable
+
+
+@needs_compiled
+def test_kernels_reject_wrong_buffers():
+    from tickscope.core import _kernels
+
+    x = np.zeros(100, dtype=np.float32)
+    with pytest.raises(ValueError):
+        _kernels.frame_energy(x, np.zeros(3, dtype=np.float32), 2, 10, np.empty(10))  # head != lag
+    with pytest.raises(ValueError):
+        _kernels.frame_energy(x, np.zeros(2, dtype=np.float32), 2, 10, np.empty(9))  # out too short
+    with pytest.raises(ValueError):
+        _kernels.frame_energy(x, np.zeros(2, dtype=np.float32), 0, 10, np.empty(10))  # lag 0
+    assert _kernels.ringdown(np.zeros(5), 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0) is None  # too short

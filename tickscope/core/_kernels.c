@@ -1,0 +1,289 @@
+/*
+ * tickscope.core._kernels: the two per-sample loops of the analysis written once in C.
+ *
+ * Each has a numpy twin in tickscope/core/kernels.py that is the reference (used when this
+ * module was not built); tests/test_kernels.py checks that both give the same numbers.
+ * Arrays come in through the buffer protocol (no numpy headers are needed to build).
+ *
+ *   frame_energy(x, head, lag, hop, out) -> (max, min, sum)
+ *       out[f] = mean over frame f (hop samples) of (x[n] - x[n - lag])^2, where the lag
+ *       samples before x are head; also the largest, smallest and summed sample of x.
+ *   ringdown(x, samplerate, noise_power, start_db, stop_db, min_range_db, margin_db)
+ *       -> (slope_db_per_s, fit_range_db, fit_rms_db) or None
+ *       Schroeder's backward-integrated decay curve and a line through it in dB
+ *       (see measure_ringdown in ringdown.py for the method and its sources).
+ */
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+#include <math.h>
+#include <stdlib.h>
+
+static int
+get_buffer(PyObject *obj, Py_buffer *view, int writable, Py_ssize_t itemsize, const char *what)
+{
+    if (PyObject_GetBuffer(obj, view, (writable ? PyBUF_WRITABLE : 0) | PyBUF_C_CONTIGUOUS) < 0)
+        return -1;
+    if (view->len % itemsize) {
+        PyBuffer_Release(view);
+        PyErr_Format(PyExc_ValueError, "%s: buffer length is not a multiple of %zd bytes", what, itemsize);
+        return -1;
+    }
+    return 0;
+}
+
+static PyObject *
+frame_energy(PyObject *self, PyObject *args)
+{
+    PyObject *xo, *ho, *oo;
+    Py_ssize_t lag, hop;
+    Py_buffer xb, hb, ob;
+    if (!PyArg_ParseTuple(args, "OOnnO", &xo, &ho, &lag, &hop, &oo))
+        return NULL;
+    if (lag < 1 || hop < 1) {
+        PyErr_SetString(PyExc_ValueError, "lag and hop must be positive");
+        return NULL;
+    }
+    if (get_buffer(xo, &xb, 0, sizeof(float), "x") < 0)
+        return NULL;
+    if (get_buffer(ho, &hb, 0, sizeof(float), "head") < 0) {
+        PyBuffer_Release(&xb);
+        return NULL;
+    }
+    if (get_buffer(oo, &ob, 1, sizeof(double), "out") < 0) {
+        PyBuffer_Release(&xb);
+        PyBuffer_Release(&hb);
+        return NULL;
+    }
+    const float *x = (const float *)xb.buf;
+    const float *h = (const float *)hb.buf;
+    double *out = (double *)ob.buf;
+    Py_ssize_t n = xb.len / (Py_ssize_t)sizeof(float);
+    Py_ssize_t nh = hb.len / (Py_ssize_t)sizeof(float);
+    Py_ssize_t nf = ob.len / (Py_ssize_t)sizeof(double);
+    if (nh != lag || nf != n / hop) {
+        PyBuffer_Release(&xb);
+        PyBuffer_Release(&hb);
+        PyBuffer_Release(&ob);
+        PyErr_SetString(PyExc_ValueError, "head must hold lag samples and out n // hop frames");
+        return NULL;
+    }
+    /* eight lanes side by side, so that the compiler can use vector instructions without
+       reordering any one lane's sums */
+    enum { W = 8 };
+    float mxl[W], mnl[W];
+    for (int l = 0; l < W; l++) {
+        mxl[l] = -INFINITY;
+        mnl[l] = INFINITY;
+    }
+    double sum = 0.0;
+    float mx, mn;
+    Py_BEGIN_ALLOW_THREADS
+    for (Py_ssize_t f = 0; f < nf; f++) {
+        const Py_ssize_t i0 = f * hop;
+        float acc[W] = {0}, s[W] = {0};
+        Py_ssize_t j = 0;
+        if (i0 >= lag) {
+            for (; j + W <= hop; j += W) {
+                const float *xi = x + i0 + j, *xp = x + i0 + j - lag;
+                for (int l = 0; l < W; l++) {
+                    const float v = xi[l], d = v - xp[l];
+                    acc[l] += d * d;
+                    s[l] += v;
+                    mxl[l] = v > mxl[l] ? v : mxl[l];
+                    mnl[l] = v < mnl[l] ? v : mnl[l];
+                }
+            }
+        }
+        for (; j < hop; j++) {
+            const Py_ssize_t i = i0 + j;
+            const float v = x[i], d = v - (i >= lag ? x[i - lag] : h[i]);
+            acc[0] += d * d;
+            s[0] += v;
+            mxl[0] = v > mxl[0] ? v : mxl[0];
+            mnl[0] = v < mnl[0] ? v : mnl[0];
+        }
+        float a = 0.0f, t = 0.0f;
+        for (int l = 0; l < W; l++) {
+            a += acc[l];
+            t += s[l];
+        }
+        out[f] = (double)a / (double)hop;
+        sum += (double)t;
+    }
+    for (Py_ssize_t i = nf * hop; i < n; i++) {
+        const float v = x[i];
+        sum += (double)v;
+        mxl[0] = v > mxl[0] ? v : mxl[0];
+        mnl[0] = v < mnl[0] ? v : mnl[0];
+    }
+    mx = mxl[0];
+    mn = mnl[0];
+    for (int l = 1; l < W; l++) {
+        mx = mxl[l] > mx ? mxl[l] : mx;
+        mn = mnl[l] < mn ? mnl[l] : mn;
+    }
+    Py_END_ALLOW_THREADS
+    PyBuffer_Release(&xb);
+    PyBuffer_Release(&hb);
+    PyBuffer_Release(&ob);
+    if (n == 0)
+        return Py_BuildValue("ddd", 0.0, 0.0, 0.0);
+    return Py_BuildValue("ddd", (double)mx, (double)mn, sum);
+}
+
+/* number of elements of the non-decreasing a[0..m) that are <= level */
+static Py_ssize_t
+count_at_or_below(const double *a, Py_ssize_t m, double level)
+{
+    Py_ssize_t lo = 0, hi = m;
+    while (lo < hi) {
+        Py_ssize_t mid = lo + (hi - lo) / 2;
+        if (a[mid] <= level)
+            lo = mid + 1;
+        else
+            hi = mid;
+    }
+    return lo;
+}
+
+static PyObject *
+ringdown(PyObject *self, PyObject *args)
+{
+    PyObject *xo;
+    double fs, noise, start_db, stop_db, min_range_db, margin_db;
+    Py_buffer xb;
+    if (!PyArg_ParseTuple(args, "Odddddd", &xo, &fs, &noise, &start_db, &stop_db, &min_range_db, &margin_db))
+        return NULL;
+    if (get_buffer(xo, &xb, 0, sizeof(double), "x") < 0)
+        return NULL;
+    const double *x = (const double *)xb.buf;
+    const Py_ssize_t n = xb.len / (Py_ssize_t)sizeof(double);
+    int ok = 0;
+    double slope = 0.0, range_db = 0.0, rms = 0.0;
+    double *work = NULL;
+    if (n >= 16) {
+        work = (double *)malloc(sizeof(double) * (size_t)(3 * n + 1));
+        if (!work) {
+            PyBuffer_Release(&xb);
+            return PyErr_NoMemory();
+        }
+    }
+    Py_BEGIN_ALLOW_THREADS
+    if (work) {
+        double *e = work, *cs = work + n, *rev = work + 2 * n + 1;
+        Py_ssize_t k = (Py_ssize_t)(0.0005 * fs);
+        if (k < 1)
+            k = 1;
+        const Py_ssize_t h = (k - 1) / 2, lo_start = k - 1 - h;
+        cs[0] = 0.0;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            e[i] = x[i] * x[i];
+            cs[i + 1] = cs[i] + e[i];
+        }
+        /* the envelope's peak: a centred moving average over k samples (zeros outside) */
+        Py_ssize_t p = 0;
+        double peak = -INFINITY, sm_p;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            const double hi = cs[(i + h < n - 1 ? i + h : n - 1) + 1];
+            const double lo = i < lo_start ? 0.0 : cs[i - lo_start];
+            const double sm = (hi - lo) / (double)k;
+            if (sm > peak) {
+                peak = sm;
+                p = i;
+            }
+        }
+        if (peak > 0) {
+            Py_ssize_t m = n - p;
+            if (noise > 0) {
+                /* where the smoothed energy first meets the noise */
+                for (Py_ssize_t j = 0; j < n - p; j++) {
+                    const Py_ssize_t i = p + j;
+                    const double hi = cs[(i + h < n - 1 ? i + h : n - 1) + 1];
+                    const double lo = i < lo_start ? 0.0 : cs[i - lo_start];
+                    sm_p = (hi - lo) / (double)k;
+                    if (sm_p < 2.0 * noise) {
+                        Py_ssize_t b = j < 8 ? 8 : j;
+                        m = b < m ? b : m;
+                        break;
+                    }
+                }
+            }
+            /* the decay curve stored backwards (ascending) */
+            double acc = 0.0;
+            for (Py_ssize_t j = 0; j < m; j++) {
+                double v = e[p + m - 1 - j] - noise;
+                acc += v > 0.0 ? v : 0.0;
+                rev[j] = acc;
+            }
+            if (rev[m - 1] > 0) {
+                const double total = rev[m - 1];
+                for (Py_ssize_t j = 0; j < m; j++)
+                    rev[j] /= total;
+                const double snr_db = noise > 0 ? 10.0 * log10(peak / noise) : 120.0;
+                double lo_db = -(snr_db - margin_db);
+                if (stop_db > lo_db)
+                    lo_db = stop_db;
+                if (start_db - lo_db >= min_range_db) {
+                    Py_ssize_t c0 = count_at_or_below(rev, m, pow(10.0, start_db / 10.0));
+                    Py_ssize_t i0 = c0 ? m - c0 : 0;
+                    Py_ssize_t c1 = count_at_or_below(rev, m, pow(10.0, lo_db / 10.0));
+                    Py_ssize_t i1 = c1 ? m - c1 : m - 1;
+                    const Py_ssize_t nfit = i1 - i0;
+                    if (nfit >= 4) {
+                        /* least-squares line through the curve in dB over [i0, i1) */
+                        const double to_db = 10.0 / log(10.0), mid = 0.5 * (double)(nfit - 1);
+                        double sy = 0.0, scy = 0.0, y0 = 0.0, ylast = 0.0;
+                        for (Py_ssize_t t = 0; t < nfit; t++) {
+                            double r = rev[m - i0 - 1 - t];
+                            double y = log(r > 1e-30 ? r : 1e-30) * to_db;
+                            rev[m - i0 - 1 - t] = y; /* keep the dB value for the residuals */
+                            sy += y;
+                            scy += ((double)t - mid) * y;
+                            if (t == 0)
+                                y0 = y;
+                            ylast = y;
+                        }
+                        const double nf = (double)nfit;
+                        const double sl = scy * 12.0 / (nf * (nf * nf - 1.0)); /* dB per sample */
+                        if (sl < 0) {
+                            const double mean = sy / nf;
+                            double ss = 0.0;
+                            for (Py_ssize_t t = 0; t < nfit; t++) {
+                                double r = rev[m - i0 - 1 - t] - mean - sl * ((double)t - mid);
+                                ss += r * r;
+                            }
+                            ok = 1;
+                            slope = sl * fs;
+                            range_db = y0 - ylast;
+                            rms = sqrt(ss / nf);
+                        }
+                    }
+                }
+            }
+        }
+    }
+    Py_END_ALLOW_THREADS
+    free(work);
+    PyBuffer_Release(&xb);
+    if (!ok)
+        Py_RETURN_NONE;
+    return Py_BuildValue("ddd", slope, range_db, rms);
+}
+
+static PyMethodDef methods[] = {
+    {"frame_energy", frame_energy, METH_VARARGS,
+     "frame_energy(x, head, lag, hop, out) -> (max, min, sum): per-frame mean power of x[n] - x[n-lag]."},
+    {"ringdown", ringdown, METH_VARARGS,
+     "ringdown(x, samplerate, noise_power, start_db, stop_db, min_range_db, margin_db) -> "
+     "(slope_db_per_s, fit_range_db, fit_rms_db) or None."},
+    {NULL, NULL, 0, NULL},
+};
+
+static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels",
+                                    "Compiled per-sample loops of tickscope's analysis (see kernels.py).", -1, methods};
+
+PyMODINIT_FUNC
+PyInit__kernels(void)
+{
+    return PyModule_Create(&module);
+}
