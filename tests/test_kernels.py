@@ -84,3 +84,26 @@ def test_kernels_reject_wrong_buffers():
     with pytest.raises(ValueError):
         _kernels.frame_energy(x, np.zeros(2, dtype=np.float32), 0, 10, np.empty(10))  # lag 0
     assert _kernels.ringdown(np.zeros(5), 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0) is None  # too short
+
+
+@needs_compiled
+@pytest.mark.parametrize("nfft", [64, 512, 2048])
+def test_newton_peaks_matches_numpy(nfft):
+    from tickscope.core.timing import _newton_peaks
+
+    rng = np.random.default_rng(nfft)
+    rows = 25
+    x = rng.standard_normal((rows, nfft // 2))
+    t = rng.standard_normal(nfft // 4)
+    C = np.fft.rfft(x, nfft, axis=1) * np.conj(np.fft.rfft(t, nfft))
+    c = np.fft.irfft(C, nfft, axis=1)
+    tau0 = np.argmax(c, axis=1) + rng.uniform(-0.45, 0.45, rows)
+    tau0[0] = np.argmin(c[0])  # a minimum: Newton must stop there at once (not concave)
+    for iters in (1, 3, 6):
+        got = _newton_peaks(C, nfft, tau0, iters)
+        ref = _newton_peaks(C, nfft, tau0, iters, use_compiled=False)
+        np.testing.assert_allclose(got[0], ref[0], rtol=0, atol=1e-9)
+        np.testing.assert_allclose(got[1], ref[1], rtol=1e-9, atol=1e-12)
+    assert got[0][0] == tau0[0]
+    # and a peak really was found: the correlation at the refined lag beats the integer samples
+    assert np.all(got[1][1:] >= c[np.arange(1, rows), np.argmax(c, axis=1)[1:]] - 1e-9)

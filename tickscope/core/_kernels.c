@@ -8,6 +8,9 @@
  *   frame_energy(x, head, lag, hop, out) -> (max, min, sum)
  *       out[f] = mean over frame f (hop samples) of (x[n] - x[n - lag])^2, where the lag
  *       samples before x are head; also the largest, smallest and summed sample of x.
+ *   newton_peaks(C, tau, val, w, w1, w2, nfft, iters)
+ *       Newton's method on the correlations whose rfft spectra are the rows of C (complex128),
+ *       each from its own start tau[r] (updated in place); val[r] the correlation there.
  *   ringdown(x, samplerate, noise_power, start_db, stop_db, min_range_db, margin_db)
  *       -> (slope_db_per_s, fit_range_db, fit_rms_db) or None
  *       Schroeder's backward-integrated decay curve and a line through it in dB
@@ -16,6 +19,9 @@
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
 #include <math.h>
+#ifndef M_PI
+#define M_PI 3.14159265358979323846
+#endif
 #include <stdlib.h>
 
 static int
@@ -129,6 +135,104 @@ frame_energy(PyObject *self, PyObject *args)
     if (n == 0)
         return Py_BuildValue("ddd", 0.0, 0.0, 0.0);
     return Py_BuildValue("ddd", (double)mx, (double)mn, sum);
+}
+
+/* sum_k wa[k] Im(C[k] z^k) and sum_k wb[k] Re(C[k] z^k), z = exp(2 pi i tau / nfft); the powers of z
+   by running products, as numpy's cumprod forms them in timing._rotate */
+static void
+rotated_sums(const double *c, Py_ssize_t nb, double tau, double nfft, const double *wa, const double *wb,
+             double *sum_im, double *sum_re)
+{
+    const double th = 2.0 * M_PI * tau / nfft;
+    const double rr = cos(th), ri = sin(th);
+    double pr = 1.0, pi = 0.0, si = 0.0, sr = 0.0;
+    for (Py_ssize_t k = 0; k < nb; k++) {
+        if (k) {
+            const double npr = pr * rr - pi * ri;
+            pi = pr * ri + pi * rr;
+            pr = npr;
+        }
+        const double a = c[2 * k], b = c[2 * k + 1];
+        const double re = a * pr - b * pi, im = a * pi + b * pr;
+        if (wa)
+            si += im * wa[k];
+        sr += re * wb[k];
+    }
+    *sum_im = si;
+    *sum_re = sr;
+}
+
+static PyObject *
+newton_peaks(PyObject *self, PyObject *args)
+{
+    PyObject *co, *to, *vo, *wo, *w1o, *w2o;
+    Py_ssize_t nfft, iters;
+    Py_buffer cb, tb, vb, wb, w1b, w2b;
+    if (!PyArg_ParseTuple(args, "OOOOOOnn", &co, &to, &vo, &wo, &w1o, &w2o, &nfft, &iters))
+        return NULL;
+    if (get_buffer(co, &cb, 0, 2 * sizeof(double), "C") < 0)
+        return NULL;
+    if (get_buffer(to, &tb, 1, sizeof(double), "tau") < 0)
+        goto fail_c;
+    if (get_buffer(vo, &vb, 1, sizeof(double), "val") < 0)
+        goto fail_t;
+    if (get_buffer(wo, &wb, 0, sizeof(double), "w") < 0)
+        goto fail_v;
+    if (get_buffer(w1o, &w1b, 0, sizeof(double), "w1") < 0)
+        goto fail_w;
+    if (get_buffer(w2o, &w2b, 0, sizeof(double), "w2") < 0)
+        goto fail_w1;
+    const Py_ssize_t rows = tb.len / (Py_ssize_t)sizeof(double);
+    const Py_ssize_t nb = wb.len / (Py_ssize_t)sizeof(double);
+    if (vb.len != tb.len || w1b.len != wb.len || w2b.len != wb.len || cb.len != rows * nb * 2 * (Py_ssize_t)sizeof(double)
+        || nfft < 1) {
+        PyErr_SetString(PyExc_ValueError, "C must hold len(tau) rows of len(w) bins; val as long as tau");
+        goto fail_w2;
+    }
+    const double *c = (const double *)cb.buf, *w = (const double *)wb.buf;
+    const double *w1 = (const double *)w1b.buf, *w2 = (const double *)w2b.buf;
+    double *tau = (double *)tb.buf, *val = (double *)vb.buf;
+    Py_BEGIN_ALLOW_THREADS
+    for (Py_ssize_t r = 0; r < rows; r++) {
+        const double *cr = c + 2 * nb * r;
+        double t = tau[r], d1, d2, unused;
+        for (Py_ssize_t it = 0; it < iters; it++) {
+            rotated_sums(cr, nb, t, (double)nfft, w1, w2, &d1, &d2);
+            d1 = -d1;
+            d2 = -d2;
+            if (!(d2 < 0))
+                break; /* past a maximum's concave part: stop there */
+            double step = -d1 / d2;
+            step = step < -0.5 ? -0.5 : (step > 0.5 ? 0.5 : step);
+            t += step;
+            if (fabs(step) < 1e-6)
+                break;
+        }
+        tau[r] = t;
+        rotated_sums(cr, nb, t, (double)nfft, NULL, w, &unused, &val[r]);
+        val[r] /= (double)nfft;
+    }
+    Py_END_ALLOW_THREADS
+    PyBuffer_Release(&w2b);
+    PyBuffer_Release(&w1b);
+    PyBuffer_Release(&wb);
+    PyBuffer_Release(&vb);
+    PyBuffer_Release(&tb);
+    PyBuffer_Release(&cb);
+    Py_RETURN_NONE;
+fail_w2:
+    PyBuffer_Release(&w2b);
+fail_w1:
+    PyBuffer_Release(&w1b);
+fail_w:
+    PyBuffer_Release(&wb);
+fail_v:
+    PyBuffer_Release(&vb);
+fail_t:
+    PyBuffer_Release(&tb);
+fail_c:
+    PyBuffer_Release(&cb);
+    return NULL;
 }
 
 /* number of elements of the non-decreasing a[0..m) that are <= level */
@@ -273,6 +377,8 @@ ringdown(PyObject *self, PyObject *args)
 static PyMethodDef methods[] = {
     {"frame_energy", frame_energy, METH_VARARGS,
      "frame_energy(x, head, lag, hop, out) -> (max, min, sum): per-frame mean power of x[n] - x[n-lag]."},
+    {"newton_peaks", newton_peaks, METH_VARARGS,
+     "newton_peaks(C, tau, val, w, w1, w2, nfft, iters): refine correlation maxima in place."},
     {"ringdown", ringdown, METH_VARARGS,
      "ringdown(x, samplerate, noise_power, start_db, stop_db, min_range_db, margin_db) -> "
      "(slope_db_per_s, fit_range_db, fit_rms_db) or None."},

@@ -58,3 +58,10 @@ def ringdown_line(x: np.ndarray, samplerate: float, noise_power: float, start_db
     Only call when :func:`compiled` is true."""
     return _c.ringdown(np.ascontiguousarray(x, dtype=np.float64), float(samplerate), float(noise_power),
                        float(start_db), float(stop_db), float(min_range_db), float(margin_db))
+
+
+def newton_peaks(C: np.ndarray, tau: np.ndarray, val: np.ndarray, w: np.ndarray, w1: np.ndarray, w2: np.ndarray,
+                 nfft: int, iters: int) -> None:
+    """The compiled Newton refinement of :func:`tickscope.core.timing._newton_peaks` (tau updated
+    and val filled in place).  Only call when :func:`compiled` is true."""
+    _c.newton_peaks(C, tau, val, w, w1, w2, int(nfft), int(iters))

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from ..errors import ParameterError
-from . import dsp
+from . import dsp, kernels
 
 
 #: the first impact's envelope peaks this soon after its coarse onset (an attack of a few ms;
@@ -92,11 +92,16 @@ def _rotate(C: np.ndarray, tau: np.ndarray, nfft: int) -> np.ndarray:
     return C * np.cumprod(ramp, axis=1)
 
 
-def _newton_peaks(C: np.ndarray, nfft: int, tau0: np.ndarray, iters: int = 6) -> tuple[np.ndarray, np.ndarray]:
+def _newton_peaks(C: np.ndarray, nfft: int, tau0: np.ndarray, iters: int = 6, *,
+                  use_compiled: bool = True) -> tuple[np.ndarray, np.ndarray]:
     """Refine the maxima of the correlations whose spectra are the rows of C (rfft bins), each
     near its own lag tau0[r].  Returns the lags and the correlation values there."""
     w, w1, w2 = _newton_weights(C.shape[1], nfft)
     tau = np.array(tau0, dtype=np.float64)
+    if use_compiled and kernels.compiled():  # the same iteration in C, row by row (``_kernels.c``)
+        val = np.empty(len(tau))
+        kernels.newton_peaks(np.ascontiguousarray(C, dtype=np.complex128), tau, val, w, w1, w2, nfft, iters)
+        return tau, val
     live = np.ones(len(tau), dtype=bool)
     for _ in range(iters):
         idx = np.flatnonzero(live)
