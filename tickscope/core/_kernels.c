@@ -235,14 +235,14 @@ fail_c:
     return NULL;
 }
 
-/* number of elements of the non-decreasing a[0..m) that are <= level */
+/* number of elements of the non-decreasing a[0..m) / total that are <= level */
 static Py_ssize_t
-count_at_or_below(const double *a, Py_ssize_t m, double level)
+count_at_or_below(const double *a, Py_ssize_t m, double total, double level)
 {
     Py_ssize_t lo = 0, hi = m;
     while (lo < hi) {
         Py_ssize_t mid = lo + (hi - lo) / 2;
-        if (a[mid] <= level)
+        if (a[mid] / total <= level)
             lo = mid + 1;
         else
             hi = mid;
@@ -284,35 +284,36 @@ ringdown(PyObject *self, PyObject *args)
             e[i] = x[i] * x[i];
             cs[i + 1] = cs[i] + e[i];
         }
-        /* the envelope's peak: a centred moving average over k samples (zeros outside) */
+        /* the envelope's peak: a centred moving average over k samples (zeros outside); the
+           window sums are compared, divided by k only where a value is needed */
         Py_ssize_t p = 0;
-        double peak = -INFINITY, sm_p;
+        double top = -INFINITY;
         for (Py_ssize_t i = 0; i < n; i++) {
             const double hi = cs[(i + h < n - 1 ? i + h : n - 1) + 1];
             const double lo = i < lo_start ? 0.0 : cs[i - lo_start];
-            const double sm = (hi - lo) / (double)k;
-            if (sm > peak) {
-                peak = sm;
+            if (hi - lo > top) {
+                top = hi - lo;
                 p = i;
             }
         }
+        const double peak = top / (double)k;
         if (peak > 0) {
             Py_ssize_t m = n - p;
             if (noise > 0) {
                 /* where the smoothed energy first meets the noise */
+                const double floor2 = 2.0 * noise;
                 for (Py_ssize_t j = 0; j < n - p; j++) {
                     const Py_ssize_t i = p + j;
                     const double hi = cs[(i + h < n - 1 ? i + h : n - 1) + 1];
                     const double lo = i < lo_start ? 0.0 : cs[i - lo_start];
-                    sm_p = (hi - lo) / (double)k;
-                    if (sm_p < 2.0 * noise) {
+                    if ((hi - lo) / (double)k < floor2) {
                         Py_ssize_t b = j < 8 ? 8 : j;
                         m = b < m ? b : m;
                         break;
                     }
                 }
             }
-            /* the decay curve stored backwards (ascending) */
+            /* the decay curve stored backwards (ascending), not yet divided by its total */
             double acc = 0.0;
             for (Py_ssize_t j = 0; j < m; j++) {
                 double v = e[p + m - 1 - j] - noise;
@@ -321,16 +322,14 @@ ringdown(PyObject *self, PyObject *args)
             }
             if (rev[m - 1] > 0) {
                 const double total = rev[m - 1];
-                for (Py_ssize_t j = 0; j < m; j++)
-                    rev[j] /= total;
                 const double snr_db = noise > 0 ? 10.0 * log10(peak / noise) : 120.0;
                 double lo_db = -(snr_db - margin_db);
                 if (stop_db > lo_db)
                     lo_db = stop_db;
                 if (start_db - lo_db >= min_range_db) {
-                    Py_ssize_t c0 = count_at_or_below(rev, m, pow(10.0, start_db / 10.0));
+                    Py_ssize_t c0 = count_at_or_below(rev, m, total, pow(10.0, start_db / 10.0));
                     Py_ssize_t i0 = c0 ? m - c0 : 0;
-                    Py_ssize_t c1 = count_at_or_below(rev, m, pow(10.0, lo_db / 10.0));
+                    Py_ssize_t c1 = count_at_or_below(rev, m, total, pow(10.0, lo_db / 10.0));
                     Py_ssize_t i1 = c1 ? m - c1 : m - 1;
                     const Py_ssize_t nfit = i1 - i0;
                     if (nfit >= 4) {
@@ -338,7 +337,7 @@ ringdown(PyObject *self, PyObject *args)
                         const double to_db = 10.0 / log(10.0), mid = 0.5 * (double)(nfit - 1);
                         double sy = 0.0, scy = 0.0, y0 = 0.0, ylast = 0.0;
                         for (Py_ssize_t t = 0; t < nfit; t++) {
-                            double r = rev[m - i0 - 1 - t];
+                            double r = rev[m - i0 - 1 - t] / total;
                             double y = log(r > 1e-30 ? r : 1e-30) * to_db;
                             rev[m - i0 - 1 - t] = y; /* keep the dB value for the residuals */
                             sy += y;
