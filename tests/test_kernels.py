@@ -18,35 +18,6 @@ def test_compiled_module_is_built_where_ci_requires_it():
 
 
 @needs_compiled
-@pytest.mark.parametrize("hop,lag,n", [(24, 7, 48000), (4, 1, 4003), (22, 31, 10), (48, 5, 0), (24, 24, 24 * 5 + 3)])
-def test_frame_energy_matches_numpy(hop, lag, n):
-    rng = np.random.default_rng(hop * 1000 + lag)
-    x = (rng.standard_normal(n) * rng.uniform(0.01, 1)).astype(np.float32)
-    x[n // 3: n // 3 + 5] = 0.9  # a loud stretch
-    head = rng.standard_normal(lag).astype(np.float32)
-    e_c, mx_c, mn_c, s_c = kernels.frame_energy(x, head, lag, hop)
-    e_n, mx_n, mn_n, s_n = kernels.frame_energy(x, head, lag, hop, use_compiled=False)
-    assert e_c.shape == e_n.shape == (n // hop,)
-    np.testing.assert_allclose(e_c, e_n, rtol=2e-6, atol=0)  # float32 sums in another order
-    if n:
-        assert (mx_c, mn_c) == (mx_n, mn_n) == (float(x.max()), float(x.min()))
-        assert s_c == pytest.approx(float(np.sum(x, dtype=np.float64)), rel=1e-5, abs=1e-3)
-
-
-def test_frame_energy_numpy_reference_by_hand():
-    # the definition, written out: frame f = mean of (x[n] - x[n-lag])^2 over its hop samples
-    x = np.array([1, 2, 4, 8, 16, 32, 64], dtype=np.float32)
-    head = np.array([0.5, 0.25], dtype=np.float32)  # the two samples before x (lag 2)
-    for use in (False, True):
-        if use and not kernels.compiled():
-            continue
-        e, mx, mn, s = kernels.frame_energy(x, head, 2, 3, use_compiled=use)
-        d = [1 - 0.5, 2 - 0.25, 4 - 1, 8 - 2, 16 - 4, 32 - 8]
-        assert e.tolist() == pytest.approx([sum(v * v for v in d[:3]) / 3, sum(v * v for v in d[3:]) / 3])
-        assert (mx, mn, s) == (64.0, 1.0, 127.0)
-
-
-@needs_compiled
 def test_ringdown_matches_numpy():
     rng = np.random.default_rng(7)
     measured = 0
@@ -76,14 +47,16 @@ def test_ringdown_matches_numpy():
 def test_kernels_reject_wrong_buffers():
     from tickscope.core import _kernels
 
-    x = np.zeros(100, dtype=np.float32)
-    with pytest.raises(ValueError):
-        _kernels.frame_energy(x, np.zeros(3, dtype=np.float32), 2, 10, np.empty(10))  # head != lag
-    with pytest.raises(ValueError):
-        _kernels.frame_energy(x, np.zeros(2, dtype=np.float32), 2, 10, np.empty(9))  # out too short
-    with pytest.raises(ValueError):
-        _kernels.frame_energy(x, np.zeros(2, dtype=np.float32), 0, 10, np.empty(10))  # lag 0
+    w = np.ones(5)
+    C = np.zeros((2, 5), dtype=np.complex128)
+    with pytest.raises(ValueError):  # val shorter than tau
+        _kernels.newton_peaks(C, np.zeros(2), np.zeros(1), w, w, w, 8, 3)
+    with pytest.raises(ValueError):  # C not rows x bins
+        _kernels.newton_peaks(np.zeros((2, 4), dtype=np.complex128), np.zeros(2), np.zeros(2), w, w, w, 8, 3)
+    with pytest.raises(TypeError):  # not a buffer
+        _kernels.ringdown([0.0] * 100, 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0)
     assert _kernels.ringdown(np.zeros(5), 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0) is None  # too short
+    assert _kernels.ringdown(np.zeros(500), 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0) is None  # silence
 
 
 @needs_compiled

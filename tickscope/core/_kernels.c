@@ -1,13 +1,11 @@
 /*
- * tickscope.core._kernels: the two per-sample loops of the analysis written once in C.
+ * tickscope.core._kernels: two loops of the per-step work written once in C (numpy's per-call
+ * overhead costs more than their arithmetic on arrays of a few thousand samples).
  *
  * Each has a numpy twin in tickscope/core/kernels.py that is the reference (used when this
  * module was not built); tests/test_kernels.py checks that both give the same numbers.
  * Arrays come in through the buffer protocol (no numpy headers are needed to build).
  *
- *   frame_energy(x, head, lag, hop, out) -> (max, min, sum)
- *       out[f] = mean over frame f (hop samples) of (x[n] - x[n - lag])^2, where the lag
- *       samples before x are head; also the largest, smallest and summed sample of x.
  *   newton_peaks(C, tau, val, w, w1, w2, nfft, iters)
  *       Newton's method on the correlations whose rfft spectra are the rows of C (complex128),
  *       each from its own start tau[r] (updated in place); val[r] the correlation there.
@@ -35,106 +33,6 @@ get_buffer(PyObject *obj, Py_buffer *view, int writable, Py_ssize_t itemsize, co
         return -1;
     }
     return 0;
-}
-
-static PyObject *
-frame_energy(PyObject *self, PyObject *args)
-{
-    PyObject *xo, *ho, *oo;
-    Py_ssize_t lag, hop;
-    Py_buffer xb, hb, ob;
-    if (!PyArg_ParseTuple(args, "OOnnO", &xo, &ho, &lag, &hop, &oo))
-        return NULL;
-    if (lag < 1 || hop < 1) {
-        PyErr_SetString(PyExc_ValueError, "lag and hop must be positive");
-        return NULL;
-    }
-    if (get_buffer(xo, &xb, 0, sizeof(float), "x") < 0)
-        return NULL;
-    if (get_buffer(ho, &hb, 0, sizeof(float), "head") < 0) {
-        PyBuffer_Release(&xb);
-        return NULL;
-    }
-    if (get_buffer(oo, &ob, 1, sizeof(double), "out") < 0) {
-        PyBuffer_Release(&xb);
-        PyBuffer_Release(&hb);
-        return NULL;
-    }
-    const float *x = (const float *)xb.buf;
-    const float *h = (const float *)hb.buf;
-    double *out = (double *)ob.buf;
-    Py_ssize_t n = xb.len / (Py_ssize_t)sizeof(float);
-    Py_ssize_t nh = hb.len / (Py_ssize_t)sizeof(float);
-    Py_ssize_t nf = ob.len / (Py_ssize_t)sizeof(double);
-    if (nh != lag || nf != n / hop) {
-        PyBuffer_Release(&xb);
-        PyBuffer_Release(&hb);
-        PyBuffer_Release(&ob);
-        PyErr_SetString(PyExc_ValueError, "head must hold lag samples and out n // hop frames");
-        return NULL;
-    }
-    /* eight lanes side by side, so that the compiler can use vector instructions without
-       reordering any one lane's sums */
-    enum { W = 8 };
-    float mxl[W], mnl[W];
-    for (int l = 0; l < W; l++) {
-        mxl[l] = -INFINITY;
-        mnl[l] = INFINITY;
-    }
-    double sum = 0.0;
-    float mx, mn;
-    Py_BEGIN_ALLOW_THREADS
-    for (Py_ssize_t f = 0; f < nf; f++) {
-        const Py_ssize_t i0 = f * hop;
-        float acc[W] = {0}, s[W] = {0};
-        Py_ssize_t j = 0;
-        if (i0 >= lag) {
-            for (; j + W <= hop; j += W) {
-                const float *xi = x + i0 + j, *xp = x + i0 + j - lag;
-                for (int l = 0; l < W; l++) {
-                    const float v = xi[l], d = v - xp[l];
-                    acc[l] += d * d;
-                    s[l] += v;
-                    mxl[l] = v > mxl[l] ? v : mxl[l];
-                    mnl[l] = v < mnl[l] ? v : mnl[l];
-                }
-            }
-        }
-        for (; j < hop; j++) {
-            const Py_ssize_t i = i0 + j;
-            const float v = x[i], d = v - (i >= lag ? x[i - lag] : h[i]);
-            acc[0] += d * d;
-            s[0] += v;
-            mxl[0] = v > mxl[0] ? v : mxl[0];
-            mnl[0] = v < mnl[0] ? v : mnl[0];
-        }
-        float a = 0.0f, t = 0.0f;
-        for (int l = 0; l < W; l++) {
-            a += acc[l];
-            t += s[l];
-        }
-        out[f] = (double)a / (double)hop;
-        sum += (double)t;
-    }
-    for (Py_ssize_t i = nf * hop; i < n; i++) {
-        const float v = x[i];
-        sum += (double)v;
-        mxl[0] = v > mxl[0] ? v : mxl[0];
-        mnl[0] = v < mnl[0] ? v : mnl[0];
-    }
-    mx = mxl[0];
-    mn = mnl[0];
-    for (int l = 1; l < W; l++) {
-        mx = mxl[l] > mx ? mxl[l] : mx;
-        mn = mnl[l] < mn ? mnl[l] : mn;
-    }
-    Py_END_ALLOW_THREADS
-    PyBuffer_Release(&xb);
-    PyBuffer_Release(&hb);
-    PyBuffer_Release(&ob);
-    if (n == 0)
-        return Py_BuildValue("ddd", 0.0, 0.0, 0.0);
-    return Py_BuildValue("ddd", (double)mx, (double)mn, sum);
 }
 
 /* sum_k wa[k] Im(C[k] z^k) and sum_k wb[k] Re(C[k] z^k), z = exp(2 pi i tau / nfft); the powers of z
@@ -374,8 +272,6 @@ ringdown(PyObject *self, PyObject *args)
 }
 
 static PyMethodDef methods[] = {
-    {"frame_energy", frame_energy, METH_VARARGS,
-     "frame_energy(x, head, lag, hop, out) -> (max, min, sum): per-frame mean power of x[n] - x[n-lag]."},
     {"newton_peaks", newton_peaks, METH_VARARGS,
      "newton_peaks(C, tau, val, w, w1, w2, nfft, iters): refine correlation maxima in place."},
     {"ringdown", ringdown, METH_VARARGS,
@@ -385,7 +281,7 @@ static PyMethodDef methods[] = {
 };
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels",
-                                    "Compiled per-sample loops of tickscope's analysis (see kernels.py).", -1, methods};
+                                    "Compiled per-step loops of tickscope's analysis (see kernels.py).", -1, methods};
 
 PyMODINIT_FUNC
 PyInit__kernels(void)

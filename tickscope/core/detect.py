@@ -20,11 +20,10 @@ fed one sample at a time gives the same impacts as the whole file at once.
 from __future__ import annotations
 
 import math
-from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
-from . import dsp, kernels
+from . import dsp
 
 from ..errors import ParameterError
 
@@ -113,8 +112,8 @@ class ImpactDetector:
         self._wh_resp = self._hp_resp
         self._tail = np.zeros(0, dtype=np.float32)  # last `lag` samples before this chunk
         self._prev_frames = np.zeros(16)  # energies of the 16 frames before this chunk
-        self._floors: deque = deque(maxlen=max(1, int(round(self.cfg.floor_window_s / self.cfg.stats_block_s))))
-        self._spreads: deque = deque(maxlen=self._floors.maxlen)
+        self._floors = dsp.RollingWindow(max(1, int(round(self.cfg.floor_window_s / self.cfg.stats_block_s))))
+        self._spreads = dsp.RollingWindow(self._floors.maxlen)
         self._last_onset_frame = -(10**12)
         self._quiet_until_frame = -1
         self._raw = np.zeros(0, dtype=np.float32)  # recent raw audio (our own copy)
@@ -223,23 +222,26 @@ class ImpactDetector:
             if hi > lo:
                 out[lo - a: hi - a] = piece[lo - start: hi - start]
 
-    def _frame_energy(self, x: np.ndarray, prev: np.ndarray, lag: int) -> tuple[np.ndarray, float, float, float]:
-        """Mean power per frame of x[n] - x[n-lag] (prev holds the samples before x); and the
-        largest, smallest and summed sample of x (one pass: ``kernels.frame_energy``)."""
+    def _frame_energy(self, x: np.ndarray, prev: np.ndarray, lag: int) -> np.ndarray:
+        """Mean power per frame of x[n] - x[n-lag] (prev holds the samples before x)."""
+        hop = self.hop
+        d = np.empty(len(x), dtype=np.float32)
+        if lag < len(x):
+            np.subtract(x[lag:], x[:-lag], out=d[lag:])
         # before the first sample the signal is taken to have been constant (no jump at the start)
-        if len(prev) >= lag:
-            head = prev[-lag:]
-        else:
-            fill = prev[0] if len(prev) else (x[0] if len(x) else 0.0)
-            head = np.concatenate([np.full(lag - len(prev), fill, dtype=np.float32), prev])
-        return kernels.frame_energy(x, head, lag, self.hop)
+        fill = prev[0] if len(prev) else (x[0] if len(x) else 0.0)
+        head = np.concatenate([np.full(max(0, lag - len(prev)), fill, dtype=np.float32), prev[-lag:] if len(prev) else prev])
+        m = min(lag, len(x))
+        d[:m] = x[:m] - head[:m]
+        f = d[: (len(x) // hop) * hop].reshape(-1, hop)
+        return np.einsum("ij,ij->i", f, f).astype(np.float64) / hop
 
     def _tune(self, x: np.ndarray) -> None:
         """Choose the difference lag under which the loudest moments stand out most."""
         x = x[: int(self.cfg.tune_s * self.samplerate)]  # the same audio whatever the block sizes
         best, best_lag = -np.inf, 1
         for lag in self.lag_choices:
-            e = self._frame_energy(x, np.zeros(0, dtype=np.float32), lag)[0][lag // self.hop + 1:]
+            e = self._frame_energy(x, np.zeros(0, dtype=np.float32), lag)[lag // self.hop + 1:]
             if len(e) < 4 * self.nsum:
                 continue
             s = np.convolve(e, np.ones(self.nsum), mode="valid")
@@ -249,16 +251,16 @@ class ImpactDetector:
             if contrast > best * 1.05:  # prefer short lags unless a longer one is clearly better
                 best, best_lag = contrast, lag
         self.lag = best_lag
-        self.whitener = _noise_whitener(x, self._frame_energy(x, np.zeros(0, dtype=np.float32), best_lag)[0],
+        self.whitener = _noise_whitener(x, self._frame_energy(x, np.zeros(0, dtype=np.float32), best_lag),
                                         self.hop, self.samplerate)
         # the whitening FIR is causal: its spectrum times the zero-phase high-pass
         self._wh_resp = self._hp_resp * np.fft.rfft(self.whitener, self._nfft)
 
     def _process_chunk(self, x: np.ndarray) -> list[Impact]:
         n0 = self._consumed
-        e, x_max, x_min, x_sum = self._frame_energy(x, self._tail, self.lag)
-        self.max_abs = max(self.max_abs, x_max, -x_min)
-        self.sum_x += x_sum
+        self.max_abs = max(self.max_abs, float(x.max()), -float(x.min()))
+        self.sum_x += float(np.sum(x))  # float32 pairwise within the chunk, float64 across chunks
+        e = self._frame_energy(x, self._tail, self.lag)
         self._tail = np.concatenate([self._tail, x])[-self.lag:] if self.lag > len(x) else x[-self.lag:].copy()
         P = len(self._prev_frames)
         ext = np.concatenate([self._prev_frames, e])
@@ -296,28 +298,28 @@ class ImpactDetector:
                 i20, i50, i90 = int(0.2 * (len(seg) - 1)), len(seg) // 2, int(0.9 * (len(seg) - 1))
                 part = np.partition(seg, [i20, i50, i90])
                 q20[nb_full], q50[nb_full], q90[nb_full] = part[i20], part[i50], part[i90]
-        thr_b = np.empty(len(starts))
-        fl_b = np.empty(len(starts))
+        thr_b = []
+        fl_b = []
         min_level = 10 ** (self.cfg.min_level_dbfs / 10)
         rel = 10 ** (self.cfg.threshold_db / 10)
-        for j in range(len(starts)):
+        for qf, a20, a50, a90 in zip(q_floor.tolist(), q20.tolist(), q50.tolist(), q90.tolist()):
             # noise floor: a low quantile of this block, smoothed over the last seconds
-            self._floors.append(float(q_floor[j]))
-            floor = _small_median(self._floors)
+            self._floors.append(qf)
+            floor = self._floors.median()
             # How much the background itself fluctuates over 2 ms: white noise barely (many
             # degrees of freedom), low-frequency noise a lot.  The threshold rises with it so
             # that noise alone seldom starts an impact.
-            if q50[j] == q50[j]:  # not nan: the block had 16 frames or more
-                self._spreads.append(_block_spread(float(q20[j]), float(q50[j]), float(q90[j])))
+            if a50 == a50:  # not nan: the block had 16 frames or more
+                self._spreads.append(_block_spread(a20, a50, a90))
             # the lower quartile over the last seconds: a block holding a step's ring-down, a voice or
             # a phone's gain pumping after a step reads tens of times the background's spread, and
             # early in a recording such blocks can be half of those seen
-            spread = sorted(self._spreads)[len(self._spreads) // 4] if self._spreads else 1.0
-            thr_b[j] = max(floor * max(rel, spread ** 3), min_level)
-            fl_b[j] = floor
+            spread = self._spreads.order_stat(len(self._spreads) // 4) if len(self._spreads) else 1.0
+            thr_b.append(max(floor * max(rel, spread ** 3), min_level))
+            fl_b.append(floor)
         lens = np.diff(starts + [nf])
-        thr = np.repeat(thr_b, lens)
-        fl = np.repeat(fl_b, lens)
+        thr = np.repeat(np.array(thr_b), lens)
+        fl = np.repeat(np.array(fl_b), lens)
         self.floor_db = 10 * math.log10(max(fl[-1], 1e-30))
         cand = np.flatnonzero((now > thr) & (now > bg * 10 ** (self.cfg.rise_db / 10) + 0.5 * fl))
         self._prev_frames = ext[-P:]
@@ -427,12 +429,6 @@ def _quick_quantile(e: np.ndarray, q: float) -> float:
     """The q-quantile (lower order statistic) by partial sort: np.quantile costs ~10x more per call."""
     k = int(q * (len(e) - 1))
     return float(np.partition(e, k)[k])
-
-
-def _small_median(values) -> float:
-    v = sorted(values)
-    n = len(v)
-    return float(v[n // 2]) if n % 2 else 0.5 * float(v[n // 2 - 1] + v[n // 2])
 
 
 def _flat_tops(rows: np.ndarray, peak: np.ndarray) -> np.ndarray:

@@ -74,6 +74,10 @@ class RollingWindow:
         self._fifo.append(v)
         insort(self._sorted, v)
 
+    def order_stat(self, i: int) -> float:
+        """The i-th smallest value (from 0)."""
+        return self._sorted[i]
+
     def median(self) -> float:
         s = self._sorted
         n = len(s)

@@ -1,8 +1,8 @@
-"""The per-sample loops of the analysis: compiled (``_kernels.c``) where it was built, else numpy.
+"""The per-step loops of the analysis: compiled (``_kernels.c``) where it was built, else numpy.
 
 The numpy versions are the reference: ``tests/test_kernels.py`` checks that the compiled ones
 give the same numbers (to rounding).  Building needs a C compiler; ``pip install`` skips the
-module when it cannot be built, and everything still runs, about 1.3x slower on a long file.
+module when it cannot be built, and everything still runs, somewhat slower (benchmarks/run.py).
 Set ``TICKSCOPE_PURE_NUMPY=1`` to use the numpy versions although the module is there.
 """
 from __future__ import annotations
@@ -22,33 +22,6 @@ except ImportError:  # not built (no compiler at install time), or switched off
 def compiled() -> bool:
     """Whether the compiled loops are in use."""
     return _c is not None
-
-
-def frame_energy(x: np.ndarray, head: np.ndarray, lag: int, hop: int, *,
-                 use_compiled: bool = True) -> tuple[np.ndarray, float, float, float]:
-    """Mean power per frame of ``hop`` samples of x[n] - x[n - lag], the ``lag`` samples before
-    x being ``head``; and the largest, the smallest and the sum of the samples of x.
-
-    ``x`` and ``head`` are float32; the frame powers float64.
-    """
-    x = np.ascontiguousarray(x, dtype=np.float32)
-    head = np.ascontiguousarray(head, dtype=np.float32)
-    if len(head) != lag:
-        raise ValueError(f"head holds {len(head)} samples, lag is {lag}")
-    if _c is not None and use_compiled:
-        out = np.empty(len(x) // hop)
-        mx, mn, s = _c.frame_energy(x, head, int(lag), int(hop), out)
-        return out, mx, mn, s
-    d = np.empty(len(x), dtype=np.float32)
-    if lag < len(x):
-        np.subtract(x[lag:], x[:-lag], out=d[lag:])
-    m = min(lag, len(x))
-    d[:m] = x[:m] - head[:m]
-    f = d[: (len(x) // hop) * hop].reshape(-1, hop)
-    e = np.einsum("ij,ij->i", f, f).astype(np.float64) / hop
-    if not len(x):
-        return e, 0.0, 0.0, 0.0
-    return e, float(x.max()), float(x.min()), float(np.sum(x))
 
 
 def ringdown_line(x: np.ndarray, samplerate: float, noise_power: float, start_db: float, stop_db: float,
