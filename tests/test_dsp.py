@@ -85,3 +85,17 @@ def test_rolling_window_median_and_mad_equal_statistics_median():
             assert w.median() == med
             for c in (med, rnd.random()):
                 assert w.median_abs_deviation(c) == statistics.median([abs(x - c) for x in ref])
+
+
+def test_line_fit_short_agrees_with_numpy_polyfit():
+    import numpy as np
+
+    from tickscope.core.dsp import line_fit_short
+
+    rng = np.random.default_rng(4)
+    for n in (3, 8, 32):
+        x = np.sort(rng.choice(np.arange(-60, 1), n, replace=False)).astype(float)
+        y = 3600.0 + 1.00002 * x + rng.normal(0, 1e-5, n)
+        b, a = line_fit_short(list(x), list(y))
+        pb, pa = np.polyfit(x, y, 1)
+        assert b == pytest.approx(pb, rel=1e-12) and a == pytest.approx(pa, rel=1e-14)

@@ -118,6 +118,21 @@ class RollingWindow:
         return kth if n % 2 else (second + kth) / 2
 
 
+def line_fit_short(x: list[float], y: list[float]) -> tuple[float, float]:
+    """:func:`line_fit` on plain lists, for the few dozen points of a moving fit (numpy's per-call
+    overhead costs more than the arithmetic there)."""
+    n = len(x)
+    xm = sum(x) / n
+    ym = sum(y) / n
+    sxx = sxy = 0.0
+    for xi, yi in zip(x, y):
+        dx = xi - xm
+        sxx += dx * dx
+        sxy += dx * (yi - ym)
+    b = sxy / sxx
+    return b, ym - b * xm
+
+
 def sos_power_response(sos: np.ndarray, nfft: int) -> np.ndarray:
     """|H(e^jw)|^2 of second-order sections at the rfft bins of length ``nfft``.
 

@@ -24,7 +24,7 @@ import numpy as np
 
 from ..model import Event
 from .detect import Impact
-from .dsp import RollingWindow, line_fit
+from .dsp import RollingWindow, line_fit_short
 from .ringdown import measure_ringdown
 from .timing import FIRST_IMPACT_PEAK_S, Template, envelope_lag, learn_template, match, match_many, onset_of
 
@@ -564,11 +564,10 @@ class StepTracker:
                     self._pol_res[k % 2].append(step.t_s - self.predict(k))
                 self._fit.append((k, step.t_s))
                 if len(self._fit) >= 3:
-                    kk = np.array([p[0] for p in self._fit], dtype=np.float64)
-                    tt = np.array([p[1] for p in self._fit])
-                    b, a = line_fit(kk - kk[-1], tt)
+                    k_last = self._fit[-1][0]
+                    b, a = line_fit_short([k - k_last for k, _ in self._fit], [t for _, t in self._fit])
                     self._b = b
-                    self._a = a - b * kk[-1]
+                    self._a = a - b * k_last
         elif not self._in_gap(pred):
             out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
         return out
