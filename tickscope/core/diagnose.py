@@ -43,12 +43,16 @@ class Inhibition:
     phase_step: int  # step number (mod period) whose interval carries the correction
 
 
+#: the longest inhibition period searched (s)
+MAX_PERIOD_S = 1800.0
+
+
 def detect_inhibition(k: np.ndarray, t: np.ndarray, nominal_s: float, *, clock_ppm: float = 0.0,
                       clock_ppm_u95: float = 0.0, z_min: float = 7.0, min_periods: int = 2) -> Inhibition | None:
     """Find a periodic lengthening of one step interval (logic regulation).
 
     The intervals of consecutive steps are folded at every candidate period M (2 s up to a
-    fifth of the record, in steps); at the true period one phase holds all corrections.
+    fifth of the record and at most ``MAX_PERIOD_S``, in steps); at the true period one phase holds all corrections.
     The score is that phase's mean excess over the other phases in standard errors; the
     period with the highest score wins, and it must exceed ``z_min`` (many periods and
     phases are tried, so the bar is high).
@@ -69,29 +73,41 @@ def detect_inhibition(k: np.ndarray, t: np.ndarray, nominal_s: float, *, clock_p
         d = d - np.where(par == 0, m0, m1) + mall
     span_steps = int(k.max() - k.min())
     best = None
-    max_m = max(2, (span_steps + 1) // 5)
     step_s = nominal_s
+    # Periods up to a fifth of the record, and no longer than 30 minutes: published periods run
+    # from seconds to about 20 minutes (see the domain notes); each period costs a pass over
+    # every interval, so an unbounded search grows with the square of the record's length.
+    max_m = max(2, min((span_steps + 1) // 5, int(MAX_PERIOD_S / step_s)))
+    # per-phase means and variances from sums (centred first, so the sums of squares lose nothing)
+    dc = d - d.mean()
+    dc2 = dc * dc
+    n_all, s_all, q_all = len(dc), float(dc.sum()), float(dc2.sum())
+    floor2 = (0.1e-6) ** 2
     # Periods from 3 steps up: a 2-step period cannot be told from the two polarities sounding apart.
     for m in range(max(3, int(math.ceil(2.0 / step_s))), max_m + 1):
         ph = kd % m
-        sums = np.bincount(ph, weights=d, minlength=m)
         cnt = np.bincount(ph, minlength=m)
         ok = cnt > 0
-        if ok.sum() < 2:
+        if np.count_nonzero(ok) < 2:
             continue
+        sums = np.bincount(ph, weights=dc, minlength=m)
         means = np.where(ok, sums / np.maximum(cnt, 1), -np.inf)
         j = int(np.argmax(means))
-        if cnt[j] < min_periods:
+        nj = int(cnt[j])
+        if nj < min_periods or nj == n_all:
             continue
-        others = (ph != j)
-        dj, do = d[ph == j], d[others]
-        excess = float(dj.mean() - do.mean())
+        no = n_all - nj
+        sj = float(sums[j])
+        qj = float(np.bincount(ph, weights=dc2, minlength=m)[j])
+        mj, mo = sj / nj, (s_all - sj) / no
+        excess = mj - mo
         if m % 2 == 0:
             excess /= 1.0 - 2.0 / m  # the polarity step above took 2/m of it away
         # within-group scatter: at a wrong period the corrections spread over the phases and
         # inflate it; at the true period both groups are as tight as the timing jitter
-        floor2 = (0.1e-6) ** 2
-        se = math.sqrt(max(dj.var(), floor2) / len(dj) + max(do.var(), floor2) / len(do))
+        var_j = qj / nj - mj * mj
+        var_o = (q_all - qj) / no - mo * mo
+        se = math.sqrt(max(var_j, floor2) / nj + max(var_o, floor2) / no)
         z = excess / se
         if best is None or z > best[0]:
             best = (z, m, j, excess, se)
