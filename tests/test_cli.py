@@ -158,6 +158,23 @@ def test_clipped_dc_and_two_channels(tmp_path, capsys):
     assert c == 2 and "channels 0..1" in err
 
 
+def test_float_file_with_samples_that_are_not_numbers(tmp_path, capsys):
+    # a damaged float WAV: NaN and inf samples used to poison the detector's statistics (no steps found)
+    sc = Scenario(duration_s=30, snr_db=30, seed=12)
+    p = str(tmp_path / "f.wav")
+    write_simulation(p, sc, subtype="FLOAT")
+    x, fs = sf.read(p, dtype="float32")
+    x[5000:9000] = np.nan
+    x[200000] = np.inf
+    x[300000] = -np.inf
+    sf.write(p, x, fs, subtype="FLOAT")
+    c, out, err = run(["analyze", p, "--json"], capsys)
+    d = json.loads(out)
+    assert c == 0 and d["steps_detected"] == 30 and d["missed_steps"] == 0
+    assert any("4002 samples of the file are not numbers" in w for w in d["warnings"])
+    assert "Traceback" not in err
+
+
 def test_every_subcommand_has_help():
     p = build_parser()
     sub = [a for a in p._actions if a.__class__.__name__ == "_SubParsersAction"][0]

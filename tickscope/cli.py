@@ -100,7 +100,9 @@ def cmd_analyze(args) -> int:
             raise ParameterError(f"cannot write {args.steps_csv}: {e.strerror}") from e
     try:
         writer = StepsCsv(csv_fh) if csv_fh else None
-        _run_file(an, blocks(path, info, channel), info, writer, show_progress=not args.json and not args.quiet)
+        tally: dict = {}
+        _run_file(an, blocks(path, info, channel, tally=tally), info, writer,
+                  show_progress=not args.json and not args.quiet)
         summary = an.finish()
         if writer:
             for ev in an.drain_final_events():
@@ -113,6 +115,9 @@ def cmd_analyze(args) -> int:
     if summary.duration_s < info.duration_s - max(1.0, 0.01 * info.duration_s):
         summary.warnings.append(f"the file ends at {summary.duration_s:.1f} s though its header says "
                                 f"{info.duration_s:.1f} s (cut short or damaged): analyzed what it holds")
+    if tally.get("nonfinite"):
+        summary.warnings.append(f"{tally['nonfinite']} samples of the file are not numbers (NaN or infinite: a "
+                                "damaged float file) and were read as silence")
     if chosen_note:
         summary.warnings.insert(0, chosen_note)
     if demo and not args.json:

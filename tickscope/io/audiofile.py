@@ -201,18 +201,34 @@ def choose_channel(path: str, info: FileInfo, seconds: float = 20.0) -> int:
     return best_c
 
 
+def _zero_nonfinite(y: np.ndarray, tally: dict | None) -> np.ndarray:
+    """Float samples that are not numbers (NaN, +-inf: a damaged float file) become silence and
+    are counted in ``tally["nonfinite"]``; one summing pass when there are none."""
+    with np.errstate(all="ignore"):
+        if math.isfinite(float(np.sum(y))):
+            return y
+        bad = ~np.isfinite(y)
+    n_bad = int(np.count_nonzero(bad))
+    if n_bad:
+        y = np.where(bad, np.float32(0.0), y)
+        if tally is not None:
+            tally["nonfinite"] = tally.get("nonfinite", 0) + n_bad
+    return y
+
+
 def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FRAMES, *,
-           start_frame: int = 0) -> Iterator[Block]:
+           start_frame: int = 0, tally: dict | None = None) -> Iterator[Block]:
     """Yield the chosen channel as float32 Blocks; the file is closed even if abandoned early.
 
     With ``start_frame`` reading starts there, and the blocks count samples from it (a log
-    resumed part-way through a file).
+    resumed part-way through a file).  Float samples that are not numbers are read as silence
+    and counted in ``tally["nonfinite"]`` when a dict is given.
     """
     if not 0 <= channel < info.channels:
         raise ParameterError(f"--channel {channel}: {info.path} has channels 0..{info.channels - 1}")
     pos = 0
     if info.format == FFMPEG_FORMAT:
-        yield from _ffmpeg_blocks(path, info, channel, block_frames, start_frame)
+        yield from _ffmpeg_blocks(path, info, channel, block_frames, start_frame, tally)
         return
     # Integer PCM is read as integers and scaled here: libsndfile's own float conversion costs
     # ~5x the rest of reading.  The result is the same float32 (1/2^15 and 1/2^31 are powers of
@@ -232,7 +248,7 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
                 if not len(x):
                     break
                 if scale is None:
-                    y = np.ascontiguousarray(x[:, channel])
+                    y = _zero_nonfinite(np.ascontiguousarray(x[:, channel]), tally)
                 else:
                     y = np.multiply(x[:, channel], scale, dtype=np.float32)
                 yield Block(y, pos)
@@ -242,7 +258,8 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
             raise InputError(f"{path}: cannot read audio ({_short(e)})") from e
 
 
-def _ffmpeg_blocks(path: str, info: FileInfo, channel: int, block_frames: int, start_frame: int) -> Iterator[Block]:
+def _ffmpeg_blocks(path: str, info: FileInfo, channel: int, block_frames: int, start_frame: int,
+                   tally: dict | None = None) -> Iterator[Block]:
     pos = 0
     skip = int(start_frame)  # decoded and dropped: exact to the sample, as libsndfile's seek
     try:
@@ -252,7 +269,7 @@ def _ffmpeg_blocks(path: str, info: FileInfo, channel: int, block_frames: int, s
                 x, skip = x[drop:], skip - drop
                 if not len(x):
                     continue
-            y = np.ascontiguousarray(x[:, channel])
+            y = _zero_nonfinite(np.ascontiguousarray(x[:, channel]), tally)
             yield Block(y, pos)
             pos += len(y)
     except _FfmpegFailed as e:
