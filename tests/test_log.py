@@ -114,19 +114,20 @@ def test_kill_9_and_resume_loses_nothing_and_duplicates_nothing(bench_recording,
         if kills == 1 and read_while_writing is None:
             # the report reads a log while it is being written
             read_while_writing = _cli("report", db, "--json")
-        # kill at a random moment after this run has committed something (a slow machine's
-        # start-up must not turn the test into three kills before any work)
+        # kill at a random point of progress after this run has committed something: a point of
+        # the recording, not of wall time, so that a fast machine (the whole replay takes about a
+        # second) and a slow one are both caught in the middle of the work
+        target = max(last_committed, 0.0) + rnd.uniform(0.1, 0.6) * (sc.duration_s - max(last_committed, 0.0))
         t0 = time.monotonic()
-        while p.poll() is None and time.monotonic() - t0 < 60 and _committed_s(db) <= last_committed:
-            time.sleep(0.05)
-        try:
-            p.wait(timeout=rnd.uniform(0.2, 2.5))
-            break  # it finished before the kill
-        except subprocess.TimeoutExpired:
-            p.send_signal(signal.SIGKILL)
+        while p.poll() is None and time.monotonic() - t0 < 120 and _committed_s(db) < target:
+            time.sleep(0.005)
+        if p.poll() is not None:
             p.wait()
-            kills += 1
-            last_committed = _committed_s(db)
+            break  # it finished before the kill
+        p.send_signal(signal.SIGKILL)
+        p.wait()
+        kills += 1
+        last_committed = _committed_s(db)
         if kills == 3:
             r = subprocess.run([sys.executable, "-m", "tickscope", "log", db, "--source", wav, "--quiet"],
                                capture_output=True, text=True, timeout=300)
