@@ -257,6 +257,7 @@ def cmd_listen(args) -> int:
                 live = Live(console=con, refresh_per_second=4, transient=False, auto_refresh=False)
                 live.start()
             last_draw = 0.0
+            shown, last_fit, fit_cost_s = None, 0.0, 0.0
             for b in cap.blocks():
                 new_step = any(ev.kind == "step" for ev in an.feed(b))
                 if rec:
@@ -271,11 +272,18 @@ def cmd_listen(args) -> int:
                         rec = None
                 now = time.monotonic()
                 level = meter.update(b.samples, now)
-                # redraw as soon as a step is decided, and at least twice a second
+                # redraw as soon as a step is decided, and at least twice a second; the summary is
+                # refitted from every step so far, which grows with the session: once it costs more
+                # than 5 % of the time between refits, refit less often (the screen keeps the last one)
                 if live is not None and (new_step or now - last_draw >= 0.4):
+                    if shown is None or now - last_fit >= 20.0 * fit_cost_s:
+                        t_fit = time.monotonic()
+                        shown = an.summary()
+                        last_fit = time.monotonic()
+                        fit_cost_s = last_fit - t_fit
                     st = LiveStatus(str(src), args.rate_hz, args.channel, an.duration_s, level,
                                     cap.overflows + (1 if cap.dropped_frames else 0), args.save)
-                    live.update(render_live(an.summary(), st, width=min(con.width, 160)), refresh=True)
+                    live.update(render_live(shown, st, width=min(con.width, 160)), refresh=True)
                     last_draw = now
                 if args.duration and an.duration_s >= args.duration:
                     break
