@@ -156,3 +156,30 @@ def test_small_functions(rng):
     t = k + np.where(k % 2 == 1, 100e-6, 0.0)
     d, ci = polarity_asymmetry(k, t)
     assert d == pytest.approx(200, abs=1e-6)
+
+
+def test_other_clock_found_among_bounces_and_noise():
+    # event lists as the tracker leaves them: steps at 1 s, a bounce 50 ms after each, a phone's
+    # lifted noise (9 blips a second in the second half of each interval) and a second clock
+    # gaining 150 s/day, 300 ms out of phase at the start
+    from tickscope.core.diagnose import other_clock
+
+    rng = np.random.default_rng(21)
+    k = np.arange(300)
+    step_t = 0.5 + k * (1 - 5 / 86400) + rng.normal(0, 20e-6, len(k))
+    bounce = step_t + 0.050 + rng.normal(0, 0.3e-3, len(k))
+    noise = np.sort(np.concatenate([s + rng.uniform(0.5, 1.0, 9) for s in step_t]))
+    iv2 = 1 / (1 + 150 / 86400)
+    clock2 = 0.8 + np.arange(299) * iv2 + rng.normal(0, 1e-3, 299)
+    others = np.concatenate([bounce, noise, clock2])
+    order = np.argsort(others)
+    peaks = np.concatenate([np.full(300, -15.0), np.full(len(noise), -25.0), np.full(299, -18.0)])[order]
+    oc = other_clock(others[order], peaks, k, step_t, np.full(300, -8.0))
+    assert oc is not None
+    assert oc.interval_s == pytest.approx(iv2, abs=2e-6)  # 150 s/day is 1736 ppm: known to a couple of ppm
+    assert oc.level_db == pytest.approx(-10.0, abs=0.5)
+    assert oc.ticks >= 250  # a few are lost where it passes the bounce or a noise blip comes first
+    # without the second clock: the bounce (fixed delay) and the noise are not another clock
+    keep = np.concatenate([bounce, noise])
+    order = np.argsort(keep)
+    assert other_clock(keep[order], np.full(len(keep), -20.0), k, step_t, np.full(300, -8.0)) is None

@@ -38,6 +38,31 @@ def test_realistic_recording(name):
     assert s.extras["rate_provisional"] is True
     assert abs(s.rate.rate_s_per_day - exp) <= stat < 0.2
     assert s.rate.ci95_s_per_day >= stat
+    # another clock in the room is named with its own rate; none is invented where there is none
+    oc = s.extras["other_clock"]
+    if "second_clock_rate_s_per_day" in CASES[name]:
+        assert oc is not None and abs(oc["rate_s_per_day"] - CASES[name]["second_clock_rate_s_per_day"]) < 1.0, oc
+        assert any("another clock" in w for w in s.warnings)
+    else:
+        assert oc is None, oc
+
+
+def test_two_clocks_as_loud_as_each_other_are_both_named():
+    # Sweep case 97: under a phone's gain control a second clock 8.8 dB quieter sounds as loud as
+    # the movement, 130 ms before each step, and the grid follows it (the earlier of two equal
+    # sounds).  Which of two equally loud clocks the user means cannot be heard; the report must
+    # then name the other one, nearly as loud, with its rate -- so between the rate timed and the
+    # other clock's both clocks are there.
+    sc = Scenario(duration_s=120, seed=1097, rate_s_per_day=-12.2185, samplerate_hz=22050, movement="wallclock",
+                  snr_db=22.34, reverb_rt60_ms=484.4, agc=True, gate_dbfs=-35.45, second_clock_rate_s_per_day=-110.83,
+                  second_clock_db=-8.8, transients_per_min=4.81, variation_db=0.71, variation_freq_pct=1.35,
+                  jitter_us=23.8, missed_steps=(84,))
+    s, an, truth, _ = analyze_scenario(sc)
+    oc = s.extras["other_clock"]
+    assert oc is not None and oc["level_db"] > -6.0
+    pair = sorted([s.rate.rate_s_per_day, oc["rate_s_per_day"]])
+    assert abs(pair[0] - (-110.83)) < 1.0 and abs(pair[1] - (-12.2185)) < 1.0, pair
+    assert any("another clock ticks in the recording nearly as loud as the steps" in w for w in s.warnings)
 
 
 @pytest.mark.parametrize("ext", [".ogg", ".mp3", ".flac"])

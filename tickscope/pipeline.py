@@ -108,6 +108,8 @@ class Analyzer:
         self.sec_k = _Column(np.int64)  # step-like later sounds within a slot (bursts)
         self.sec_delay = _Column(np.float64)
         self.rejected_snr = _Column(np.float32)
+        self.other_t = _Column(np.float64)  # sounds that are not steps (later impacts and rejected ones)
+        self.other_peak = _Column(np.float32)
         self.n_secondary = 0
         self.n_clipped = 0
         self.gaps: list[tuple[float, float]] = []
@@ -209,8 +211,12 @@ class Analyzer:
                 self.correction_k.append(ev.step)
             elif ev.kind == "rejected":
                 self.rejected_snr.append(ev.snr_db)
+                self.other_t.append(ev.time_s)
+                self.other_peak.append(ev.peak_dbfs)
             elif ev.kind == "secondary":
                 self.n_secondary += 1
+                self.other_t.append(ev.time_s)
+                self.other_peak.append(ev.peak_dbfs)
                 if ev.match >= self.tracker.cfg.good_match and self.step_k.n and self.step_k.values[-1] == ev.step:
                     self.sec_k.append(ev.step)
                     self.sec_delay.append(ev.time_s - self.step_t.values[-1])
@@ -225,7 +231,7 @@ class Analyzer:
                       self.step_peak, self.step_flags):
                 c.keep_last(n)
         for pair in ((self.missed_t, self.missed_k), (self.failed_k, self.failed_t), (self.correction_k,),
-                     (self.sec_k, self.sec_delay), (self.rejected_snr,)):
+                     (self.sec_k, self.sec_delay), (self.rejected_snr,), (self.other_t, self.other_peak)):
             if pair[0].n > 2 * n:
                 for c in pair:
                     c.keep_last(n)
@@ -475,6 +481,24 @@ class Analyzer:
                                    "replace the cell (keep button cells away from children)")
             lines.append(f"the cell is at end of life: the circuit steps in bursts of {b.steps_per_burst} every "
                          f"{b.burst_period_s:g} s ({b.spacing_ms:.0f} ms apart); the rate above is burst to burst")
+        # another clock in the room
+        oc = dg.other_clock(self.other_t.values, self.other_peak.values, self.step_k.values, self.step_t.values,
+                            self.step_peak.values)
+        if oc is not None:
+            other_rate = SECONDS_PER_DAY * (nominal * (1.0 + cp * 1e-6) / oc.interval_s - 1)
+            js["other_clock"] = {"rate_s_per_day": _r(other_rate, 3), "level_db": _r(oc.level_db, 1),
+                                 "ticks": oc.ticks, "drift_ms_per_min": _r(oc.drift_ms_per_min, 2)}
+            if oc.level_db >= -6.0:
+                out["warnings"].append(
+                    f"another clock ticks in the recording nearly as loud as the steps ({oc.level_db:+.1f} dB): it runs at "
+                    f"{other_rate:+.1f} s/day on the same time base and drifts {oc.drift_ms_per_min:+.1f} ms a minute "
+                    "against the steps timed here; make sure these are the movement's (move the microphone onto it, "
+                    "or stop the other clock: a phone's gain control can make two clocks sound alike)")
+            else:
+                out["warnings"].append(f"another clock ticks in the background ({oc.level_db:.0f} dB below the steps, "
+                                       f"{other_rate:+.1f} s/day): its ticks were left out")
+        else:
+            js["other_clock"] = None
         # failed steps, correction pulses
         fk = self.failed_k.values
         ck = set(int(v) for v in self.correction_k.values)
