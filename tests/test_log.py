@@ -55,7 +55,7 @@ def test_log_and_report_a_drifting_movement(bench_recording, tmp_path):
     r = _cli("log", db, "--source", wav, "--label", "mantel clock, bench 2", "--json")
     assert r.returncode == 0, r.stderr
     seg = json.loads(r.stdout)
-    assert seg["segment"] == 1 and seg["ended"] == "end of source"
+    assert seg["segment"] == 1 and seg["ended"] == "end of source" and seg["sound"] == "stepping"
     out = str(tmp_path / "plots")
     csv_path = str(tmp_path / "steps.csv")
     r = _cli("report", db, "--json", "--out", out, "--steps-csv", csv_path)
@@ -469,3 +469,24 @@ def test_polarity_names_hold_across_a_restart(tmp_path):
     for r in rows:
         assert (float(r["decay_ms"]) < 10) == (r["polarity"] == "A")
     st.db.close()
+
+
+def test_log_of_an_escapement_holds_beats_not_steps(tmp_path):
+    # a mechanical escapement (5 beats a second, tick and tock 4 ms apart) logged by mistake: the log
+    # used to end with "1497 steps, 2 missed" and the report with "step every 0 s"; analyze calls
+    # such a sound not a stepping motor, and so must the log and its report
+    wav = str(tmp_path / "escapement.wav")
+    write_simulation(wav, Scenario(samplerate_hz=8000, duration_s=120, step_interval_s=0.2,
+                                   polarity_asymmetry_us=2000, snr_db=30, movement="wristwatch", seed=2))
+    db = str(tmp_path / "esc.db")
+    r = _cli("log", db, "--source", wav, "--json")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    assert d["sound"] == "not-stepping" and d["beat_interval_s"] == pytest.approx(0.2, rel=1e-3)
+    r = _cli("report", db, "--json")
+    assert r.returncode == 0, r.stderr
+    rep = json.loads(r.stdout)
+    assert rep["rate_s_per_day"] is None and rep["steps_detected"] == 0 and rep["missed_steps"] == 0
+    assert any("beats, not quartz steps" in n for n in rep["notes"])
+    r = _cli("report", db)
+    assert "step every 0 s" not in r.stdout and "beats, not quartz steps" in " ".join(r.stdout.split())

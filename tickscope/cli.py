@@ -445,6 +445,10 @@ def _run_log(args, store) -> int:
     d = {"db": args.db, "segment": len(segs) + 1, "source": source, "duration_s": round(ls.position_s, 3),
          "steps": t["steps"], "missed": t["missed"], "failed": t["failed"], "rejected": t["rejected"],
          "gaps": t["gaps"], "stopped_slots": t.get("stopped_slots", 0), "ended": reason, "time_base": time_base}
+    snd = ls.sound or {}
+    d["sound"] = snd.get("sound")
+    if snd.get("sound") == "not-stepping":
+        d["beat_interval_s"] = snd.get("beat_interval_s")
     if clips is not None:
         d["clips_kept_bytes"] = clips.used
         d["clips_skipped"] = clips.skipped
@@ -452,10 +456,15 @@ def _run_log(args, store) -> int:
         sys.stdout.write(json.dumps(d, indent=1) + "\n")
     else:
         con = _console()
-        con.print(f"log {args.db}: segment {d['segment']} ended ({reason}) after {ls.position_s / 3600:.2f} h of audio: "
-                  f"{t['steps']} steps, {t['missed']} missed, {t['failed']} failed, {t['gaps']} gaps")
+        if snd.get("sound") == "not-stepping":
+            con.print(f"log {args.db}: segment {d['segment']} ended ({reason}) after {ls.position_s / 3600:.2f} h of audio: "
+                      f"{snd.get('why') or 'the sound is not a quartz stepping-motor pattern'}; "
+                      "its beats are kept, but no steps, missed steps or rate are counted from them")
+        else:
+            con.print(f"log {args.db}: segment {d['segment']} ended ({reason}) after {ls.position_s / 3600:.2f} h of "
+                      f"audio: {t['steps']} steps, {t['missed']} missed, {t['failed']} failed, {t['gaps']} gaps")
         hours = [h for h in ls.hourly() if math.isfinite(h.rate_s_per_day)]
-        if hours:
+        if hours and snd.get("sound") != "not-stepping":
             from .ui.dashboard import hourly_lines
 
             for line in hourly_lines(hours, min(con.width, 120), max_rows=12):
@@ -573,7 +582,16 @@ def cmd_report(args) -> int:
         time_base = _clock(argparse.Namespace())[2]
         if any(s.clock_ppm is not None for s in segs):
             time_base = "mixed: some segments corrected, some on the device clock"
-    fig = log_figures(segs, ev, gaps=gaps, minutes=minutes, override_ppm=over_ppm, override_u95=over_u)
+    sounds = {}
+    for s_ in segs:
+        raw = meta.get(f"segment {s_.id} sound")
+        if raw:
+            try:
+                sounds[s_.id] = json.loads(raw)
+            except ValueError:
+                pass
+    fig = log_figures(segs, ev, gaps=gaps, minutes=minutes, override_ppm=over_ppm, override_u95=over_u,
+                      sounds=sounds)
     if args.steps_csv:
         with open(args.steps_csv, "w", newline="") as fh:
             write_log_csv(fh, fig.event_t, fig.event_k, ev, fig.event_pol)

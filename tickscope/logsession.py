@@ -10,6 +10,7 @@ seconds, and the clips themselves have a byte budget.
 from __future__ import annotations
 
 import io
+import json
 import math
 import time
 from dataclasses import dataclass
@@ -194,6 +195,7 @@ class LogSession:
         self.good_match = analyzer.tracker.cfg.good_match if analyzer is not None else 0.6
         self.commits = 0
         self._miss_run = 0  # missed steps since the last step heard
+        self.sound: dict | None = None  # the segment's sound as analyze would call it (set by finish)
 
     @property
     def nominal_s(self) -> float | None:
@@ -342,9 +344,15 @@ class LogSession:
     def finish(self, reason: str) -> None:
         """End of the segment: decide the last slots, write the last buckets, commit."""
         if self.an is not None:
-            self.an.finish()
+            summary = self.an.finish()
             self.take(self.an.drain_final_events())
             self.position_s = self.an.duration_s
+            # what the segment's sound was, as analyze would say it: a log of a sound that is not a
+            # stepping motor (an escapement, a rattle) holds beats, not steps, and its report says so
+            self.sound = {"sound": summary.sound, "beat_interval_s": summary.measured_interval_s,
+                          "beats": summary.extras.get("beats", {}).get("heard"),
+                          "why": next((w for w in summary.warnings if "not a quartz stepping" in w), None)}
+            self.store.set_meta(f"segment {self.seg} sound", json.dumps(self.sound))
         if self._win is not None:
             _, s0, h, wa, ad, _ = self._win
             self.store.add_block(self.seg, s0, h, wa, ad)

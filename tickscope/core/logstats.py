@@ -199,9 +199,22 @@ def polarity_on_log(segments, ev: dict[str, np.ndarray], K: np.ndarray) -> tuple
 
 
 def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), override_ppm: float | None = None,
-                override_u95: float = 0.0) -> LogFigures:
-    """Everything the log report shows (see module docstring)."""
+                override_u95: float = 0.0, sounds: dict | None = None) -> LogFigures:
+    """Everything the log report shows (see module docstring).
+
+    ``sounds``: per segment id, what its sound was as analyze would call it (recorded when the
+    segment ended); segments whose sound was not a stepping motor hold beats, not steps.
+    """
     segments = list(segments)
+    sounds = sounds or {}
+    beats_only = [s for s in segments if (sounds.get(s.id) or {}).get("sound") == "not-stepping"]
+    if beats_only and len(beats_only) == len(segments):
+        info = sounds[beats_only[-1].id]
+        iv = info.get("beat_interval_s")
+        why = info.get("why") or ("the sound is not a quartz stepping-motor pattern"
+                                  + ("" if iv is None else f" (beat interval heard {iv:.4f} s)"))
+        note = "the log holds beats, not quartz steps: " + why
+        return _empty(segments, None, ev, gaps, minutes, note=note, steps=0)
     nominal = next((s.step_interval_s for s in segments if s.step_interval_s), None)
     kinds = ev["kind"]
     if nominal is None or not len(kinds):
@@ -490,13 +503,16 @@ def _best_stretch(spans, gaps, anomalies_t, K, T, G, good, nominal, u95, calibra
             "rate_ci95_s_per_day": None if r is None else r.ci95_s_per_day}
 
 
-def _empty(segments, nominal, ev, gaps, minutes) -> LogFigures:
+def _empty(segments, nominal, ev, gaps, minutes, *, note: str = "no stepping pattern has been logged yet",
+           steps: int | None = None) -> LogFigures:
     z = np.zeros(0)
     dur = sum(s.duration_s for s in segments)
+    if steps is None:
+        steps = int(np.count_nonzero(ev["kind"] == KIND_STEP))
     return LogFigures(segments=len(segments), duration_s=dur, span_s=dur, nominal_s=nominal,
-                      steps_detected=int(np.count_nonzero(ev["kind"] == KIND_STEP)), missed_steps=0, failed_steps=0,
+                      steps_detected=steps, missed_steps=0, failed_steps=0,
                       correction_pulses=0, rejected_events=0, rate=None, clock_correction_ppm=None, clock_ppm_u95=0.0,
                       groups=1, gaps=[], hourly=[], minutes=_merge_minutes(minutes), adev=None, tie=None,
                       worst_hour=None, best_stretch=None, missed_times_s=z, failed_times_s=z, rejected_times_s=z,
-                      notes=["no stepping pattern has been logged yet"], event_t=ev["time_s"], event_k=ev["step"],
+                      notes=[note], event_t=ev["time_s"], event_k=ev["step"],
                       event_pol=ev["pol"])

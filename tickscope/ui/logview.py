@@ -72,7 +72,8 @@ def render_log(fig, *, db: str, label: str, time_base: str, width: int = 100,
     head = Text()
     head.append(f"{label or 'unlabelled movement'}", style="bold")
     head.append(f" · {fig.segments} segment{'s' if fig.segments != 1 else ''} · {_hms(fig.span_s)} "
-                f"({_hms(fig.duration_s)} of audio) · step every {fig.nominal_s or 0:g} s")
+                f"({_hms(fig.duration_s)} of audio) · "
+                + (f"step every {fig.nominal_s:g} s" if fig.nominal_s else "no step interval"))
     parts.append(head)
     parts.append(Text(f"time base: {time_base}", style="dim"))
     r = fig.rate
@@ -81,7 +82,7 @@ def render_log(fig, *, db: str, label: str, time_base: str, width: int = 100,
         v.append(rate_words(r.rate_s_per_day), style="bold")
         v.append(f"  ± {r.ci95_s_per_day:.3f} s/day (95 %) over the whole log")
     else:
-        v.append("no rate yet: no stepping pattern logged", style="yellow")
+        v.append("no rate: " + (fig.notes[0] if fig.notes else "no stepping pattern logged"), style="yellow")
     parts.append(v)
     c = Text()
     c.append(f"steps {fig.steps_detected}")
