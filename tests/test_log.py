@@ -490,3 +490,27 @@ def test_log_of_an_escapement_holds_beats_not_steps(tmp_path):
     assert any("beats, not quartz steps" in n for n in rep["notes"])
     r = _cli("report", db)
     assert "step every 0 s" not in r.stdout and "beats, not quartz steps" in " ".join(r.stdout.split())
+
+
+def test_report_of_a_lossy_replay_fits_within_the_codecs_shifts(tmp_path):
+    # The voice note of test_realistic (Opus at ~28 kbit/s, whose encoder moves every step by ~35 us
+    # at once partway through): analyze fits the rate within the stretches between such shifts; the
+    # report of the same file replayed through a log must do the same and agree with it.
+    sc = Scenario(duration_s=240, rate_s_per_day=12.3, movement="wristwatch", snr_db=26.8, seed=105)
+    path = str(tmp_path / "voice-note.opus")
+    write_simulation(path, sc, compression_level=0.9)
+    a = subprocess.run([sys.executable, "-m", "tickscope", "analyze", path, "--json"], capture_output=True, text=True)
+    ana = json.loads(a.stdout)
+    db = str(tmp_path / "vn.db")
+    r = _cli("log", db, "--source", path, "--json")
+    assert r.returncode == 0, r.stderr
+    rep = json.loads(_cli("report", db, "--json").stdout)
+    assert rep["rate_s_per_day"] == pytest.approx(ana["rate_s_per_day"], abs=1e-4)
+    assert any("lossy codec" in n for n in rep["notes"])
+    # without the segment's lossy mark (a log written before the report knew of it) no shift is
+    # looked for, and the line through all the steps is off by far more than analyze's interval
+    with sqlite3.connect(db) as con:
+        con.execute("DELETE FROM meta WHERE key LIKE 'segment % lossy'")
+    plain = json.loads(_cli("report", db, "--json").stdout)
+    assert abs(plain["rate_s_per_day"] - 12.3) > 10 * ana["rate_ci95_statistical_s_per_day"]
+    assert not any("lossy codec" in n for n in plain["notes"])

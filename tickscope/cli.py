@@ -590,8 +590,9 @@ def cmd_report(args) -> int:
                 sounds[s_.id] = json.loads(raw)
             except ValueError:
                 pass
+    lossy = {s_.id for s_ in segs if meta.get(f"segment {s_.id} lossy") == "1"}
     fig = log_figures(segs, ev, gaps=gaps, minutes=minutes, override_ppm=over_ppm, override_u95=over_u,
-                      sounds=sounds)
+                      sounds=sounds, lossy=lossy)
     if args.steps_csv:
         with open(args.steps_csv, "w", newline="") as fh:
             write_log_csv(fh, fig.event_t, fig.event_k, ev, fig.event_pol)

@@ -196,6 +196,9 @@ class LogSession:
         self.commits = 0
         self._miss_run = 0  # missed steps since the last step heard
         self.sound: dict | None = None  # the segment's sound as analyze would call it (set by finish)
+        if analyzer is not None and getattr(analyzer, "lossy", False):
+            # the report searches such a segment's step times for a codec's abrupt shifts, as analyze does
+            store.set_meta(f"segment {seg} lossy", "1")
 
     @property
     def nominal_s(self) -> float | None:

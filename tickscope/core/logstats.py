@@ -31,7 +31,7 @@ import numpy as np
 from . import stability as stab
 from .dsp import line_fit
 from .diagnose import LONGEST_KNOWN_PERIOD_S, UNSEEN_CORRECTION_S
-from .rate import fit_rate as _fit_rate
+from .rate import fit_rate as _fit_rate, level_shifts, stretch_weights
 from ..model import FLAG_BITS, KIND_CODES
 from ..units import SECONDS_PER_DAY
 
@@ -199,11 +199,14 @@ def polarity_on_log(segments, ev: dict[str, np.ndarray], K: np.ndarray) -> tuple
 
 
 def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), override_ppm: float | None = None,
-                override_u95: float = 0.0, sounds: dict | None = None) -> LogFigures:
+                override_u95: float = 0.0, sounds: dict | None = None, lossy=frozenset()) -> LogFigures:
     """Everything the log report shows (see module docstring).
 
     ``sounds``: per segment id, what its sound was as analyze would call it (recorded when the
     segment ended); segments whose sound was not a stepping motor hold beats, not steps.
+    ``lossy``: ids of segments replayed from a lossy file; when every step comes from one, the
+    overall rate is fitted within the stretches between a codec's abrupt shifts of the step times
+    (``rate.level_shifts``, weighted by ``rate.stretch_weights``), as analyze fits such a file.
     """
     segments = list(segments)
     sounds = sounds or {}
@@ -237,8 +240,17 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     # overall rate: common slope, one intercept per group
     rate = None
     if good.sum() >= 3 and np.ptp(K[good]) >= 2:
+        groups, weights = G[good], None
+        if lossy and set(np.unique(ev["seg"][good]).tolist()) <= set(lossy):
+            shifts = level_shifts(K[good], T[good])
+            if shifts is not None:
+                groups = np.unique(np.stack([G[good], shifts]), axis=1, return_inverse=True)[1].ravel()
+                weights = stretch_weights(K[good], T[good], groups)
+                notes.append(f"the audio went through a lossy codec, which shifted the step times abruptly "
+                             f"{int(shifts.max())} time{'s' if shifts.max() > 1 else ''}: the overall rate is "
+                             "fitted within the stretches between shifts")
         rate = fit_rate(K[good], T[good], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
-                        groups=G[good])
+                        groups=groups, weights=weights)
     # timeline spans: segments and gaps between them
     spans = []
     for s in segments:
