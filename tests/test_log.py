@@ -11,12 +11,13 @@ import sys
 import time
 
 import numpy as np
+import soundfile as sf
 import pytest
 
 from conftest import match_times, true_step_times
 from tickscope.cli import main
 from tickscope.core.logstats import log_figures
-from tickscope.core.simulate import Scenario
+from tickscope.core.simulate import Scenario, render_all
 from tickscope.errors import StoreError
 from tickscope.export import write_log_csv
 from tickscope.io.simfile import write_simulation
@@ -514,3 +515,19 @@ def test_report_of_a_lossy_replay_fits_within_the_codecs_shifts(tmp_path):
     plain = json.loads(_cli("report", db, "--json").stdout)
     assert abs(plain["rate_s_per_day"] - 12.3) > 10 * ana["rate_ci95_statistical_s_per_day"]
     assert not any("lossy codec" in n for n in plain["notes"])
+
+
+def test_ticking_that_stops_before_the_end_is_not_missed_in_the_hourly_lines(tmp_path):
+    # the movement stops (or the microphone is taken away) 8 s before the recording ends: those
+    # slots are silence, not missed steps -- in the totals and, as it once was not, in the hour's line
+    sc = Scenario(duration_s=40, snr_db=30, seed=3)
+    x, truth = render_all(sc)
+    fs = sc.samplerate_hz
+    y = np.concatenate([x[:, 0], np.random.default_rng(0).normal(0, 1e-4, 8 * fs)]).astype(np.float32)
+    wav = str(tmp_path / "stops.wav")
+    sf.write(wav, y, fs)
+    d = json.loads(_cli("log", str(tmp_path / "a.db"), "--source", wav, "--json").stdout)
+    assert d["missed"] == 0 and d["stopped_slots"] >= 6
+    out = _cli("log", str(tmp_path / "b.db"), "--source", wav).stdout
+    hour_lines = [ln for ln in out.splitlines() if ln.startswith("h0")]
+    assert hour_lines and not any("missed" in ln for ln in hour_lines), out

@@ -504,6 +504,7 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
     live = None
     meter = _PeakMeter()
     last_draw = 0.0
+    shown, last_fit, fit_cost_s = None, 0.0, 0.0
     prior = len(segs)
     with cap:
         if not quiet:
@@ -520,6 +521,12 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
                 now = time.monotonic()
                 level = meter.update(b.samples, now)
                 if live is not None and (new_step or now - last_draw >= 0.5):
+                    # refit the summary at most every 20x what a refit costs (as listen does)
+                    if shown is None or now - last_fit >= 20.0 * fit_cost_s:
+                        t_fit = time.monotonic()
+                        shown = ls.an.summary()
+                        last_fit = time.monotonic()
+                        fit_cost_s = last_fit - t_fit
                     st = LiveStatus(str(args.device), args.rate_hz, ls.an.channel, ls.position_s, level,
                                     cap.overflows + (1 if cap.dropped_frames else 0), None)
                     w = min(con.width, 160)
@@ -527,7 +534,7 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
                     info = _text(f"log {os.path.basename(args.db)} · segment {prior + 1}: {t['steps']} steps, "
                                  f"{t['missed']} missed, {t['failed']} failed · committed {ls.commits}× · "
                                  "the rate above covers the last 1-2 h", style="dim")
-                    live.update(render_live(ls.an.summary(), st, width=w, mode="logging",
+                    live.update(render_live(shown, st, width=w, mode="logging",
                                             extra=[info, *hourly_lines(ls.hourly(), w, max_rows=6)]), refresh=True)
                     last_draw = now
                 if limit_s is not None and ls.position_s >= limit_s:

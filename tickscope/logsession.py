@@ -195,6 +195,7 @@ class LogSession:
         self.good_match = analyzer.tracker.cfg.good_match if analyzer is not None else 0.6
         self.commits = 0
         self._miss_run = 0  # missed steps since the last step heard
+        self._miss_hours: list[_Bucket] = []  # the hour bucket of each of them
         self.sound: dict | None = None  # the segment's sound as analyze would call it (set by finish)
         if analyzer is not None and getattr(analyzer, "lossy", False):
             # the report searches such a segment's step times for a codec's abrupt shifts, as analyze does
@@ -262,13 +263,16 @@ class LogSession:
             key = _count_key(ev.kind)
             if key in self.totals:
                 self.totals[key] += 1
-            if ev.kind == "missed":
-                self._miss_run += 1
-            elif ev.kind == "step":
-                self._miss_run = 0
             good = ev.kind == "step" and ev.match >= self.good_match and "low-match" not in ev.flags
             self._bucket_minute(ev).add(ev, good)
-            self._bucket_hour(ev).add(ev, good)
+            hour = self._bucket_hour(ev)
+            hour.add(ev, good)
+            if ev.kind == "missed":
+                self._miss_run += 1
+                self._miss_hours.append(hour)
+            elif ev.kind == "step":
+                self._miss_run = 0
+                self._miss_hours = []
             if self.clips is not None and ev.kind in CLIP_KINDS:
                 self.clips.request(ev.kind, ev.time_s)
         self._close_minutes(self.position_s)
@@ -362,7 +366,11 @@ class LogSession:
             self._win = None
         # slots after the last step heard are silence, not missed steps (as analyze counts them)
         self.totals["missed"] -= self._miss_run
-        self.totals["stopped_slots"] = self._miss_run
+        # (the analyzer drops the last ones it decides at the end itself; it counts them all)
+        self.totals["stopped_slots"] = max(self._miss_run, getattr(self.an, "trailing_silence_slots", 0) or 0)
+        for b in self._miss_hours:  # the open hour's count too (the screen and the end's hourly lines)
+            if b is self._hour:
+                b.counts["missed"] -= 1
         self._close_minutes(self.position_s, final=True)
         if self._hour is not None:
             self.hours.append(self._hour_rate(self._hour, complete=False))
