@@ -435,7 +435,7 @@ class StepTracker:
                 prefer[i] = pr * self.fs - o.imp.snippet_start - self.templates[pols[i]].onset_index
         for pol in set(pols):
             idx = [i for i, q in enumerate(pols) if q == pol]
-            lag[idx], rho[idx] = match_many(np.stack([opens[i].imp.wsnippet for i in idx]), self.templates[pol],
+            lag[idx], rho[idx] = match_many([opens[i].imp.wsnippet for i in idx], self.templates[pol],
                                             max_lag=int(0.003 * self.fs), prefer=prefer[idx])
         for i, o in enumerate(opens):
             k = slots[i]

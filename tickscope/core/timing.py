@@ -151,23 +151,33 @@ def match(snippet: np.ndarray, template: Template, *, max_lag: int, center: int 
 
 def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center: int = 0,
                prefer: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`match` for the rows of ``snippets`` (2-D, equal lengths) at once: the same numbers,
-    with the FFTs, the lobe search and Newton's method run over all rows together.
+    """:func:`match` for the rows of ``snippets`` (2-D, or a list of equal-length 1-D arrays) at
+    once: the same numbers, with the FFTs, the lobe search and Newton's method run over all rows
+    together.  Only the part of each row the search needs is copied.
 
     ``prefer`` (a lag per row, nan for none): among lobes within 3 % of the best, take the one
     nearest this lag rather than the highest.  A ringing sound whose pitch varies a little from
     tick to tick can make the next ring cycle's lobe read a hair higher; the step grid knows
     where the step is to far better than a cycle, so it settles such near-ties.
     """
-    S = np.asarray(snippets, dtype=np.float64)
-    nrow = S.shape[0]
+    if isinstance(snippets, np.ndarray) and snippets.ndim == 2:
+        nrow, width = snippets.shape
+    else:
+        nrow, width = len(snippets), len(snippets[0])
     s0, s1 = _window_span(template)
     a = max(0, s0 + center - max_lag)
-    b = min(S.shape[1], s1 + center + max_lag)
-    x = S[:, a:b]
+    b = min(width, s1 + center + max_lag)
     nt = s1 - s0
-    nfft = 1 << int(np.ceil(np.log2(x.shape[1] + nt)))
-    C = np.fft.rfft(x, nfft, axis=1) * _template_spectrum(template, s0, s1, nfft)
+    nfft = 1 << int(np.ceil(np.log2(max(b - a, 0) + nt)))
+    # the searched part of each row, straight into rows as long as the FFT (zeros: its padding)
+    xp = np.zeros((nrow, nfft))
+    if isinstance(snippets, np.ndarray) and snippets.ndim == 2:
+        xp[:, : b - a] = snippets[:, a:b]
+    else:
+        for i, row in enumerate(snippets):
+            xp[i, : b - a] = row[a:b]
+    x = xp[:, : b - a]
+    C = np.fft.rfft(xp, axis=1) * _template_spectrum(template, s0, s1, nfft)
     c = np.fft.irfft(C, nfft, axis=1)
     # c[j] = sum_n x[n + j] t[n]; lag j in x coordinates is lag (a + j - s0) in snippet coordinates
     lags = np.arange(center - max_lag, center + max_lag + 1) + (s0 - a)
