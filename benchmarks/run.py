@@ -92,6 +92,7 @@ def bench_throughput(tmp, hours_list, repeats: int = 5):
                                         missed_steps=(100, 2000), seed=5), subtype="PCM_16")
         gen = time.perf_counter() - t
         dur = hours * 3600.0
+        os.sync()  # the new file's pages written out first: their writeback would slow the runs below
         run_cli(path, env)  # warm-up: page cache, bytecode
         runs = [run_cli(path, env) for _ in range(repeats)]
         walls = sorted(r[0] for r in runs)
