@@ -394,7 +394,10 @@ class Analyzer:
             warnings.append(f"{self.n_rejected} sounds off the step grid (knocks, voices, another clock) were ignored")
         if abs(dc) > 0.05:
             warnings.append(f"the recording has a DC offset of {dc:+.3f} full scale (removed before analysis)")
-        warnings += diag.get("warnings", [])
+        # a second clock as loud as the steps puts the rate itself in doubt: that note comes first
+        first = [w for w in diag.get("warnings", []) if w.startswith("another clock ticks in the recording nearly")]
+        warnings[:0] = first
+        warnings += [w for w in diag.get("warnings", []) if w not in first]
         if self.trailing_silence_slots:
             warnings.append(f"the steps stopped {self.trailing_silence_slots} slots before the end "
                             "(not counted as missed)")
