@@ -206,6 +206,28 @@ def cmd_devices(args) -> int:
     return 0
 
 
+class _Refit:
+    """The summary a live screen shows, refitted from every step so far.  A refit grows with the
+    session (a 4 h summary costs ~160 ms), so once it costs more than 5 % of the time between
+    refits it is done less often and the screen keeps the last one."""
+
+    def __init__(self, summarize):
+        self.summarize = summarize
+        self.shown = None
+        self.last_s = 0.0
+        self.cost_s = 0.0
+
+    def get(self, now: float):
+        if self.shown is None or now - self.last_s >= 20.0 * self.cost_s:
+            import time
+
+            t = time.monotonic()
+            self.shown = self.summarize()
+            self.last_s = time.monotonic()
+            self.cost_s = self.last_s - t
+        return self.shown
+
+
 class _PeakMeter:
     """Input level for the live screens: the peak of the last half second, dBFS."""
 
@@ -257,7 +279,7 @@ def cmd_listen(args) -> int:
                 live = Live(console=con, refresh_per_second=4, transient=False, auto_refresh=False)
                 live.start()
             last_draw = 0.0
-            shown, last_fit, fit_cost_s = None, 0.0, 0.0
+            refit = _Refit(an.summary)
             for b in cap.blocks():
                 new_step = any(ev.kind == "step" for ev in an.feed(b))
                 if rec:
@@ -272,15 +294,9 @@ def cmd_listen(args) -> int:
                         rec = None
                 now = time.monotonic()
                 level = meter.update(b.samples, now)
-                # redraw as soon as a step is decided, and at least twice a second; the summary is
-                # refitted from every step so far, which grows with the session: once it costs more
-                # than 5 % of the time between refits, refit less often (the screen keeps the last one)
+                # redraw as soon as a step is decided, and at least twice a second
                 if live is not None and (new_step or now - last_draw >= 0.4):
-                    if shown is None or now - last_fit >= 20.0 * fit_cost_s:
-                        t_fit = time.monotonic()
-                        shown = an.summary()
-                        last_fit = time.monotonic()
-                        fit_cost_s = last_fit - t_fit
+                    shown = refit.get(now)
                     st = LiveStatus(str(src), args.rate_hz, args.channel, an.duration_s, level,
                                     cap.overflows + (1 if cap.dropped_frames else 0), args.save)
                     live.update(render_live(shown, st, width=min(con.width, 160)), refresh=True)
@@ -504,7 +520,7 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
     live = None
     meter = _PeakMeter()
     last_draw = 0.0
-    shown, last_fit, fit_cost_s = None, 0.0, 0.0
+    refit = _Refit(lambda: ls.an.summary())
     prior = len(segs)
     with cap:
         if not quiet:
@@ -521,12 +537,7 @@ def _log_device(ls, cap, limit_s, args, segs, *, quiet: bool) -> str:
                 now = time.monotonic()
                 level = meter.update(b.samples, now)
                 if live is not None and (new_step or now - last_draw >= 0.5):
-                    # refit the summary at most every 20x what a refit costs (as listen does)
-                    if shown is None or now - last_fit >= 20.0 * fit_cost_s:
-                        t_fit = time.monotonic()
-                        shown = ls.an.summary()
-                        last_fit = time.monotonic()
-                        fit_cost_s = last_fit - t_fit
+                    shown = refit.get(now)
                     st = LiveStatus(str(args.device), args.rate_hz, ls.an.channel, ls.position_s, level,
                                     cap.overflows + (1 if cap.dropped_frames else 0), None)
                     w = min(con.width, 160)

@@ -394,10 +394,8 @@ class Analyzer:
             warnings.append(f"{self.n_rejected} sounds off the step grid (knocks, voices, another clock) were ignored")
         if abs(dc) > 0.05:
             warnings.append(f"the recording has a DC offset of {dc:+.3f} full scale (removed before analysis)")
-        # a second clock as loud as the steps puts the rate itself in doubt: that note comes first
-        first = [w for w in diag.get("warnings", []) if w.startswith("another clock ticks in the recording nearly")]
-        warnings[:0] = first
-        warnings += [w for w in diag.get("warnings", []) if w not in first]
+        warnings[:0] = diag.get("first_warnings", [])  # notes that put the rate itself in doubt
+        warnings += diag.get("warnings", [])
         if self.trailing_silence_slots:
             warnings.append(f"the steps stopped {self.trailing_silence_slots} slots before the end "
                             "(not counted as missed)")
@@ -438,7 +436,7 @@ class Analyzer:
         nominal = tr.nominal_s
         good = self._good_steps()
         k, t = self.step_k.values[good], self.step_t.values[good]
-        out: dict = {"json": {}, "lines": [], "warnings": []}
+        out: dict = {"json": {}, "lines": [], "warnings": [], "first_warnings": []}
         js, lines = out["json"], out["lines"]
         if rate is None or nominal is None:
             return out
@@ -491,8 +489,8 @@ class Analyzer:
             other_rate = SECONDS_PER_DAY * (nominal * (1.0 + cp * 1e-6) / oc.interval_s - 1)
             js["other_clock"] = {"rate_s_per_day": _r(other_rate, 3), "level_db": _r(oc.level_db, 1),
                                  "ticks": oc.ticks, "drift_ms_per_min": _r(oc.drift_ms_per_min, 2)}
-            if oc.level_db >= -6.0:
-                out["warnings"].append(
+            if oc.level_db >= -6.0:  # as loud as the steps: the rate itself is in doubt, this note first
+                out["first_warnings"].append(
                     f"another clock ticks in the recording nearly as loud as the steps ({oc.level_db:+.1f} dB): it runs at "
                     f"{other_rate:+.1f} s/day on the same time base and drifts {oc.drift_ms_per_min:+.1f} ms a minute "
                     "against the steps timed here; make sure these are the movement's (move the microphone onto it, "

@@ -52,7 +52,8 @@ def detect_inhibition(k: np.ndarray, t: np.ndarray, nominal_s: float, *, clock_p
     """Find a periodic lengthening of one step interval (logic regulation).
 
     The intervals of consecutive steps are folded at every candidate period M (2 s up to a
-    fifth of the record and at most ``MAX_PERIOD_S``, in steps); at the true period one phase holds all corrections.
+    fifth of the record and at most ``MAX_PERIOD_S``, in steps); at the true period one phase
+    holds all corrections.
     The score is that phase's mean excess over the other phases in standard errors; the
     period with the highest score wins, and it must exceed ``z_min`` (many periods and
     phases are tried, so the bar is high).
@@ -293,8 +294,9 @@ def other_clock(other_t: np.ndarray, other_peak_dbfs: np.ndarray, step_k: np.nda
     What is left is searched for a grid of its own within half a percent of the steps' interval
     (a quartz clock keeps within a few hundred ppm) over the last ``window_s``: at each trial
     period the sounds' phases are counted in 5 ms bins (a Hough-style vote); the interval is then
-    fitted by least squares through the sounds within ``tolerance_s`` of the best grid.  Its ticks must move against the steps by 5 ms or more over the
-    window, else they cannot be told from sounds tied to the steps.
+    fitted by least squares through the sounds within ``tolerance_s`` of the best grid.  Its
+    ticks must move against the steps by 5 ms or more over the window, else they cannot be told
+    from sounds tied to the steps.
     """
     other_t = np.asarray(other_t, dtype=np.float64)
     other_peak_dbfs = np.asarray(other_peak_dbfs, dtype=np.float64)
@@ -311,13 +313,12 @@ def other_clock(other_t: np.ndarray, other_peak_dbfs: np.ndarray, step_k: np.nda
     if len(t) < 10 or len(st) < 10:
         return None
     interval_s, a0 = dsp.line_fit(sk - sk[0], st)
+    nb = max(2, int(interval_s / 0.005))  # 5 ms bins of the cycle, here and in the search below
     # set aside the sounds tied to the steps: crowded delays after the step grid
-    delay = np.mod(t - a0, interval_s)
-    nbins = max(1, int(interval_s / 0.005))
-    hist = np.bincount(np.minimum((delay / interval_s * nbins).astype(np.int64), nbins - 1), minlength=nbins)
-    crowded = hist > max(5, 0.2 * len(st))
+    delay_bin = np.minimum((np.mod(t - a0, interval_s) / interval_s * nb).astype(np.int64), nb - 1)
+    crowded = np.bincount(delay_bin, minlength=nb) > max(5, 0.2 * len(st))
     crowded = crowded | np.roll(crowded, 1) | np.roll(crowded, -1)
-    keep = ~crowded[np.minimum((delay / interval_s * nbins).astype(np.int64), nbins - 1)]
+    keep = ~crowded[delay_bin]
     t, pk = t[keep], pk[keep]
     if len(t) < 10:
         return None
@@ -332,7 +333,6 @@ def other_clock(other_t: np.ndarray, other_peak_dbfs: np.ndarray, step_k: np.nda
     half = int(0.005 * interval_s / dp)
     trials = interval_s + dp * np.arange(-half, half + 1)
     tr = t - t[0]
-    nb = max(2, int(interval_s / 0.005))
     best_n, best_p, best_bin = 0, None, 0
     for chunk in np.array_split(trials, max(1, len(trials) * len(tr) // 2_000_000 + 1)):
         ph = np.mod(tr[None, :], chunk[:, None]) / chunk[:, None]
@@ -355,7 +355,8 @@ def other_clock(other_t: np.ndarray, other_peak_dbfs: np.ndarray, step_k: np.nda
     idx = on[first]
     # a clock ticks every time: most of the span's ticks must be heard (noise lining up by chance
     # fills a grid only here and there)
-    if len(idx) < max(10, 0.3 * len(st), 0.6 * span / best_p):
+    need = max(10, 0.3 * len(st), 0.6 * span / best_p)
+    if len(idx) < need:
         return None
     b, a = dsp.line_fit(n[idx], tr[idx])
     # a clock's ticks sit tight on their line (a spread of 2 ms at most in the sweep of simulated
@@ -364,7 +365,7 @@ def other_clock(other_t: np.ndarray, other_peak_dbfs: np.ndarray, step_k: np.nda
     # within 5 ms, ask for most of them again, and for a spread (1.4826 MAD) of 3 ms at most
     res = tr[idx] - a - b * n[idx]
     tight = np.abs(res) <= 0.005
-    if np.count_nonzero(tight) < max(10, 0.3 * len(st), 0.6 * span / best_p):
+    if np.count_nonzero(tight) < need:
         return None
     idx = idx[tight]
     b, a = dsp.line_fit(n[idx], tr[idx])

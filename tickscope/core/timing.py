@@ -160,10 +160,7 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
     tick to tick can make the next ring cycle's lobe read a hair higher; the step grid knows
     where the step is to far better than a cycle, so it settles such near-ties.
     """
-    if isinstance(snippets, np.ndarray) and snippets.ndim == 2:
-        nrow, width = snippets.shape
-    else:
-        nrow, width = len(snippets), len(snippets[0])
+    nrow, width = len(snippets), len(snippets[0])  # rows of a 2-D array or arrays of a list alike
     s0, s1 = _window_span(template)
     a = max(0, s0 + center - max_lag)
     b = min(width, s1 + center + max_lag)
@@ -171,11 +168,8 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
     nfft = 1 << int(np.ceil(np.log2(max(b - a, 0) + nt)))
     # the searched part of each row, straight into rows as long as the FFT (zeros: its padding)
     xp = np.zeros((nrow, nfft))
-    if isinstance(snippets, np.ndarray) and snippets.ndim == 2:
-        xp[:, : b - a] = snippets[:, a:b]
-    else:
-        for i, row in enumerate(snippets):
-            xp[i, : b - a] = row[a:b]
+    for i, row in enumerate(snippets):
+        xp[i, : b - a] = row[a:b]
     x = xp[:, : b - a]
     C = np.fft.rfft(xp, axis=1) * _template_spectrum(template, s0, s1, nfft)
     c = np.fft.irfft(C, nfft, axis=1)
