@@ -57,6 +57,11 @@ def test_kernels_reject_wrong_buffers():
         _kernels.ringdown([0.0] * 100, 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0)
     assert _kernels.ringdown(np.zeros(5), 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0) is None  # too short
     assert _kernels.ringdown(np.zeros(500), 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0) is None  # silence
+    x = np.zeros(100, np.float32)
+    with pytest.raises(ValueError):  # head not lag samples long
+        _kernels.frame_power(x, np.zeros(2, np.float32), 1, 10, np.zeros(10))
+    with pytest.raises(ValueError):  # out not one value a frame
+        _kernels.frame_power(x, np.zeros(1, np.float32), 1, 10, np.zeros(9))
 
 
 @needs_compiled
@@ -127,3 +132,25 @@ def test_whole_analysis_without_the_compiled_loops_gives_the_same_result(tmp_pat
     assert b["rate_s_per_day"] == pytest.approx(a["rate_s_per_day"], abs=1e-5)
     for pol in ("A", "B"):
         assert b["ringdown"][pol]["decay_ms_median"] == pytest.approx(a["ringdown"][pol]["decay_ms_median"], abs=1e-3)
+
+
+@needs_compiled
+@pytest.mark.parametrize("lag", [1, 2, 5, 37])
+@pytest.mark.parametrize("hop", [4, 22, 24, 48])
+def test_frame_power_matches_numpy(lag, hop):
+    from tickscope.core.detect import ImpactDetector
+
+    rng = np.random.default_rng(lag * 100 + hop)
+    det = ImpactDetector(48000)
+    det.hop = hop
+    for n in (0 if lag == 1 else 3, lag, 10 * hop + 7, 4096):
+        x = (rng.standard_normal(n) * rng.uniform(1e-4, 0.5)).astype(np.float32)
+        for prev in (np.zeros(0, np.float32), rng.standard_normal(3).astype(np.float32),
+                     rng.standard_normal(lag + 9).astype(np.float32)):
+            ref = det._frame_energy(x, prev, lag)
+            e, hi, lo, total = kernels.frame_power(x, det._head(x, prev, lag), lag, hop)
+            assert e.shape == ref.shape
+            np.testing.assert_allclose(e, ref, rtol=2e-6, atol=1e-30)
+            if n:
+                assert (hi, lo) == (float(x.max()), float(x.min()))
+                assert total == pytest.approx(float(np.sum(x, dtype=np.float64)), rel=1e-5, abs=1e-5)

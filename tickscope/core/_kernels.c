@@ -13,6 +13,10 @@
  *       -> (slope_db_per_s, fit_range_db, fit_rms_db) or None
  *       Schroeder's backward-integrated decay curve and a line through it in dB
  *       (see measure_ringdown in ringdown.py for the method and its sources).
+ *   frame_power(x, head, lag, hop, out) -> (max, min, sum)
+ *       The detector's one pass over every sample (ImpactDetector._frame_energy): the mean power
+ *       of x[n] - x[n-lag] per frame of hop samples into out (head holds the lag samples before
+ *       x), and the chunk's largest and smallest sample and its sum.
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
@@ -271,12 +275,104 @@ ringdown(PyObject *self, PyObject *args)
     return Py_BuildValue("ddd", slope, range_db, rms);
 }
 
+/* Eight independent accumulators per quantity (per frame in single precision, as numpy's float32
+   products; the frames' sums then in double): one running sum would wait on the adder's latency at
+   every sample; eight let the compiler keep several additions in flight, or in one vector. */
+#define LANES 8
+
+/* One frame's sums, the additions reassociated so that they run as vectors (the order of a float
+   sum's terms changes its last bits only); samples are finite here (the reader zeroes others). */
+__attribute__((optimize("O3", "fast-math")))
+static void
+frame_sums(const float *p, const float *q, Py_ssize_t hop, float *e_out, float *s_out, float *hi_io, float *lo_io)
+{
+    float e = 0.0f, s = 0.0f, hi = *hi_io, lo = *lo_io;
+    for (Py_ssize_t j = 0; j < hop; j++) {
+        const float v = p[j], d = v - q[j];
+        e += d * d;
+        s += v;
+        hi = v > hi ? v : hi;
+        lo = v < lo ? v : lo;
+    }
+    *e_out = e;
+    *s_out = s;
+    *hi_io = hi;
+    *lo_io = lo;
+}
+
+static PyObject *
+frame_power(PyObject *self, PyObject *args)
+{
+    PyObject *xo, *ho, *oo;
+    Py_ssize_t lag, hop;
+    Py_buffer xb, hb, ob;
+    if (!PyArg_ParseTuple(args, "OOnnO", &xo, &ho, &lag, &hop, &oo))
+        return NULL;
+    if (get_buffer(xo, &xb, 0, sizeof(float), "x") < 0)
+        return NULL;
+    if (get_buffer(ho, &hb, 0, sizeof(float), "head") < 0) {
+        PyBuffer_Release(&xb);
+        return NULL;
+    }
+    if (get_buffer(oo, &ob, 1, sizeof(double), "out") < 0) {
+        PyBuffer_Release(&hb);
+        PyBuffer_Release(&xb);
+        return NULL;
+    }
+    const float *x = (const float *)xb.buf, *head = (const float *)hb.buf;
+    double *out = (double *)ob.buf;
+    const Py_ssize_t n = xb.len / (Py_ssize_t)sizeof(float);
+    const Py_ssize_t nf = hop > 0 ? n / hop : 0;
+    if (lag < 1 || hop < 1 || hb.len != lag * (Py_ssize_t)sizeof(float) || ob.len != nf * (Py_ssize_t)sizeof(double)) {
+        PyErr_SetString(PyExc_ValueError, "frame_power: head must hold lag samples and out len(x) // hop frames");
+        PyBuffer_Release(&ob);
+        PyBuffer_Release(&hb);
+        PyBuffer_Release(&xb);
+        return NULL;
+    }
+    float hi = n ? x[0] : 0.0f, lo = hi;
+    double total = 0.0;
+    Py_BEGIN_ALLOW_THREADS
+    for (Py_ssize_t f = 0; f < nf; f++) {
+        const Py_ssize_t a = f * hop;
+        float e = 0.0f, s = 0.0f;
+        Py_ssize_t j = 0;
+        if (a >= lag)
+            frame_sums(x + a, x + a - lag, hop, &e, &s, &hi, &lo);
+        else {
+            for (; j < hop; j++) {
+                const Py_ssize_t i = a + j;
+                const float v = x[i], d = v - (i >= lag ? x[i - lag] : head[i]);
+                e += d * d;
+                s += v;
+                hi = v > hi ? v : hi;
+                lo = v < lo ? v : lo;
+            }
+        }
+        out[f] = (double)e / (double)hop;
+        total += s;
+    }
+    for (Py_ssize_t i = nf * hop; i < n; i++) { /* samples after the last whole frame */
+        const float v = x[i];
+        total += v;
+        hi = v > hi ? v : hi;
+        lo = v < lo ? v : lo;
+    }
+    Py_END_ALLOW_THREADS
+    PyBuffer_Release(&ob);
+    PyBuffer_Release(&hb);
+    PyBuffer_Release(&xb);
+    return Py_BuildValue("ddd", (double)hi, (double)lo, total);
+}
+
 static PyMethodDef methods[] = {
     {"newton_peaks", newton_peaks, METH_VARARGS,
      "newton_peaks(C, tau, val, w, w1, w2, nfft, iters): refine correlation maxima in place."},
     {"ringdown", ringdown, METH_VARARGS,
      "ringdown(x, samplerate, noise_power, start_db, stop_db, min_range_db, margin_db) -> "
      "(slope_db_per_s, fit_range_db, fit_rms_db) or None."},
+    {"frame_power", frame_power, METH_VARARGS,
+     "frame_power(x, head, lag, hop, out) -> (max, min, sum): mean power of x[n] - x[n-lag] per frame."},
     {NULL, NULL, 0, NULL},
 };
 

@@ -38,3 +38,14 @@ def newton_peaks(C: np.ndarray, tau: np.ndarray, val: np.ndarray, w: np.ndarray,
     """The compiled Newton refinement of :func:`tickscope.core.timing._newton_peaks` (tau updated
     and val filled in place).  Only call when :func:`compiled` is true."""
     _c.newton_peaks(C, tau, val, w, w1, w2, int(nfft), int(iters))
+
+
+def frame_power(x: np.ndarray, head: np.ndarray, lag: int, hop: int) -> tuple[np.ndarray, float, float, float]:
+    """The compiled one-pass form of the detector's per-sample work
+    (:meth:`tickscope.core.detect.ImpactDetector._chunk_power`): the mean power of
+    ``x[n] - x[n-lag]`` per frame of ``hop`` samples (``head``: the ``lag`` samples before ``x``),
+    and the largest sample, the smallest and their sum.  Only call when :func:`compiled` is true."""
+    out = np.empty(len(x) // hop)
+    hi, lo, total = _c.frame_power(np.ascontiguousarray(x, dtype=np.float32),
+                                   np.ascontiguousarray(head, dtype=np.float32), int(lag), int(hop), out)
+    return out, hi, lo, total
