@@ -87,15 +87,23 @@ def test_rolling_window_median_and_mad_equal_statistics_median():
                 assert w.median_abs_deviation(c) == statistics.median([abs(x - c) for x in ref])
 
 
-def test_line_fit_short_agrees_with_numpy_polyfit():
+def test_moving_line_agrees_with_numpy_polyfit_over_a_long_stream():
     import numpy as np
 
-    from tickscope.core.dsp import line_fit_short
+    from tickscope.core.dsp import MovingLine
 
+    # a weekend of steps (times up to 3.5e5 s, where rounding of running sums would show), with gaps
     rng = np.random.default_rng(4)
-    for n in (3, 8, 32):
-        x = np.sort(rng.choice(np.arange(-60, 1), n, replace=False)).astype(float)
-        y = 3600.0 + 1.00002 * x + rng.normal(0, 1e-5, n)
-        b, a = line_fit_short(list(x), list(y))
-        pb, pa = np.polyfit(x, y, 1)
-        assert b == pytest.approx(pb, rel=1e-12) and a == pytest.approx(pa, rel=1e-14)
+    k = np.cumsum(rng.choice([1, 1, 1, 1, 2, 5], 700)) + 345_000
+    t = 0.7 + 1.00002 * k + rng.normal(0, 1e-5, len(k))
+    line = MovingLine(32)
+    for i, (ki, ti) in enumerate(zip(k, t)):
+        line.append(float(ki), float(ti))
+        if i < 2:
+            continue
+        w = slice(max(0, i - 31), i + 1)
+        pb, pa = np.polyfit(k[w] - ki, t[w], 1)
+        b, t_k = line.fit()
+        assert len(line) == min(i + 1, 32)
+        assert b == pytest.approx(pb, rel=1e-9)
+        assert abs(t_k - pa) < 1e-9  # the predicted time of the newest step, to 1 ns (2e-10 s is 4 ulp here)

@@ -118,19 +118,64 @@ class RollingWindow:
         return kth if n % 2 else (second + kth) / 2
 
 
-def line_fit_short(x: list[float], y: list[float]) -> tuple[float, float]:
-    """:func:`line_fit` on plain lists, for the few dozen points of a moving fit (numpy's per-call
-    overhead costs more than the arithmetic there)."""
-    n = len(x)
-    xm = sum(x) / n
-    ym = sum(y) / n
-    sxx = sxy = 0.0
-    for xi, yi in zip(x, y):
-        dx = xi - xm
-        sxx += dx * dx
-        sxy += dx * (yi - ym)
-    b = sxy / sxx
-    return b, ym - b * xm
+class MovingLine:
+    """A least-squares line through the last ``maxlen`` points (x, y), kept up to date as points
+    arrive: running sums about an anchor point, taken anew from the stored points every
+    ``maxlen`` arrivals so that the subtractions of departed points cannot pile up rounding.
+    A few operations a point instead of a pass over the window (the tracker refits at every step)."""
+
+    def __init__(self, maxlen: int):
+        self._pts: deque = deque(maxlen=maxlen)
+        self._since = 0
+        self._x0 = self._y0 = 0.0
+        self._sx = self._sy = self._sxx = self._sxy = 0.0
+
+    def __len__(self) -> int:
+        return len(self._pts)
+
+    def _resum(self) -> None:
+        self._x0, self._y0 = self._pts[-1] if self._pts else (0.0, 0.0)
+        self._sx = self._sy = self._sxx = self._sxy = 0.0
+        for x, y in self._pts:
+            dx, dy = x - self._x0, y - self._y0
+            self._sx += dx
+            self._sy += dy
+            self._sxx += dx * dx
+            self._sxy += dx * dy
+        self._since = 0
+
+    def append(self, x: float, y: float) -> None:
+        pts = self._pts
+        if len(pts) == pts.maxlen:
+            ox, oy = pts[0]
+            dx, dy = ox - self._x0, oy - self._y0
+            self._sx -= dx
+            self._sy -= dy
+            self._sxx -= dx * dx
+            self._sxy -= dx * dy
+        pts.append((x, y))
+        self._since += 1
+        if self._since >= pts.maxlen or len(pts) == 1:
+            self._resum()
+            return
+        dx, dy = x - self._x0, y - self._y0
+        self._sx += dx
+        self._sy += dy
+        self._sxx += dx * dx
+        self._sxy += dx * dy
+
+    def extend(self, points) -> None:
+        for x, y in points:
+            self.append(x, y)
+
+    def fit(self) -> tuple[float, float]:
+        """(slope, the line's value at the newest point's x); needs two distinct x."""
+        n = len(self._pts)
+        xm, ym = self._sx / n, self._sy / n
+        sxx = self._sxx - self._sx * xm
+        b = (self._sxy - self._sx * ym) / sxx
+        x_last = self._pts[-1][0] - self._x0
+        return b, self._y0 + ym + b * (x_last - xm)
 
 
 def sos_power_response(sos: np.ndarray, nfft: int) -> np.ndarray:

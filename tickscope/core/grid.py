@@ -24,7 +24,7 @@ import numpy as np
 
 from ..model import Event
 from .detect import Impact
-from .dsp import RollingWindow, line_fit_short
+from .dsp import MovingLine, RollingWindow
 from .ringdown import measure_ringdown
 from .timing import FIRST_IMPACT_PEAK_S, Template, envelope_lag, learn_template, match, match_many, onset_of
 
@@ -186,7 +186,7 @@ class StepTracker:
         self._open: list[_Open] = []
         self._a = 0.0
         self._b = 1.0
-        self._fit: deque = deque(maxlen=self.cfg.track_steps)
+        self._fit = MovingLine(self.cfg.track_steps)  # (step number, time) of well-matched steps
         self._next_slot = 0
         self._last_step_t = -math.inf
         self._gaps: list[tuple[float, float]] = []
@@ -562,12 +562,11 @@ class StepTracker:
             if step.match >= cfg.good_match:
                 if len(self._fit) >= 3:
                     self._pol_res[k % 2].append(step.t_s - self.predict(k))
-                self._fit.append((k, step.t_s))
+                self._fit.append(k, step.t_s)
                 if len(self._fit) >= 3:
-                    k_last = self._fit[-1][0]
-                    b, a = line_fit_short([k - k_last for k, _ in self._fit], [t for _, t in self._fit])
+                    b, t_k = self._fit.fit()
                     self._b = b
-                    self._a = a - b * k_last
+                    self._a = t_k - b * k
         elif not self._in_gap(pred):
             out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
         return out
