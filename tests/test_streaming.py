@@ -53,3 +53,24 @@ def test_gap_is_not_a_missed_step():
     assert s.missed_steps == 0
     assert s.steps_detected == 14 - 2
     assert len(an.gaps) == 1
+
+
+def test_block_thresholds_in_runs_equal_one_block_at_a_time():
+    # the detector's per-0.25 s thresholds: the vectorised run (used once the running windows are
+    # full) must give the very numbers of the block-by-block reference, and leave the same windows
+    from tickscope.core.detect import ImpactDetector
+
+    rng = np.random.default_rng(11)
+    a, b = ImpactDetector(48000), ImpactDetector(48000)
+    W = a._floors.maxlen
+    for n in (W + 3, 1, 2, 64, 5, 200):
+        qf = rng.lognormal(-20, 1, n)
+        q50 = rng.lognormal(-19, 1, n)
+        q20 = q50 * rng.uniform(0.1, 1, n)
+        q20[rng.random(n) < 0.1] = 0.0  # digital silence in part of a block
+        q90 = q50 * rng.uniform(1, 50, n)
+        full = len(a._floors) == W
+        ref = b._block_thresholds_one_by_one(qf, q20, q50, q90, 2.5, 1e-12)
+        got = (a._block_thresholds if full else a._block_thresholds_one_by_one)(qf, q20, q50, q90, 2.5, 1e-12)
+        assert got == ref
+        assert list(a._floors) == list(b._floors) and list(a._spreads) == list(b._spreads)

@@ -316,25 +316,13 @@ class ImpactDetector:
                 i20, i50, i90 = int(0.2 * (len(seg) - 1)), len(seg) // 2, int(0.9 * (len(seg) - 1))
                 part = np.sort(seg)
                 q20[nb_full], q50[nb_full], q90[nb_full] = part[i20], part[i50], part[i90]
-        thr_b = []
-        fl_b = []
         min_level = 10 ** (self.cfg.min_level_dbfs / 10)
         rel = 10 ** (self.cfg.threshold_db / 10)
-        for qf, a20, a50, a90 in zip(q_floor.tolist(), q20.tolist(), q50.tolist(), q90.tolist()):
-            # noise floor: a low quantile of this block, smoothed over the last seconds
-            self._floors.append(qf)
-            floor = self._floors.median()
-            # How much the background itself fluctuates over 2 ms: white noise barely (many
-            # degrees of freedom), low-frequency noise a lot.  The threshold rises with it so
-            # that noise alone seldom starts an impact.
-            if a50 == a50:  # not nan: the block had 16 frames or more
-                self._spreads.append(_block_spread(a20, a50, a90))
-            # the lower quartile over the last seconds: a block holding a step's ring-down, a voice or
-            # a phone's gain pumping after a step reads tens of times the background's spread, and
-            # early in a recording such blocks can be half of those seen
-            spread = self._spreads.order_stat(len(self._spreads) // 4) if len(self._spreads) else 1.0
-            thr_b.append(max(floor * max(rel, spread ** 3), min_level))
-            fl_b.append(floor)
+        W = self._floors.maxlen
+        if len(self._floors) == W and len(self._spreads) == W and W > 1 and not np.isnan(q50).any():
+            thr_b, fl_b = self._block_thresholds(q_floor, q20, q50, q90, rel, min_level)
+        else:
+            thr_b, fl_b = self._block_thresholds_one_by_one(q_floor, q20, q50, q90, rel, min_level)
         lens = np.diff(starts + [nf])
         thr = np.repeat(np.array(thr_b), lens)
         fl = np.repeat(np.array(fl_b), lens)
@@ -351,6 +339,46 @@ class ImpactDetector:
         self._append_raw(x)
         self._consumed += len(x)
         return self._emit_ready(final=False)
+
+    def _block_thresholds(self, q_floor, q20, q50, q90, rel: float, min_level: float) -> tuple[list, list]:
+        """:meth:`_block_thresholds_one_by_one` for a run of blocks once both running windows are
+        full: the windows ending at each block sorted as the rows of one array (the same medians
+        and order statistics, far fewer Python steps)."""
+        W = self._floors.maxlen
+        fl_all = np.concatenate([np.fromiter(self._floors, float, W)[1:], q_floor])
+        srt = np.sort(np.lib.stride_tricks.sliding_window_view(fl_all, W), axis=1)
+        floors = srt[:, W // 2] if W % 2 else (srt[:, W // 2 - 1] + srt[:, W // 2]) / 2
+        new_spreads = [_block_spread(a20, a50, a90) for a20, a50, a90 in zip(q20.tolist(), q50.tolist(), q90.tolist())]
+        sp_all = np.concatenate([np.fromiter(self._spreads, float, W)[1:], new_spreads])
+        spreads = np.sort(np.lib.stride_tricks.sliding_window_view(sp_all, W), axis=1)[:, W // 4]
+        fl_b = floors.tolist()
+        thr_b = [max(floor * max(rel, spread ** 3), min_level) for floor, spread in zip(fl_b, spreads.tolist())]
+        for v in q_floor[-W:].tolist():
+            self._floors.append(v)
+        for v in new_spreads[-W:]:
+            self._spreads.append(v)
+        return thr_b, fl_b
+
+    def _block_thresholds_one_by_one(self, q_floor, q20, q50, q90, rel: float, min_level: float) -> tuple[list, list]:
+        """Per 0.25 s block: the onset threshold (power) and the noise floor."""
+        thr_b = []
+        fl_b = []
+        for qf, a20, a50, a90 in zip(q_floor.tolist(), q20.tolist(), q50.tolist(), q90.tolist()):
+            # noise floor: a low quantile of this block, smoothed over the last seconds
+            self._floors.append(qf)
+            floor = self._floors.median()
+            # How much the background itself fluctuates over 2 ms: white noise barely (many
+            # degrees of freedom), low-frequency noise a lot.  The threshold rises with it so
+            # that noise alone seldom starts an impact.
+            if a50 == a50:  # not nan: the block had 16 frames or more
+                self._spreads.append(_block_spread(a20, a50, a90))
+            # the lower quartile over the last seconds: a block holding a step's ring-down, a voice or
+            # a phone's gain pumping after a step reads tens of times the background's spread, and
+            # early in a recording such blocks can be half of those seen
+            spread = self._spreads.order_stat(len(self._spreads) // 4) if len(self._spreads) else 1.0
+            thr_b.append(max(floor * max(rel, spread ** 3), min_level))
+            fl_b.append(floor)
+        return thr_b, fl_b
 
     def _emit_ready(self, final: bool) -> list[Impact]:
         out: list[Impact] = []
