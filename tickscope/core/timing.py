@@ -135,7 +135,7 @@ def _template_spectrum(template: Template, s0: int, s1: int, nfft: int) -> np.nd
     key = (s0, s1, nfft)
     spec = cache.get(key)
     if spec is None:
-        spec = cache[key] = np.conj(np.fft.rfft(template.matched[s0:s1], nfft))
+        spec = cache[key] = np.conj(np.fft.rfft(template.matched[s0:s1], nfft)).astype(np.complex64)
     return spec
 
 
@@ -167,7 +167,7 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
     nt = s1 - s0
     nfft = 1 << int(np.ceil(np.log2(max(b - a, 0) + nt)))
     # the searched part of each row, straight into rows as long as the FFT (zeros: its padding)
-    xp = np.zeros((nrow, nfft))
+    xp = np.zeros((nrow, nfft), dtype=np.float32)
     for i, row in enumerate(snippets):
         xp[i, : b - a] = row[a:b]
     x = xp[:, : b - a]
@@ -232,7 +232,7 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
     lag = a + out_tau - s0
     i0 = np.rint(out_tau).astype(np.int64)
     rho = np.zeros(nrow)
-    cs = np.concatenate([np.zeros((nrow, 1)), np.cumsum(x * x, axis=1)], axis=1)
+    cs = np.concatenate([np.zeros((nrow, 1)), np.cumsum(x * x, axis=1, dtype=np.float64)], axis=1)
     ok = (i0 >= 0) & (i0 + nt <= x.shape[1])
     r_ok = np.flatnonzero(ok)
     seg_e = cs[r_ok, i0[r_ok] + nt] - cs[r_ok, i0[r_ok]]
