@@ -345,12 +345,11 @@ class ImpactDetector:
         full: the windows ending at each block sorted as the rows of one array (the same medians
         and order statistics, far fewer Python steps)."""
         W = self._floors.maxlen
-        fl_all = np.concatenate([np.fromiter(self._floors, float, W)[1:], q_floor])
-        srt = np.sort(np.lib.stride_tricks.sliding_window_view(fl_all, W), axis=1)
+        win = np.arange(len(q_floor))[:, None] + np.arange(W)  # row i: the window ending at block i
+        srt = np.sort(np.concatenate([np.fromiter(self._floors, float, W)[1:], q_floor])[win], axis=1)
         floors = srt[:, W // 2] if W % 2 else (srt[:, W // 2 - 1] + srt[:, W // 2]) / 2
         new_spreads = [_block_spread(a20, a50, a90) for a20, a50, a90 in zip(q20.tolist(), q50.tolist(), q90.tolist())]
-        sp_all = np.concatenate([np.fromiter(self._spreads, float, W)[1:], new_spreads])
-        spreads = np.sort(np.lib.stride_tricks.sliding_window_view(sp_all, W), axis=1)[:, W // 4]
+        spreads = np.sort(np.concatenate([np.fromiter(self._spreads, float, W)[1:], new_spreads])[win], axis=1)[:, W // 4]
         fl_b = floors.tolist()
         thr_b = [max(floor * max(rel, spread ** 3), min_level) for floor, spread in zip(fl_b, spreads.tolist())]
         for v in q_floor[-W:].tolist():
