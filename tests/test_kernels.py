@@ -57,6 +57,9 @@ def test_kernels_reject_wrong_buffers():
         _kernels.ringdown([0.0] * 100, 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0)
     assert _kernels.ringdown(np.zeros(5), 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0) is None  # too short
     assert _kernels.ringdown(np.zeros(500), 48000.0, 0.0, -3.0, -25.0, 8.0, 10.0) is None  # silence
+    with pytest.raises(ValueError):  # lags beyond the correlation's length
+        _kernels.match_pick(np.zeros((2, 8), np.float32), np.zeros((2, 5), np.complex64), np.zeros((2, 8), np.float32),
+                            4, 6, 2, 8, None, 1.0, w, w, w, 8, 3, np.zeros(2), np.zeros(2), np.zeros(2))
     x = np.zeros(100, np.float32)
     with pytest.raises(ValueError):  # head not lag samples long
         _kernels.frame_power(x, np.zeros(2, np.float32), 1, 10, np.zeros(10))
@@ -154,3 +157,48 @@ def test_frame_power_matches_numpy(lag, hop):
             if n:
                 assert (hi, lo) == (float(x.max()), float(x.min()))
                 assert total == pytest.approx(float(np.sum(x, dtype=np.float64)), rel=1e-5, abs=1e-5)
+
+
+@needs_compiled
+@pytest.mark.parametrize("fs", [8000, 48000])
+def test_match_pick_matches_numpy(fs):
+    # match_many's lobe choice in C against _pick_numpy, on ringing sounds (many near-tied lobes)
+    # with noise, with and without preferred lags
+    from tickscope.core.timing import Template, _newton_weights, _pick_numpy, _template_spectrum, _window_span
+
+    rng = np.random.default_rng(fs)
+    n = int(0.05 * fs)
+    for trial in range(40):
+        onset = n // 4
+        t = (np.arange(n) - onset) / fs
+        f0 = rng.uniform(0.1, 0.3) * fs
+        wave = np.where(t >= 0, np.exp(-np.clip(t, 0, None) / rng.uniform(0.002, 0.05)) * np.sin(2 * np.pi * f0 * t), 0)
+        win = np.zeros(n)
+        win[onset - int(0.001 * fs): onset + int(0.01 * fs)] = 1.0
+        tm = Template(wave, float(onset), win, 1, float(np.sum((wave * win) ** 2)))
+        s0, s1 = _window_span(tm)
+        nt = s1 - s0
+        max_lag = int(0.003 * fs)
+        a, b = max(0, s0 - max_lag), min(n, s1 + max_lag)
+        nfft = 1 << int(np.ceil(np.log2(b - a + nt)))
+        rows = 7
+        xp = np.zeros((rows, nfft), dtype=np.float32)
+        for r in range(rows):
+            d = rng.uniform(-max_lag + 2, max_lag - 2)
+            shifted = np.interp(np.arange(n) - d, np.arange(n), wave)
+            xp[r, : b - a] = (shifted + rng.normal(0, rng.uniform(1e-4, 0.3), n))[a:b]
+        C = np.fft.rfft(xp, axis=1) * _template_spectrum(tm, s0, s1, nfft)
+        c = np.fft.irfft(C, nfft, axis=1)
+        if c.dtype != np.float32:
+            pytest.skip("numpy before 2.0 transforms float32 in double precision")
+        lags = np.arange(-max_lag, max_lag + 1) + (s0 - a)
+        lags = lags[(lags >= 0) & (lags <= b - a - nt)]
+        pref = None if trial % 3 == 0 else rng.uniform(lags[0], lags[-1], rows)
+        if pref is not None:
+            pref[rng.random(rows) < 0.3] = np.nan
+        ref = _pick_numpy(c, C, xp[:, : b - a], lags, nt, nfft, pref, tm.energy)
+        got = tuple(np.empty(rows) for _ in range(3))
+        w, w1, w2 = _newton_weights(C.shape[1], nfft)
+        kernels.match_pick(c, C, xp, int(lags[0]), len(lags), nt, b - a, pref, tm.energy, w, w1, w2, nfft, 3, *got)
+        for g, r in zip(got, ref):
+            np.testing.assert_allclose(g, r, rtol=1e-12, atol=1e-12)

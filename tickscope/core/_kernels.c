@@ -64,6 +64,30 @@ rotated_sums(const double *c, Py_ssize_t nb, double tau, double nfft, const doub
     *sum_re = sr;
 }
 
+/* Newton's method on one correlation (its rfft spectrum cr) from lag t; returns the lag and puts
+   the correlation there in *val */
+static double
+newton_one(const double *cr, Py_ssize_t nb, double t, Py_ssize_t nfft, const double *w, const double *w1,
+           const double *w2, Py_ssize_t iters, double *val)
+{
+    double d1, d2, unused;
+    for (Py_ssize_t it = 0; it < iters; it++) {
+        rotated_sums(cr, nb, t, (double)nfft, w1, w2, &d1, &d2);
+        d1 = -d1;
+        d2 = -d2;
+        if (!(d2 < 0))
+            break; /* past a maximum's concave part: stop there */
+        double step = -d1 / d2;
+        step = step < -0.5 ? -0.5 : (step > 0.5 ? 0.5 : step);
+        t += step;
+        if (fabs(step) < 1e-6)
+            break;
+    }
+    rotated_sums(cr, nb, t, (double)nfft, NULL, w, &unused, val);
+    *val /= (double)nfft;
+    return t;
+}
+
 static PyObject *
 newton_peaks(PyObject *self, PyObject *args)
 {
@@ -95,25 +119,8 @@ newton_peaks(PyObject *self, PyObject *args)
     const double *w1 = (const double *)w1b.buf, *w2 = (const double *)w2b.buf;
     double *tau = (double *)tb.buf, *val = (double *)vb.buf;
     Py_BEGIN_ALLOW_THREADS
-    for (Py_ssize_t r = 0; r < rows; r++) {
-        const double *cr = c + 2 * nb * r;
-        double t = tau[r], d1, d2, unused;
-        for (Py_ssize_t it = 0; it < iters; it++) {
-            rotated_sums(cr, nb, t, (double)nfft, w1, w2, &d1, &d2);
-            d1 = -d1;
-            d2 = -d2;
-            if (!(d2 < 0))
-                break; /* past a maximum's concave part: stop there */
-            double step = -d1 / d2;
-            step = step < -0.5 ? -0.5 : (step > 0.5 ? 0.5 : step);
-            t += step;
-            if (fabs(step) < 1e-6)
-                break;
-        }
-        tau[r] = t;
-        rotated_sums(cr, nb, t, (double)nfft, NULL, w, &unused, &val[r]);
-        val[r] /= (double)nfft;
-    }
+    for (Py_ssize_t r = 0; r < rows; r++)
+        tau[r] = newton_one(c + 2 * nb * r, nb, tau[r], nfft, w, w1, w2, iters, &val[r]);
     Py_END_ALLOW_THREADS
     PyBuffer_Release(&w2b);
     PyBuffer_Release(&w1b);
@@ -365,12 +372,184 @@ frame_power(PyObject *self, PyObject *args)
     return Py_BuildValue("ddd", (double)hi, (double)lo, total);
 }
 
+/* The lobe search, refinement and choice of timing.match_many for each row, after its FFTs (see
+   _pick_numpy there, the reference: the same float32 and float64 steps in the same order). */
+static PyObject *
+match_pick(PyObject *self, PyObject *args)
+{
+    PyObject *co, *Co, *xo, *po, *wo, *w1o, *w2o, *to, *vo, *ro;
+    Py_ssize_t l0, L, nt, width, nfft, iters;
+    double energy;
+    if (!PyArg_ParseTuple(args, "OOOnnnnOdOOOnnOOO", &co, &Co, &xo, &l0, &L, &nt, &width, &po, &energy, &wo, &w1o,
+                          &w2o, &nfft, &iters, &to, &vo, &ro))
+        return NULL;
+    Py_buffer cb, Cb, xb, pb, wb, w1b, w2b, tb, vb, rb;
+    Py_buffer *held[10];
+    int nheld = 0, has_pref = po != Py_None;
+    PyObject *result = NULL;
+    double *cand = NULL, *rowbuf = NULL;
+#define TAKE(obj, view, wr, size, name)                          \
+    do {                                                         \
+        if (get_buffer(obj, view, wr, size, name) < 0)           \
+            goto done;                                           \
+        held[nheld++] = view;                                    \
+    } while (0)
+    TAKE(co, &cb, 0, sizeof(float), "c");
+    TAKE(Co, &Cb, 0, 2 * sizeof(float), "C");
+    TAKE(xo, &xb, 0, sizeof(float), "x");
+    if (has_pref)
+        TAKE(po, &pb, 0, sizeof(double), "prefer");
+    TAKE(wo, &wb, 0, sizeof(double), "w");
+    TAKE(w1o, &w1b, 0, sizeof(double), "w1");
+    TAKE(w2o, &w2b, 0, sizeof(double), "w2");
+    TAKE(to, &tb, 1, sizeof(double), "tau");
+    TAKE(vo, &vb, 1, sizeof(double), "val");
+    TAKE(ro, &rb, 1, sizeof(double), "rho");
+#undef TAKE
+    const Py_ssize_t nrow = tb.len / (Py_ssize_t)sizeof(double);
+    const Py_ssize_t nb = wb.len / (Py_ssize_t)sizeof(double);
+    if (nfft < 4 || L < 1 || l0 < 0 || l0 + L > nfft || nt < 1 || width > nfft || iters < 0
+        || cb.len != nrow * nfft * (Py_ssize_t)sizeof(float) || xb.len != cb.len
+        || Cb.len != nrow * nb * 2 * (Py_ssize_t)sizeof(float) || w1b.len != wb.len || w2b.len != wb.len
+        || vb.len != tb.len || rb.len != tb.len || (has_pref && pb.len != tb.len)) {
+        PyErr_SetString(PyExc_ValueError, "match_pick: c and x must be len(tau) rows of nfft, C len(tau) rows of len(w) "
+                                          "bins, lags l0..l0+L within a row");
+        goto done;
+    }
+    /* per candidate: lag index j, start, parabola peak, order, kept; and one row of C in double */
+    cand = (double *)malloc(sizeof(double) * (size_t)(5 * (L + 1)));
+    rowbuf = (double *)malloc(sizeof(double) * (size_t)(2 * nb + 1));
+    if (!cand || !rowbuf) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    {
+        const float *c = (const float *)cb.buf, *Cf = (const float *)Cb.buf, *xs = (const float *)xb.buf;
+        const double *pref = has_pref ? (const double *)pb.buf : NULL;
+        const double *w = (const double *)wb.buf, *w1 = (const double *)w1b.buf, *w2 = (const double *)w2b.buf;
+        double *tau_out = (double *)tb.buf, *val_out = (double *)vb.buf, *rho_out = (double *)rb.buf;
+        double *cj = cand, *cstart = cand + (L + 1), *cpv = cand + 2 * (L + 1), *ctau = cand + 3 * (L + 1),
+               *cval = cand + 4 * (L + 1);
+        Py_BEGIN_ALLOW_THREADS
+        for (Py_ssize_t r = 0; r < nrow; r++) {
+            const float *cr = c + r * nfft, *cl = cr + l0;
+            float top = cl[0];
+            Py_ssize_t am = 0;
+            for (Py_ssize_t i = 1; i < L; i++)
+                if (cl[i] > top) {
+                    top = cl[i];
+                    am = i;
+                }
+            const float bar = 0.75f * top;
+            Py_ssize_t m = 0;
+            int has_am = 0;
+            for (Py_ssize_t i = 1; i + 1 < L; i++)
+                if (cl[i] >= cl[i - 1] && cl[i] >= cl[i + 1] && cl[i] >= bar) {
+                    cj[m++] = (double)(l0 + i);
+                    has_am |= i == am;
+                }
+            if (!has_am)
+                cj[m++] = (double)(l0 + am); /* the highest sample, after the lobes in order */
+            /* three-point parabolas (float32, as numpy on float32 rows) */
+            double top_p = -INFINITY;
+            for (Py_ssize_t q = 0; q < m; q++) {
+                const Py_ssize_t j = (Py_ssize_t)cj[q];
+                const float y0 = cr[j >= 1 ? j - 1 : nfft - 1], y1 = cr[j], y2 = cr[(j + 1) % nfft];
+                const float den = y0 - 2.0f * y1 + y2;
+                const int conc = den < 0;
+                const float safe = conc ? den : -1.0f;
+                const float dy = y0 - y2;
+                const float pv = conc ? y1 - (dy * dy) / (8.0f * safe) : y1;
+                cstart[q] = conc ? (double)j + (double)((0.5f * dy) / safe) : (double)j;
+                cpv[q] = (double)pv;
+                if (cpv[q] > top_p)
+                    top_p = cpv[q];
+            }
+            const double keep_bar = top_p - 0.03 * fabs(top_p);
+            const float *Cr = Cf + 2 * nb * r;
+            for (Py_ssize_t k = 0; k < 2 * nb; k++)
+                rowbuf[k] = (double)Cr[k];
+            double row_best = -INFINITY;
+            for (Py_ssize_t q = 0; q < m; q++) {
+                if (!(cpv[q] >= keep_bar)) {
+                    ctau[q] = NAN; /* not refined */
+                    continue;
+                }
+                double v;
+                double t = newton_one(rowbuf, nb, cstart[q], nfft, w, w1, w2, iters, &v);
+                if (fabs(t - cj[q]) > 1.0) { /* Newton wandered: keep the integer peak */
+                    t = cj[q];
+                    v = (double)cr[(Py_ssize_t)cj[q]];
+                }
+                ctau[q] = t;
+                cval[q] = v;
+                if (v > row_best)
+                    row_best = v;
+            }
+            /* the best refined lobe: near-ties (within 3 %) nearest the preferred lag first, then
+               the highest; the first in candidate order among equals */
+            const double p = pref ? pref[r] : NAN;
+            const int use_pref = isfinite(p);
+            const double tie_bar = row_best - 0.03 * fabs(row_best);
+            Py_ssize_t best = -1;
+            int best_tied = 0;
+            double best_score = 0.0;
+            for (Py_ssize_t q = 0; q < m; q++) {
+                if (isnan(ctau[q]))
+                    continue;
+                const int tied = use_pref && cval[q] >= tie_bar;
+                double score = tied ? fabs(ctau[q] - p) : -cval[q];
+                if (isnan(score))
+                    score = INFINITY; /* numpy's sort puts nan last */
+                if (best < 0 || (tied && !best_tied) || (tied == best_tied && score < best_score)) {
+                    best = q;
+                    best_tied = tied;
+                    best_score = score;
+                }
+            }
+            const double t = ctau[best], v = cval[best];
+            tau_out[r] = t;
+            val_out[r] = v;
+            /* the correlation coefficient: the matched part's energy from running sums in double of
+               float32 squares (numpy's cumsum of x * x) */
+            const double i0d = nearbyint(t);
+            double rho = 0.0;
+            if (i0d >= 0 && i0d + (double)nt <= (double)width) {
+                const Py_ssize_t i0 = (Py_ssize_t)i0d;
+                const float *xr = xs + r * nfft;
+                double cs = 0.0, cs0 = 0.0;
+                for (Py_ssize_t i = 0; i < i0 + nt; i++) {
+                    if (i == i0)
+                        cs0 = cs;
+                    const float sq = xr[i] * xr[i];
+                    cs += (double)sq;
+                }
+                const double den = sqrt(energy * (cs - cs0) + 1e-300);
+                rho = den > 0 ? v / den : 0.0;
+            }
+            rho_out[r] = rho;
+        }
+        Py_END_ALLOW_THREADS
+    }
+    Py_INCREF(Py_None);
+    result = Py_None;
+done:
+    free(cand);
+    free(rowbuf);
+    while (nheld)
+        PyBuffer_Release(held[--nheld]);
+    return result;
+}
+
 static PyMethodDef methods[] = {
     {"newton_peaks", newton_peaks, METH_VARARGS,
      "newton_peaks(C, tau, val, w, w1, w2, nfft, iters): refine correlation maxima in place."},
     {"ringdown", ringdown, METH_VARARGS,
      "ringdown(x, samplerate, noise_power, start_db, stop_db, min_range_db, margin_db) -> "
      "(slope_db_per_s, fit_range_db, fit_rms_db) or None."},
+    {"match_pick", match_pick, METH_VARARGS,
+     "match_pick(c, C, x, l0, L, nt, width, prefer, energy, w, w1, w2, nfft, iters, tau, val, rho): "
+     "timing.match_many's choice of lobe per row."},
     {"frame_power", frame_power, METH_VARARGS,
      "frame_power(x, head, lag, hop, out) -> (max, min, sum): mean power of x[n] - x[n-lag] per frame."},
     {NULL, NULL, 0, NULL},

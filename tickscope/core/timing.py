@@ -178,6 +178,26 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
     lags = lags[(lags >= 0) & (lags <= x.shape[1] - nt)]
     if not len(lags):
         return np.zeros(nrow), np.zeros(nrow)
+    pref = None if prefer is None else np.asarray(prefer, dtype=np.float64) - a + s0  # in correlation-index units
+    if kernels.compiled() and c.dtype == np.float32 and C.dtype == np.complex64:
+        # the same choice in C (``_kernels.c``); _pick_numpy is its reference (and runs where
+        # numpy before 2.0 transforms float32 in double precision)
+        w, w1, w2 = _newton_weights(C.shape[1], nfft)
+        out_tau, out_val, rho = (np.empty(nrow) for _ in range(3))
+        kernels.match_pick(c, C, xp, int(lags[0]), len(lags), nt, b - a, pref, template.energy, w, w1, w2, nfft,
+                           3, out_tau, out_val, rho)
+    else:
+        out_tau, out_val, rho = _pick_numpy(c, C, x, lags, nt, nfft, pref, template.energy)
+    return a + out_tau - s0, rho
+
+
+def _pick_numpy(c: np.ndarray, C: np.ndarray, x: np.ndarray, lags: np.ndarray, nt: int, nfft: int,
+                pref: np.ndarray | None, energy: float, *, use_compiled_newton: bool = True
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """match_many's choice for each row of the correlations c (spectra C, searched rows x, lag
+    indices ``lags`` into c): the refined lag index and correlation there, and the correlation
+    coefficient."""
+    nrow = len(c)
     cl = c[:, lags]
     top = cl.max(axis=1)
     # A ringing step's correlation oscillates at its ring frequency.  At a low sample rate
@@ -208,20 +228,23 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
     keep = pv >= top_p[rows] - 0.03 * np.abs(top_p[rows])
     rows, j, start, order = rows[keep], j[keep], start[keep], order[keep]
     # Newton from the parabola's peak: two or three steps then suffice
-    tau, val = _newton_peaks(C[rows], nfft, start, iters=3)
+    tau, val = _newton_peaks(C[rows], nfft, start, iters=3, use_compiled=use_compiled_newton)
     wander = np.abs(tau - j) > 1.0  # Newton wandered: keep the integer peak
     tau = np.where(wander, j.astype(np.float64), tau)
     val = np.where(wander, c[rows, j], val)
     # the best refined lobe of each row (the first in candidate order among equals)
     score = -val
-    if prefer is not None:
-        pref = np.asarray(prefer, dtype=np.float64)[rows] - a + s0  # in correlation-index units
+    tied_first = np.zeros(len(rows), dtype=bool)
+    if pref is not None:
+        pref = pref[rows]
         row_best = np.full(nrow, -np.inf)
         np.maximum.at(row_best, rows, val)
         near_tie = (val >= row_best[rows] - 0.03 * np.abs(row_best[rows])) & np.isfinite(pref)
         # near-ties rank by distance to the preferred lag, ahead of every other lobe of the row
-        score = np.where(near_tie, -1e300 + np.abs(tau - np.where(np.isfinite(pref), pref, 0.0)), -val)
-    pick = np.lexsort((order, score, rows))
+        # (a key of its own: folded into one number, an offset of -1e300 swallowed the distance)
+        score = np.where(near_tie, np.abs(tau - np.where(np.isfinite(pref), pref, 0.0)), -val)
+        tied_first = ~near_tie
+    pick = np.lexsort((order, score, tied_first, rows))
     first = np.ones(len(pick), dtype=bool)
     first[1:] = rows[pick][1:] != rows[pick][:-1]
     best = pick[first]
@@ -229,16 +252,15 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
     out_val = np.zeros(nrow)
     out_tau[rows[best]] = tau[best]
     out_val[rows[best]] = val[best]
-    lag = a + out_tau - s0
     i0 = np.rint(out_tau).astype(np.int64)
     rho = np.zeros(nrow)
     cs = np.concatenate([np.zeros((nrow, 1)), np.cumsum(x * x, axis=1, dtype=np.float64)], axis=1)
     ok = (i0 >= 0) & (i0 + nt <= x.shape[1])
     r_ok = np.flatnonzero(ok)
     seg_e = cs[r_ok, i0[r_ok] + nt] - cs[r_ok, i0[r_ok]]
-    den = np.sqrt(template.energy * seg_e + 1e-300)
+    den = np.sqrt(energy * seg_e + 1e-300)
     rho[r_ok] = np.where(den > 0, out_val[r_ok] / den, 0.0)
-    return lag, rho
+    return out_tau, out_val, rho
 
 
 def _shift(x: np.ndarray, delay) -> np.ndarray:
