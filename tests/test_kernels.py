@@ -62,9 +62,11 @@ def test_kernels_reject_wrong_buffers():
                             4, 6, 2, 8, None, 1.0, w, w, w, 8, 3, np.zeros(2), np.zeros(2), np.zeros(2))
     x = np.zeros(100, np.float32)
     with pytest.raises(ValueError):  # head not lag samples long
-        _kernels.frame_power(x, np.zeros(2, np.float32), 1, 10, np.zeros(10))
+        _kernels.frame_power(x, np.zeros(2, np.float32), 1, 10, np.zeros(10), 0, 1.0)
     with pytest.raises(ValueError):  # out not one value a frame
-        _kernels.frame_power(x, np.zeros(1, np.float32), 1, 10, np.zeros(9))
+        _kernels.frame_power(x, np.zeros(1, np.float32), 1, 10, np.zeros(9), 0, 1.0)
+    with pytest.raises(ValueError):  # 16-bit samples with a float32 head
+        _kernels.frame_power(np.zeros(100, np.int16), np.zeros(1, np.float32), 1, 10, np.zeros(10), 2, 1.0)
 
 
 @needs_compiled
@@ -157,6 +159,27 @@ def test_frame_power_matches_numpy(lag, hop):
             if n:
                 assert (hi, lo) == (float(x.max()), float(x.min()))
                 assert total == pytest.approx(float(np.sum(x, dtype=np.float64)), rel=1e-5, abs=1e-5)
+
+
+@needs_compiled
+@pytest.mark.parametrize("dtype,scale", [(np.int16, 2.0**-15), (np.int32, 2.0**-31)])
+@pytest.mark.parametrize("lag", [1, 3, 37, 300])
+def test_frame_power_of_integers_equals_that_of_their_float_samples(dtype, scale, lag):
+    # 16-bit and 24-bit audio goes to the detector as read; its numbers must be those of the float32
+    # samples the reader would otherwise have made (np.multiply(x, scale, dtype=np.float32)), exactly
+    rng = np.random.default_rng(lag)
+    hop = 24
+    for n in (lag, 5 * hop + 3, 300 * hop + 11, 48000):
+        full = 32767 if dtype == np.int16 else (2**23 - 1) * 256
+        x = rng.integers(-full, full, n + lag).astype(dtype)
+        if dtype == np.int32:
+            x = (x // 256 * 256).astype(dtype)  # 24-bit samples, as libsndfile reads them into int32
+        x[rng.random(n + lag) < 0.01] = -full - (1 if dtype == np.int16 else 256)  # full-scale negative
+        head, x = x[:lag], x[lag:]
+        xf, hf = (np.multiply(v, np.float32(scale), dtype=np.float32) for v in (x, head))
+        ref = kernels.frame_power(xf, hf, lag, hop)
+        got = kernels.frame_power(x, head, lag, hop, scale=scale)
+        assert np.array_equal(got[0], ref[0]) and got[1:] == ref[1:]
 
 
 @needs_compiled

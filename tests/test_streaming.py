@@ -3,6 +3,7 @@ import numpy as np
 from hypothesis import given, settings, strategies as st
 
 from tickscope.core.simulate import Scenario, render_all
+from tickscope.export import summary_to_dict
 from tickscope.model import Block
 from tickscope.pipeline import Analyzer
 
@@ -26,6 +27,46 @@ def _run(sizes):
 
 
 REF = _run([len(X)])
+
+# the same audio as 16-bit integers, and their float32 values (what a 16-bit file reads as)
+X16 = np.round(np.clip(X, -1, 32767 / 32768) * 32768).astype(np.int16)
+X16F = np.multiply(X16, np.float32(2.0**-15), dtype=np.float32)
+
+
+def _run_x(x, sizes, scale=None):
+    an = Analyzer(SC.samplerate_hz)
+    events = []
+    i = j = 0
+    while i < len(x):
+        n = sizes[j % len(sizes)]
+        events += an.feed(Block(x[i:i + n], i, scale=scale))
+        i += n
+        j += 1
+    summary = an.finish()
+    events += an.drain_final_events()
+    return [(e.kind, e.step, e.time_s, e.decay_ms, e.peak_dbfs) for e in events], summary
+
+
+def test_integer_samples_give_the_results_of_their_float_values():
+    # a 16-bit file goes to the analyzer as read (int16 with a scale): every event and the summary
+    # must be exactly those of the float32 samples, whatever the block sizes
+    ref_events, ref_sum = _run_x(X16F, [len(X16F)])
+    assert sum(1 for e in ref_events if e[0] == "step") == 14
+    for sizes in ([len(X16)], [4099], [48000, 7, 100003]):
+        ev, summ = _run_x(X16, sizes, scale=2.0**-15)
+        assert ev == ref_events
+        assert summary_to_dict(summ, source="x") == summary_to_dict(ref_sum, source="x")
+
+
+def test_a_stream_keeps_its_kind_of_samples():
+    import pytest
+
+    from tickscope.errors import ParameterError
+
+    an = Analyzer(SC.samplerate_hz)
+    an.feed(Block(X16[:48000], 0, scale=2.0**-15))
+    with pytest.raises(ParameterError):
+        an.feed(Block(X16F[48000:96000], 48000))
 
 
 def test_reference_has_steps():

@@ -124,7 +124,7 @@ def cmd_analyze(args) -> int:
     try:
         writer = StepsCsv(csv_fh) if csv_fh else None
         tally: dict = {}
-        _run_file(an, blocks(path, info, channel, tally=tally), info, writer,
+        _run_file(an, blocks(path, info, channel, tally=tally, integers=True), info, writer,
                   show_progress=not args.json and not args.quiet)
         summary = an.finish()
         if writer:

@@ -31,7 +31,9 @@ class Block:
 
     ``host_time_s``/``wall_time_s``/``adc_time_s`` are the host's clock readings for live
     capture (None for files); ``gap_before`` counts samples lost before this block
-    (input overflow), which the pipeline must not mistake for missed steps.
+    (input overflow), which the pipeline must not mistake for missed steps.  ``scale``, when
+    set, says the samples are integers (16- or 24-bit audio as read, int16 or int32) standing for
+    their value times ``scale``; :meth:`float_samples` gives them as float32.
     """
 
     samples: np.ndarray
@@ -40,6 +42,13 @@ class Block:
     wall_time_s: float | None = None
     adc_time_s: float | None = None
     gap_before: int = 0
+    scale: float | None = None
+
+    def float_samples(self) -> np.ndarray:
+        """The samples as float32 (integers times ``scale``: exact for 16- and 24-bit audio)."""
+        if self.scale is None:
+            return np.asarray(self.samples, dtype=np.float32)
+        return np.multiply(self.samples, np.float32(self.scale), dtype=np.float32)
 
 
 @dataclass(frozen=True)

@@ -128,7 +128,10 @@ class Analyzer:
         """Process one block; returns the events decided by it."""
         if self._finished:
             raise ParameterError("Analyzer.feed after finish()")
-        x = np.asarray(block.samples, dtype=np.float32).reshape(-1)
+        if block.scale is None:
+            x = np.asarray(block.samples, dtype=np.float32).reshape(-1)
+        else:  # integers as read: the detector converts only what it needs
+            x = np.asarray(block.samples).reshape(-1)
         out: list[Event] = []
         if block.gap_before > 0:
             g0 = self._pos / self.samplerate
@@ -139,13 +142,14 @@ class Analyzer:
             out += self._record(self.tracker.add(impacts, self._pos / self.samplerate))
             x = x[self._pos - block.start_sample:] if self._pos > block.start_sample else x
         if self._hum_n < HUM_ANALYSIS_S * self.samplerate:
-            self._hum_buf.append(x.copy())
+            self._hum_buf.append(x.copy() if block.scale is None else np.multiply(x, np.float32(block.scale),
+                                                                                  dtype=np.float32))
             self._hum_n += len(x)
-        out += self._run(x)
+        out += self._run(x, block.scale)
         return out
 
-    def _run(self, x: np.ndarray) -> list[Event]:
-        impacts = self.detector.process(x)
+    def _run(self, x: np.ndarray, scale: float | None = None) -> list[Event]:
+        impacts = self.detector.process(x, scale)
         self._pos += len(x)
         return self._record(self.tracker.add(impacts, self.detector.position / self.samplerate))
 

@@ -13,10 +13,12 @@
  *       -> (slope_db_per_s, fit_range_db, fit_rms_db) or None
  *       Schroeder's backward-integrated decay curve and a line through it in dB
  *       (see measure_ringdown in ringdown.py for the method and its sources).
- *   frame_power(x, head, lag, hop, out) -> (max, min, sum)
+ *   frame_power(x, head, lag, hop, out, kind, scale) -> (max, min, sum)
  *       The detector's one pass over every sample (ImpactDetector._frame_energy): the mean power
  *       of x[n] - x[n-lag] per frame of hop samples into out (head holds the lag samples before
- *       x), and the chunk's largest and smallest sample and its sum.
+ *       x), and the chunk's largest and smallest sample and its sum.  x and head are float32
+ *       (kind 0), or 16-bit (kind 2) or 32-bit (kind 4) integers standing for their value times
+ *       scale, with the same results as the float32 samples the file reader would have made.
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
@@ -25,6 +27,7 @@
 #define M_PI 3.14159265358979323846
 #endif
 #include <stdlib.h>
+#include <string.h>
 
 static int
 get_buffer(PyObject *obj, Py_buffer *view, int writable, Py_ssize_t itemsize, const char *what)
@@ -282,11 +285,6 @@ ringdown(PyObject *self, PyObject *args)
     return Py_BuildValue("ddd", slope, range_db, rms);
 }
 
-/* Eight independent accumulators per quantity (per frame in single precision, as numpy's float32
-   products; the frames' sums then in double): one running sum would wait on the adder's latency at
-   every sample; eight let the compiler keep several additions in flight, or in one vector. */
-#define LANES 8
-
 /* One frame's sums, the additions reassociated so that they run as vectors (the order of a float
    sum's terms changes its last bits only); samples are finite here (the reader zeroes others). */
 __attribute__((optimize("O3", "fast-math")))
@@ -307,17 +305,88 @@ frame_sums(const float *p, const float *q, Py_ssize_t hop, float *e_out, float *
     *lo_io = lo;
 }
 
+/* Frames f0..f1 of a chunk, whose sample i is buf[i - base] (base < 0: buf begins with the lag
+   samples before the chunk).  A frame whose lagged samples reach before the chunk sums in order;
+   the others through frame_sums.  Every caller goes through here, so a chunk's numbers are the same
+   whatever the buffer it came in (float samples, or 16/24-bit integers converted tile by tile). */
+static void
+frames_core(const float *buf, Py_ssize_t base, Py_ssize_t f0, Py_ssize_t f1, Py_ssize_t lag, Py_ssize_t hop,
+            double *out, float *hi_io, float *lo_io, double *total)
+{
+    for (Py_ssize_t f = f0; f < f1; f++) {
+        const Py_ssize_t a = f * hop;
+        float e = 0.0f, s = 0.0f;
+        if (a >= lag)
+            frame_sums(buf + (a - base), buf + (a - lag - base), hop, &e, &s, hi_io, lo_io);
+        else {
+            float hi = *hi_io, lo = *lo_io;
+            for (Py_ssize_t j = 0; j < hop; j++) {
+                const Py_ssize_t i = a + j;
+                const float v = buf[i - base], d = v - buf[i - lag - base];
+                e += d * d;
+                s += v;
+                hi = v > hi ? v : hi;
+                lo = v < lo ? v : lo;
+            }
+            *hi_io = hi;
+            *lo_io = lo;
+        }
+        out[f] = (double)e / (double)hop;
+        *total += s;
+    }
+}
+
+#define TILE_FRAMES 256
+
+/* sample k of x (or, for k < 0, of head, which holds the lag samples before x) as float32: integers
+   times the scale (a power of two: exact, the value the file reader would give) */
+static inline float
+sample_at(const void *x, const void *head, Py_ssize_t lag, Py_ssize_t k, int kind, float scale)
+{
+    const void *src = k >= 0 ? x : head;
+    const Py_ssize_t i = k >= 0 ? k : lag + k;
+    switch (kind) {
+    case 2:
+        return (float)((const short *)src)[i] * scale;
+    case 4:
+        return (float)((const int *)src)[i] * scale;
+    default:
+        return ((const float *)src)[i];
+    }
+}
+
+/* integers to float32 times a power of two (exact for 16- and 24-bit samples); plain loops the
+   compiler turns into vector conversions */
+static void
+to_float_i16(const short *src, Py_ssize_t m, float scale, float *dst)
+{
+    for (Py_ssize_t k = 0; k < m; k++)
+        dst[k] = (float)src[k] * scale;
+}
+
+static void
+to_float_i32(const int *src, Py_ssize_t m, float scale, float *dst)
+{
+    for (Py_ssize_t k = 0; k < m; k++)
+        dst[k] = (float)src[k] * scale;
+}
+
 static PyObject *
 frame_power(PyObject *self, PyObject *args)
 {
     PyObject *xo, *ho, *oo;
     Py_ssize_t lag, hop;
+    int kind;
+    double scale_d;
     Py_buffer xb, hb, ob;
-    if (!PyArg_ParseTuple(args, "OOnnO", &xo, &ho, &lag, &hop, &oo))
+    if (!PyArg_ParseTuple(args, "OOnnOid", &xo, &ho, &lag, &hop, &oo, &kind, &scale_d))
         return NULL;
-    if (get_buffer(xo, &xb, 0, sizeof(float), "x") < 0)
+    if (kind != 2 && kind != 4)
+        kind = 0; /* float32 */
+    const Py_ssize_t item = kind ? kind : (Py_ssize_t)sizeof(float);
+    if (get_buffer(xo, &xb, 0, item, "x") < 0)
         return NULL;
-    if (get_buffer(ho, &hb, 0, sizeof(float), "head") < 0) {
+    if (get_buffer(ho, &hb, 0, item, "head") < 0) {
         PyBuffer_Release(&xb);
         return NULL;
     }
@@ -326,46 +395,63 @@ frame_power(PyObject *self, PyObject *args)
         PyBuffer_Release(&xb);
         return NULL;
     }
-    const float *x = (const float *)xb.buf, *head = (const float *)hb.buf;
-    double *out = (double *)ob.buf;
-    const Py_ssize_t n = xb.len / (Py_ssize_t)sizeof(float);
+    const Py_ssize_t n = xb.len / item;
     const Py_ssize_t nf = hop > 0 ? n / hop : 0;
-    if (lag < 1 || hop < 1 || hb.len != lag * (Py_ssize_t)sizeof(float) || ob.len != nf * (Py_ssize_t)sizeof(double)) {
+    if (lag < 1 || hop < 1 || hb.len != lag * item || ob.len != nf * (Py_ssize_t)sizeof(double)) {
         PyErr_SetString(PyExc_ValueError, "frame_power: head must hold lag samples and out len(x) // hop frames");
         PyBuffer_Release(&ob);
         PyBuffer_Release(&hb);
         PyBuffer_Release(&xb);
         return NULL;
     }
-    float hi = n ? x[0] : 0.0f, lo = hi;
+    const float scale = (float)scale_d;
+    /* frames whose lagged samples reach into head; then, for integers, tiles of frames converted
+       to float32 in a small buffer (the whole chunk is never converted at once) */
+    Py_ssize_t f_head = (lag + hop - 1) / hop;
+    if (f_head > nf)
+        f_head = nf;
+    const Py_ssize_t tile = kind ? TILE_FRAMES : f_head;
+    Py_ssize_t cap = lag + (tile > f_head ? tile : f_head) * hop;
+    float *scratch = (float *)malloc(sizeof(float) * (size_t)(cap > 0 ? cap : 1));
+    if (!scratch) {
+        PyBuffer_Release(&ob);
+        PyBuffer_Release(&hb);
+        PyBuffer_Release(&xb);
+        return PyErr_NoMemory();
+    }
+    const void *x = xb.buf, *head = hb.buf;
+    double *out = (double *)ob.buf;
+    float hi = n ? sample_at(x, head, lag, 0, kind, scale) : 0.0f, lo = hi;
     double total = 0.0;
     Py_BEGIN_ALLOW_THREADS
-    for (Py_ssize_t f = 0; f < nf; f++) {
-        const Py_ssize_t a = f * hop;
-        float e = 0.0f, s = 0.0f;
-        Py_ssize_t j = 0;
-        if (a >= lag)
-            frame_sums(x + a, x + a - lag, hop, &e, &s, &hi, &lo);
-        else {
-            for (; j < hop; j++) {
-                const Py_ssize_t i = a + j;
-                const float v = x[i], d = v - (i >= lag ? x[i - lag] : head[i]);
-                e += d * d;
-                s += v;
-                hi = v > hi ? v : hi;
-                lo = v < lo ? v : lo;
-            }
-        }
-        out[f] = (double)e / (double)hop;
-        total += s;
+    Py_ssize_t f = 0;
+    while (f < nf) {
+        const Py_ssize_t f1 = f == 0 && f_head ? f_head : (kind ? (f + tile < nf ? f + tile : nf) : nf);
+        if (kind || f == 0) {
+            /* samples f * hop - lag .. f1 * hop into scratch */
+            const Py_ssize_t k0 = f * hop - lag, m = (f1 - f) * hop + lag;
+            Py_ssize_t k = 0;
+            for (; k < m && k0 + k < 0; k++) /* from head */
+                scratch[k] = sample_at(x, head, lag, k0 + k, kind, scale);
+            if (kind == 2)
+                to_float_i16((const short *)x + (k0 + k), m - k, scale, scratch + k);
+            else if (kind == 4)
+                to_float_i32((const int *)x + (k0 + k), m - k, scale, scratch + k);
+            else
+                memcpy(scratch + k, (const float *)x + (k0 + k), sizeof(float) * (size_t)(m - k));
+            frames_core(scratch, k0, f, f1, lag, hop, out, &hi, &lo, &total);
+        } else
+            frames_core((const float *)x, 0, f, f1, lag, hop, out, &hi, &lo, &total);
+        f = f1;
     }
     for (Py_ssize_t i = nf * hop; i < n; i++) { /* samples after the last whole frame */
-        const float v = x[i];
+        const float v = sample_at(x, head, lag, i, kind, scale);
         total += v;
         hi = v > hi ? v : hi;
         lo = v < lo ? v : lo;
     }
     Py_END_ALLOW_THREADS
+    free(scratch);
     PyBuffer_Release(&ob);
     PyBuffer_Release(&hb);
     PyBuffer_Release(&xb);
@@ -551,7 +637,8 @@ static PyMethodDef methods[] = {
      "match_pick(c, C, x, l0, L, nt, width, prefer, energy, w, w1, w2, nfft, iters, tau, val, rho): "
      "timing.match_many's choice of lobe per row."},
     {"frame_power", frame_power, METH_VARARGS,
-     "frame_power(x, head, lag, hop, out) -> (max, min, sum): mean power of x[n] - x[n-lag] per frame."},
+     "frame_power(x, head, lag, hop, out, kind, scale) -> (max, min, sum): mean power of x[n] - x[n-lag] "
+     "per frame."},
     {NULL, NULL, 0, NULL},
 };
 

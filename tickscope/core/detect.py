@@ -107,21 +107,27 @@ class ImpactDetector:
 
     def reset(self) -> None:
         """Forget everything (start of a new stream)."""
+        # the samples as they come: float32, or integers standing for their value times _scale
+        # (16- and 24-bit files, read as such: the float conversion of every sample is skipped and
+        # made only where numbers are needed, with the same float32 values)
+        self._dtype = np.dtype(np.float32)
+        self._scale: float | None = None
+        self._typed = False  # set by the first samples
         self._inbuf: list[np.ndarray] = []
         self._inlen = 0
         self._consumed = 0  # samples handed to the chunk processor so far
         self.lag: int | None = None  # chosen from the first tune_s seconds
         self.whitener = np.ones(1)  # FIR that whitens the background noise (set with the lag)
         self._wh_resp = self._hp_resp
-        self._tail = np.zeros(0, dtype=np.float32)  # last `lag` samples before this chunk
+        self._tail = np.zeros(0, dtype=self._dtype)  # last `lag` samples before this chunk
         self._prev_frames = np.zeros(16)  # energies of the 16 frames before this chunk
         self._floors = dsp.RollingWindow(max(1, int(round(self.cfg.floor_window_s / self.cfg.stats_block_s))))
         self._spreads = dsp.RollingWindow(self._floors.maxlen)
         self._last_onset_frame = -(10**12)
         self._quiet_until_frame = -1
-        self._raw = np.zeros(0, dtype=np.float32)  # recent raw audio (our own copy)
+        self._raw = np.zeros(0, dtype=self._dtype)  # recent raw audio (our own copy)
         self._raw_start = 0
-        self._fresh = np.zeros(0, dtype=np.float32)  # the chunk being processed, right after _raw (not copied)
+        self._fresh = np.zeros(0, dtype=self._dtype)  # the chunk being processed, right after _raw (not copied)
         self._waiting: list[tuple[int, float]] = []  # (onset sample, frame snr) awaiting their snippet
         self.floor_db = float("nan")  # current noise floor, dB re full-scale frame energy per sample
         self.samples_seen = 0
@@ -129,9 +135,27 @@ class ImpactDetector:
         self.sum_x = 0.0
 
     # -- public API -------------------------------------------------------------------------
-    def process(self, samples: np.ndarray) -> list[Impact]:
-        """Feed the next block (1-D float array); returns the impacts that became final."""
-        x = np.asarray(samples, dtype=np.float32).reshape(-1)
+    def process(self, samples: np.ndarray, scale: float | None = None) -> list[Impact]:
+        """Feed the next block (1-D float array); returns the impacts that became final.
+
+        With ``scale``, the samples are 16- or 32-bit integers standing for their value times
+        ``scale`` (a power of two, as a 16- or 24-bit file reads): the results are those of the
+        float32 samples ``np.multiply(samples, scale, dtype=np.float32)``.  A stream keeps the
+        kind of samples it began with.
+        """
+        if scale is None:
+            x = np.asarray(samples, dtype=np.float32).reshape(-1)
+        else:
+            x = np.asarray(samples).reshape(-1)
+            if x.dtype not in (np.int16, np.int32):
+                raise ParameterError(f"integer samples must be int16 or int32, not {x.dtype}")
+        if not self._typed:
+            self._typed = True
+            self._dtype, self._scale = x.dtype, (None if scale is None else float(scale))
+            for name in ("_tail", "_raw", "_fresh"):
+                setattr(self, name, getattr(self, name).astype(self._dtype))
+        elif x.dtype != self._dtype or (scale is not None and float(scale) != self._scale):
+            raise ParameterError("a stream's samples must keep one type and scale (float32, or integers)")
         if not len(x):
             return []
         self.samples_seen += len(x)
@@ -141,7 +165,7 @@ class ImpactDetector:
         if self.lag is None and self._inlen < int(self.cfg.tune_s * self.samplerate):
             return out
         if self.lag is None:
-            self._tune(np.concatenate(self._inbuf))
+            self._tune(self._as_float(np.concatenate(self._inbuf)))
         if self._inlen >= self.chunk:
             # Everything buffered, in whole statistics blocks: what was held back, completed to a
             # whole block from the new samples (a small copy), then the new samples' whole blocks
@@ -172,11 +196,11 @@ class ImpactDetector:
     def _drain(self) -> tuple[list[Impact], np.ndarray]:
         """Process the buffered input's whole frames now; returns the impacts and the leftover samples."""
         if not self._inlen:
-            return [], np.zeros(0, dtype=np.float32)
+            return [], np.zeros(0, dtype=self._dtype)
         buf = np.concatenate(self._inbuf)
         self._inbuf, self._inlen = [], 0
         if self.lag is None:
-            self._tune(buf)
+            self._tune(self._as_float(buf))
         n = (len(buf) // self.hop) * self.hop
         return (self._process_chunk(buf[:n]) if n else []), buf[n:]
 
@@ -192,10 +216,10 @@ class ImpactDetector:
         self.samples_seen += n
         pad = (-self._consumed) % self.hop  # keep frames aligned to the hop grid
         self._consumed += pad
-        self._raw = np.zeros(0, dtype=np.float32)
-        self._fresh = np.zeros(0, dtype=np.float32)
+        self._raw = np.zeros(0, dtype=self._dtype)
+        self._fresh = np.zeros(0, dtype=self._dtype)
         self._raw_start = self._consumed
-        self._tail = np.zeros(0, dtype=np.float32)
+        self._tail = np.zeros(0, dtype=self._dtype)
         self._prev_frames = np.zeros(len(self._prev_frames))
         # the audio resumes abruptly: no onset in the first frames after the gap
         self._quiet_until_frame = self._consumed // self.hop + len(self._prev_frames)
@@ -207,6 +231,10 @@ class ImpactDetector:
         return self._consumed
 
     # -- internals ---------------------------------------------------------------------------
+    def _as_float(self, x: np.ndarray) -> np.ndarray:
+        """The samples as float32 (integers times their scale: exact, the file reader's values)."""
+        return x if self._scale is None else np.multiply(x, np.float32(self._scale), dtype=np.float32)
+
     def _append_raw(self, x: np.ndarray) -> None:
         """Audio after the raw audio so far.  The chunk itself is not copied: snippets are cut from
         it and what later snippets need is kept (a copy of the last ~0.1 s) by _emit_ready."""
@@ -229,9 +257,9 @@ class ImpactDetector:
     def _head(x: np.ndarray, prev: np.ndarray, lag: int) -> np.ndarray:
         """The lag samples before x: prev's last ones; before the first sample the signal is taken
         to have been constant (no jump at the start)."""
-        fill = prev[0] if len(prev) else (x[0] if len(x) else 0.0)
-        return np.concatenate([np.full(max(0, lag - len(prev)), fill, dtype=np.float32),
-                               prev[-lag:] if len(prev) else prev]).astype(np.float32, copy=False)
+        fill = prev[0] if len(prev) else (x[0] if len(x) else 0)
+        return np.concatenate([np.full(max(0, lag - len(prev)), fill, dtype=x.dtype),
+                               prev[-lag:] if len(prev) else prev]).astype(x.dtype, copy=False)
 
     def _frame_energy(self, x: np.ndarray, prev: np.ndarray, lag: int) -> np.ndarray:
         """Mean power per frame of x[n] - x[n-lag] (prev holds the samples before x)."""
@@ -249,7 +277,8 @@ class ImpactDetector:
         """The one pass over every sample of a chunk: :meth:`_frame_energy`, and the chunk's largest
         sample, smallest and sum (in C when built: one read of the samples instead of five)."""
         if kernels.compiled():
-            return kernels.frame_power(x, self._head(x, prev, lag), lag, self.hop)
+            return kernels.frame_power(x, self._head(x, prev, lag), lag, self.hop, scale=self._scale)
+        x, prev = self._as_float(x), self._as_float(prev)
         return self._frame_energy(x, prev, lag), float(x.max()), float(x.min()), float(np.sum(x))
 
     def _tune(self, x: np.ndarray) -> None:
@@ -396,9 +425,9 @@ class ImpactDetector:
         back = self.pre + (self.nsum + 2) * self.hop
         need_from = min([o - self.pre for o, _ in keep], default=end - back)
         need_from = max(self._raw_start, min(need_from, end - back))
-        kept = np.empty(end - need_from, dtype=np.float32)
+        kept = np.empty(end - need_from, dtype=self._dtype)
         self._fetch(kept, need_from)
-        self._raw, self._raw_start, self._fresh = kept, need_from, np.zeros(0, dtype=np.float32)
+        self._raw, self._raw_start, self._fresh = kept, need_from, np.zeros(0, dtype=self._dtype)
         return out
 
     def _cut(self, ready: list[tuple[int, float]]) -> list[Impact]:
@@ -418,6 +447,8 @@ class ImpactDetector:
             a = onset - self.pre
             self._fetch(raw[i], a)
             trunc.append(onset + self.post > end or a < self._raw_start)
+        if self._scale is not None:  # integers: exact in float32, and so after the power-of-two scale
+            raw *= np.float32(self._scale)
         # the level of each impact only: its first 10 ms (a later sound in the snippet is another impact)
         ms1 = int(0.001 * self.samplerate)
         ms10 = int(0.010 * self.samplerate)

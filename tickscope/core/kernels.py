@@ -40,14 +40,24 @@ def newton_peaks(C: np.ndarray, tau: np.ndarray, val: np.ndarray, w: np.ndarray,
     _c.newton_peaks(C, tau, val, w, w1, w2, int(nfft), int(iters))
 
 
-def frame_power(x: np.ndarray, head: np.ndarray, lag: int, hop: int) -> tuple[np.ndarray, float, float, float]:
+def frame_power(x: np.ndarray, head: np.ndarray, lag: int, hop: int, scale: float | None = None
+                ) -> tuple[np.ndarray, float, float, float]:
     """The compiled one-pass form of the detector's per-sample work
     (:meth:`tickscope.core.detect.ImpactDetector._chunk_power`): the mean power of
     ``x[n] - x[n-lag]`` per frame of ``hop`` samples (``head``: the ``lag`` samples before ``x``),
-    and the largest sample, the smallest and their sum.  Only call when :func:`compiled` is true."""
+    and the largest sample, the smallest and their sum.  With ``scale``, ``x`` and ``head`` are
+    16- or 32-bit integers standing for their value times ``scale`` (the numbers are those of the
+    float32 samples ``np.multiply(x, scale, dtype=np.float32)``).  Only call when :func:`compiled`
+    is true."""
     out = np.empty(len(x) // hop)
-    hi, lo, total = _c.frame_power(np.ascontiguousarray(x, dtype=np.float32),
-                                   np.ascontiguousarray(head, dtype=np.float32), int(lag), int(hop), out)
+    if scale is None:
+        kind, x, head = 0, np.ascontiguousarray(x, dtype=np.float32), np.ascontiguousarray(head, dtype=np.float32)
+    else:
+        kind = x.dtype.itemsize
+        if x.dtype.kind != "i" or kind not in (2, 4):
+            raise TypeError(f"frame_power: integer samples must be int16 or int32, not {x.dtype}")
+        x, head = np.ascontiguousarray(x), np.ascontiguousarray(head, dtype=x.dtype)
+    hi, lo, total = _c.frame_power(x, head, int(lag), int(hop), out, kind, float(scale or 1.0))
     return out, hi, lo, total
 
 

@@ -217,12 +217,14 @@ def _zero_nonfinite(y: np.ndarray, tally: dict | None) -> np.ndarray:
 
 
 def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FRAMES, *,
-           start_frame: int = 0, tally: dict | None = None) -> Iterator[Block]:
+           start_frame: int = 0, tally: dict | None = None, integers: bool = False) -> Iterator[Block]:
     """Yield the chosen channel as float32 Blocks; the file is closed even if abandoned early.
 
     With ``start_frame`` reading starts there, and the blocks count samples from it (a log
     resumed part-way through a file).  Float samples that are not numbers are read as silence
-    and counted in ``tally["nonfinite"]`` when a dict is given.
+    and counted in ``tally["nonfinite"]`` when a dict is given.  With ``integers``, 8-, 16- and
+    24-bit PCM comes as read (int16 or int32 Blocks with their ``scale``; the analyzer converts
+    only what it needs, skipping a pass over every sample); other files as float32 still.
     """
     if not 0 <= channel < info.channels:
         raise ParameterError(f"--channel {channel}: {info.path} has channels 0..{info.channels - 1}")
@@ -249,6 +251,11 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
                     break
                 if scale is None:
                     y = _zero_nonfinite(np.ascontiguousarray(x[:, channel]), tally)
+                elif integers:
+                    y = np.ascontiguousarray(x[:, channel])
+                    yield Block(y, pos, scale=float(scale))
+                    pos += len(y)
+                    continue
                 else:
                     y = np.multiply(x[:, channel], scale, dtype=np.float32)
                 yield Block(y, pos)
