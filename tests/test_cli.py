@@ -94,6 +94,9 @@ def _bad(tmp_path, kind):
         p.write_bytes(b"")
     elif kind == "short":
         sf.write(p, rng.normal(0, 0.01, int(0.3 * fs)), fs)
+    elif kind == "two-steps":  # real steps, too few for a pattern
+        x, _ = render_all(Scenario(duration_s=2))
+        sf.write(p, x, fs)
     elif kind == "silence":
         sf.write(p, np.zeros(fs * 10), fs)
     elif kind == "noise":
@@ -116,10 +119,11 @@ def _bad(tmp_path, kind):
     ("not-audio", 2, "not a readable audio file"),
     ("empty", 2, "empty"),
     ("short", 2, "0.30 s long"),
+    ("two-steps", 3, "only 2.0 s long, too short to find a stepping pattern"),
     ("corrupt-header", 2, "not a readable audio file"),
     ("truncated", 2, ""),
     ("silence", 3, "no steps"),
-    ("noise", 3, "no steps"),
+    ("noise", 3, "no stepping-motor pattern was heard"),
 ])
 def test_bad_input(tmp_path, capsys, kind, code, words):
     c, out, err = run(["analyze", _bad(tmp_path, kind), "--json"], capsys)

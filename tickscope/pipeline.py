@@ -27,6 +27,7 @@ from .units import SECONDS_PER_DAY, ppm_to_s_per_day
 TYPICAL_DEVICE_PPM = 50.0
 HUM_ANALYSIS_S = 8.0
 ASYMMETRY_FLOOR_US = 300.0
+SHORT_FOR_PATTERN_S = 8.0  # below this, finding no step pattern is put down to the length first
 LOUD_REJECT_DB = 10.0  # off-grid sounds this far above the floor are counted as rejected events
 
 
@@ -358,9 +359,16 @@ class Analyzer:
         dc = self.detector.sum_x / max(self.detector.samples_seen, 1)
         peak = 20 * math.log10(max(self.detector.max_abs, 1e-12))
         # --- plain-words warnings -----------------------------------------------------------
+        no_steps: dict = {}
         if pattern == "none":
-            warnings.append("no stepping-motor pattern was heard: move the microphone onto the case or closer "
-                            "to the movement, quiet the room, and record at least 30 s")
+            if self.duration_s < SHORT_FOR_PATTERN_S:
+                why = (f"the recording is only {self.duration_s:.1f} s long, too short to find a stepping pattern "
+                       "(it takes several steps in a row): record at least 30 s")
+            else:
+                why = ("no stepping-motor pattern was heard: move the microphone onto the case or closer "
+                       "to the movement, quiet the room, and record at least 30 s")
+            warnings.append(why)
+            no_steps["no_steps_reason"] = why
         beats = {}
         if pattern == "not-stepping":
             iv = tr.measured_s
@@ -431,7 +439,7 @@ class Analyzer:
             residuals_us=res_us,
             residual_times_s=res_t,
             extras={"alternation_us": asym_us, "coherence": tr.coherence, **diag.get("json", {}),
-                    "diagnosis": diag.get("lines", []), **beats},
+                    "diagnosis": diag.get("lines", []), **beats, **no_steps},
         )
 
     def _diagnose(self, rate: RateEstimate | None) -> dict:
