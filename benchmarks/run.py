@@ -94,18 +94,26 @@ def bench_throughput(tmp, hours_list, repeats: int = 5):
         dur = hours * 3600.0
         os.sync()  # the new file's pages written out first: their writeback would slow the runs below
         run_cli(path, env)  # warm-up: page cache, bytecode
-        runs = [run_cli(path, env) for _ in range(repeats)]
+        # each run right after a float32 read of the same file: this VM's speed wanders by +-20 % over
+        # tens of seconds, and the pair's ratio is the figure that stays put
+        runs, reads = [], []
+        for _ in range(repeats):
+            reads.append(read_only_seconds(path))
+            runs.append(run_cli(path, env))
         walls = sorted(r[0] for r in runs)
         cpus = sorted(r[1] for r in runs)
         rss = max(r[2] for r in runs)
         d = runs[-1][3]
-        rd, rd_own = read_only_seconds(path)
+        rd, rd_own = (min(r[i] for r in reads) for i in (0, 1))
+        ratio = sorted(r[0] / q[0] for r, q in zip(runs, reads))[len(runs) // 2]
         med = walls[len(walls) // 2]
         print(f"  {hours:g} h: analyze best {walls[0]:.2f} s = {dur / walls[0]:,.0f}x real time, median {med:.2f} s = "
               f"{dur / med:,.0f}x; CPU (user + system) median {cpus[len(cpus) // 2]:.2f} s; peak RSS {rss:.0f} MB; "
               f"(generated in {gen:.0f} s)")
         print(f"       reading alone as float32 {rd:.2f} s = {dur / rd:,.0f}x (tickscope's reader: {rd_own:.2f} s = "
               f"{dur / rd_own:,.0f}x)")
+        print(f"       analysis / float32 reading, run by run: median {ratio:.2f}x the time ({100 / ratio:.0f} % of its "
+              f"speed; the target's own proportion, 3000x against ~8000x reading, is 2.67x = 37 %)")
         if kernels.compiled():
             pn = sorted(run_cli(path, _cli_env(pure_numpy=True))[0] for _ in range(max(1, repeats // 2)))
             print(f"       the same without the compiled loops (TICKSCOPE_PURE_NUMPY=1): best {pn[0]:.2f} s = "
