@@ -531,3 +531,23 @@ def test_ticking_that_stops_before_the_end_is_not_missed_in_the_hourly_lines(tmp
     out = _cli("log", str(tmp_path / "b.db"), "--source", wav).stdout
     hour_lines = [ln for ln in out.splitlines() if ln.startswith("h0")]
     assert hour_lines and not any("missed" in ln for ln in hour_lines), out
+
+
+def test_log_of_a_damaged_float_file_says_what_was_read_as_silence(tmp_path):
+    # a float WAV holding NaNs and infinities (a damaged file): they are read as silence, and the
+    # log says so -- in its JSON line, in its database and in the report's notes
+    x, _ = render_all(Scenario(duration_s=40, seed=12))
+    x = x[:, 0].astype(np.float32)
+    x[48000 * 20: 48000 * 20 + 300] = np.nan
+    x[48000 * 30: 48000 * 30 + 5] = np.inf
+    wav = str(tmp_path / "damaged.wav")
+    sf.write(wav, x, 48000, subtype="FLOAT")
+    db = str(tmp_path / "damaged.db")
+    r = _cli("log", db, "--source", wav, "--json")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    assert d["nonfinite_samples"] == 305 and d["steps"] >= 38
+    r = _cli("report", db, "--json")
+    assert r.returncode == 0, r.stderr
+    notes = json.loads(r.stdout)["notes"]
+    assert any("305 samples" in n and "read as silence" in n for n in notes)

@@ -139,8 +139,7 @@ def cmd_analyze(args) -> int:
         summary.warnings.append(f"the file ends at {summary.duration_s:.1f} s though its header says "
                                 f"{info.duration_s:.1f} s (cut short or damaged): analyzed what it holds")
     if tally.get("nonfinite"):
-        summary.warnings.append(f"{tally['nonfinite']} samples of the file are not numbers (NaN or infinite: a "
-                                "damaged float file) and were read as silence")
+        summary.warnings.append(_nonfinite_note(tally["nonfinite"]))
     if chosen_note:
         summary.warnings.insert(0, chosen_note)
     if demo and not args.json:
@@ -162,6 +161,10 @@ def cmd_analyze(args) -> int:
                                                          else "no stepping pattern heard")
         raise NoStepsError(f"no steps could be found in {path}: {why}")
     return 0
+
+
+def _nonfinite_note(n: int) -> str:
+    return f"{n} samples of the file are not numbers (NaN or infinite: a damaged float file) and were read as silence"
 
 
 def _run_file(an, block_iter, info, writer, *, show_progress: bool) -> None:
@@ -402,6 +405,7 @@ def _run_log(args, store) -> int:
     last = segs[-1] if segs else None
     note = ""
     cap = None
+    tally: dict = {}  # samples of the source that were not numbers (read as silence)
     if args.source is not None:
         from .io.audiofile import blocks, choose_channel, probe
 
@@ -421,7 +425,7 @@ def _run_log(args, store) -> int:
         if not 0 <= channel < info.channels:
             raise ParameterError(f"--channel {channel}: {src} has channels 0..{info.channels - 1}")
         fs = info.samplerate
-        block_iter = blocks(src, info, channel, start_frame=start_frame)
+        block_iter = blocks(src, info, channel, start_frame=start_frame, tally=tally)
         kind, source, join, timeline = "file", src, ("first" if last is None else "exact"), offset_s
         if last is not None:
             note = f"resuming {src} at {offset_s:.1f} s (segment {len(segs) + 1})"
@@ -481,10 +485,14 @@ def _run_log(args, store) -> int:
         store.rollback()  # a full disk: what was committed stays; nothing more can be written
         raise
     ls.finish(reason)
+    if tally.get("nonfinite"):
+        store.set_meta(f"segment {seg} nonfinite", str(tally["nonfinite"]))
     t = ls.totals
     d = {"db": args.db, "segment": len(segs) + 1, "source": source, "duration_s": round(ls.position_s, 3),
          "steps": t["steps"], "missed": t["missed"], "failed": t["failed"], "rejected": t["rejected"],
          "gaps": t["gaps"], "stopped_slots": t.get("stopped_slots", 0), "ended": reason, "time_base": time_base}
+    if tally.get("nonfinite"):
+        d["nonfinite_samples"] = tally["nonfinite"]
     snd = ls.sound or {}
     d["sound"] = snd.get("sound")
     if snd.get("sound") == "not-stepping":
@@ -509,6 +517,8 @@ def _run_log(args, store) -> int:
 
             for line in hourly_lines(hours, min(con.width, 120), max_rows=12):
                 con.print(line)
+        if tally.get("nonfinite"):
+            con.print(f"[yellow]{_nonfinite_note(tally['nonfinite'])}[/yellow]")
         con.print(f"[dim]see the whole log: tickscope report {args.db}[/dim]")
     if err is not None:
         sys.stderr.write(f"tickscope: {reason}; everything up to then is kept in {args.db}\n")
@@ -635,6 +645,10 @@ def cmd_report(args) -> int:
     lossy = {s_.id for s_ in segs if meta.get(f"segment {s_.id} lossy") == "1"}
     fig = log_figures(segs, ev, gaps=gaps, minutes=minutes, override_ppm=over_ppm, override_u95=over_u,
                       sounds=sounds, lossy=lossy)
+    for s_ in segs:
+        n_bad = meta.get(f"segment {s_.id} nonfinite")
+        if n_bad:
+            fig.notes.append(f"segment {s_.id}: " + _nonfinite_note(int(n_bad)))
     if args.steps_csv:
         with open(args.steps_csv, "w", newline="") as fh:
             write_log_csv(fh, fig.event_t, fig.event_k, ev, fig.event_pol)
