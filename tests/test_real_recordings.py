@@ -98,6 +98,7 @@ def test_real_recordings_through_the_command_line(capsys):
     assert d["sound"] == "not-stepping" and d["rate_s_per_day"] is None
     assert d["beats"]["heard"] >= 14
     assert any("not a quartz stepping-motor pattern" in w for w in d["warnings"])
+    assert d["sound_reason"].startswith("the sound is not a quartz stepping-motor pattern (beat interval heard 1.0")
     assert main(["analyze", str(_path("kitchen-timer.ogg"))]) == 0
     out = capsys.readouterr().out
     assert "Not a quartz stepping pattern" in out and "beats heard" in out and "missed steps" not in out

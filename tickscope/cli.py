@@ -157,7 +157,7 @@ def cmd_analyze(args) -> int:
 
         plot_analysis(summary, an, args.plot, title=os.path.basename(path))
     if summary.sound == "none" or summary.steps_detected == 0:
-        why = summary.extras.get("no_steps_reason") or (summary.warnings[-1] if summary.warnings
+        why = summary.extras.get("sound_reason") or (summary.warnings[-1] if summary.warnings
                                                          else "no stepping pattern heard")
         raise NoStepsError(f"no steps could be found in {path}: {why}")
     return 0

@@ -358,7 +358,7 @@ class LogSession:
             # stepping motor (an escapement, a rattle) holds beats, not steps, and its report says so
             self.sound = {"sound": summary.sound, "beat_interval_s": summary.measured_interval_s,
                           "beats": summary.extras.get("beats", {}).get("heard"),
-                          "why": next((w for w in summary.warnings if "not a quartz stepping" in w), None)}
+                          "why": summary.extras.get("sound_reason") if summary.sound == "not-stepping" else None}
             self.store.set_meta(f"segment {self.seg} sound", json.dumps(self.sound))
         if self._win is not None:
             _, s0, h, wa, ad, _ = self._win

@@ -359,7 +359,7 @@ class Analyzer:
         dc = self.detector.sum_x / max(self.detector.samples_seen, 1)
         peak = 20 * math.log10(max(self.detector.max_abs, 1e-12))
         # --- plain-words warnings -----------------------------------------------------------
-        no_steps: dict = {}
+        reason: dict = {}  # why the sound is not taken for steps, in the words of its warning
         if pattern == "none":
             if self.duration_s < SHORT_FOR_PATTERN_S:
                 why = (f"the recording is only {self.duration_s:.1f} s long, too short to find a stepping pattern "
@@ -368,7 +368,7 @@ class Analyzer:
                 why = ("no stepping-motor pattern was heard: move the microphone onto the case or closer "
                        "to the movement, quiet the room, and record at least 30 s")
             warnings.append(why)
-            no_steps["no_steps_reason"] = why
+            reason["sound_reason"] = why
         beats = {}
         if pattern == "not-stepping":
             iv = tr.measured_s
@@ -380,6 +380,7 @@ class Analyzer:
                 how = "" if asym_us is None else f", alternate beats differ by {asym_us / 1000:.2f} ms"
             warnings.append(f"the sound is not a quartz stepping-motor pattern (beat interval heard {iv:.4f} s{how}): "
                             "no rate is claimed for it")
+            reason["sound_reason"] = warnings[-1]
             beats = {"beats": {"heard": tr.slots_heard, "like_first": tr.slots_matched,
                                "scatter_ms": None if spread is None else round(spread * 1000, 3),
                                "alternation_ms": None if asym_us is None else round(asym_us / 1000, 3)}}
@@ -439,7 +440,7 @@ class Analyzer:
             residuals_us=res_us,
             residual_times_s=res_t,
             extras={"alternation_us": asym_us, "coherence": tr.coherence, **diag.get("json", {}),
-                    "diagnosis": diag.get("lines", []), **beats, **no_steps},
+                    "diagnosis": diag.get("lines", []), **beats, **reason},
         )
 
     def _diagnose(self, rate: RateEstimate | None) -> dict:
