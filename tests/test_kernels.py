@@ -225,3 +225,23 @@ def test_match_pick_matches_numpy(fs):
         kernels.match_pick(c, C, xp, int(lags[0]), len(lags), nt, b - a, pref, tm.energy, w, w1, w2, nfft, 3, *got)
         for g, r in zip(got, ref):
             np.testing.assert_allclose(g, r, rtol=1e-12, atol=1e-12)
+
+
+@needs_compiled
+def test_onset_scan_matches_numpy():
+    from tickscope.core.detect import ImpactDetector
+
+    rng = np.random.default_rng(5)
+    for trial in range(200):
+        nf = int(rng.integers(0, 3000))
+        sub = int(rng.integers(1, 600))
+        nblk = max(1, -(-nf // sub))
+        now = rng.lognormal(-20, 2, nf)
+        bg = now * rng.lognormal(-1, 1.5, nf)
+        thr_b = rng.lognormal(-19, 1, nblk)
+        fl_b = thr_b * rng.uniform(0.05, 0.5, nblk)
+        args = (now, bg, thr_b, fl_b, sub, 10 ** 0.4, int(rng.integers(0, 10**6)), 4, int(rng.integers(1, 200)),
+                int(rng.integers(-10**12, 10**6)), int(rng.integers(-1, 10**6)))
+        ref = ImpactDetector._onsets_numpy(*args)
+        got = kernels.onset_scan(*args)
+        assert np.array_equal(got[0], ref[0]) and np.array_equal(got[1], ref[1]) and got[2] == ref[2]

@@ -13,6 +13,8 @@
  *       -> (slope_db_per_s, fit_range_db, fit_rms_db) or None
  *       Schroeder's backward-integrated decay curve and a line through it in dB
  *       (see measure_ringdown in ringdown.py for the method and its sources).
+ *   onset_scan(now, bg, thr, floor, sub, rise, first_frame, ns, refractory, last, quiet, onsets, floors)
+ *       The detector's onset rule over a chunk's frames (see ImpactDetector._onsets_numpy).
  *   frame_power(x, head, lag, hop, out, kind, scale) -> (max, min, sum)
  *       The detector's one pass over every sample (ImpactDetector._frame_energy): the mean power
  *       of x[n] - x[n-lag] per frame of hop samples into out (head holds the lag samples before
@@ -627,6 +629,71 @@ done:
     return result;
 }
 
+/* The detector's onset rule over a chunk's frames (ImpactDetector._onsets_numpy is the reference):
+   a frame is a candidate when its 2 ms power beats its block's threshold and the power before it
+   by the rise; a candidate starts an impact unless within the refractory time of the last one or in
+   the quiet frames after a gap.  Writes the onset frames and their blocks' floors; returns
+   (count, last onset frame). */
+static PyObject *
+onset_scan(PyObject *self, PyObject *args)
+{
+    PyObject *no, *bo, *to, *fo, *oo, *flo;
+    Py_ssize_t sub, first_frame, ns, refr, last, quiet;
+    double rise;
+    if (!PyArg_ParseTuple(args, "OOOOndnnnnnOO", &no, &bo, &to, &fo, &sub, &rise, &first_frame, &ns, &refr, &last,
+                          &quiet, &oo, &flo))
+        return NULL;
+    Py_buffer nb_, bb, tb, fb, ob, flb;
+    Py_buffer *held[6];
+    int nheld = 0;
+    PyObject *result = NULL;
+#define TAKE(obj, view, wr, size, name)                          \
+    do {                                                         \
+        if (get_buffer(obj, view, wr, size, name) < 0)           \
+            goto done;                                           \
+        held[nheld++] = view;                                    \
+    } while (0)
+    TAKE(no, &nb_, 0, sizeof(double), "now");
+    TAKE(bo, &bb, 0, sizeof(double), "bg");
+    TAKE(to, &tb, 0, sizeof(double), "thr");
+    TAKE(fo, &fb, 0, sizeof(double), "floor");
+    TAKE(oo, &ob, 1, sizeof(long long), "onsets");
+    TAKE(flo, &flb, 1, sizeof(double), "floors");
+#undef TAKE
+    {
+        const Py_ssize_t nf = nb_.len / (Py_ssize_t)sizeof(double);
+        const Py_ssize_t nblk = tb.len / (Py_ssize_t)sizeof(double);
+        if (sub < 1 || bb.len != nb_.len || fb.len != tb.len || nblk * sub < nf || (nf && nblk < 1)
+            || ob.len < nf * (Py_ssize_t)sizeof(long long) || flb.len < nf * (Py_ssize_t)sizeof(double)) {
+            PyErr_SetString(PyExc_ValueError, "onset_scan: now and bg of one length, a threshold and floor per "
+                                              "block of sub frames, outputs as long as now");
+            goto done;
+        }
+        const double *now = (const double *)nb_.buf, *bg = (const double *)bb.buf;
+        const double *thr = (const double *)tb.buf, *fl = (const double *)fb.buf;
+        long long *on = (long long *)ob.buf;
+        double *onfl = (double *)flb.buf;
+        Py_ssize_t count = 0;
+        for (Py_ssize_t c = 0; c < nf; c++) {
+            const Py_ssize_t b = c / sub;
+            if (!(now[c] > thr[b] && now[c] > bg[c] * rise + 0.5 * fl[b]))
+                continue;
+            const Py_ssize_t fi = first_frame + c - ns + 1; /* the summed window starts here */
+            if (fi - last < refr || first_frame + c < quiet)
+                continue;
+            last = fi + ns - 1;
+            on[count] = (long long)fi;
+            onfl[count] = fl[b];
+            count++;
+        }
+        result = Py_BuildValue("nn", count, last);
+    }
+done:
+    while (nheld)
+        PyBuffer_Release(held[--nheld]);
+    return result;
+}
+
 static PyMethodDef methods[] = {
     {"newton_peaks", newton_peaks, METH_VARARGS,
      "newton_peaks(C, tau, val, w, w1, w2, nfft, iters): refine correlation maxima in place."},
@@ -636,6 +703,9 @@ static PyMethodDef methods[] = {
     {"match_pick", match_pick, METH_VARARGS,
      "match_pick(c, C, x, l0, L, nt, width, prefer, energy, w, w1, w2, nfft, iters, tau, val, rho): "
      "timing.match_many's choice of lobe per row."},
+    {"onset_scan", onset_scan, METH_VARARGS,
+     "onset_scan(now, bg, thr, floor, sub, rise, first_frame, ns, refractory, last, quiet, onsets, floors) -> "
+     "(count, last): the detector's onset rule over a chunk."},
     {"frame_power", frame_power, METH_VARARGS,
      "frame_power(x, head, lag, hop, out, kind, scale) -> (max, min, sum): mean power of x[n] - x[n-lag] "
      "per frame."},

@@ -352,22 +352,37 @@ class ImpactDetector:
             thr_b, fl_b = self._block_thresholds(q_floor, q20, q50, q90, rel, min_level)
         else:
             thr_b, fl_b = self._block_thresholds_one_by_one(q_floor, q20, q50, q90, rel, min_level)
-        lens = np.diff(starts + [nf])
-        thr = np.repeat(np.array(thr_b), lens)
-        fl = np.repeat(np.array(fl_b), lens)
-        self.floor_db = 10 * math.log10(max(fl[-1], 1e-30))
-        cand = np.flatnonzero((now > thr) & (now > bg * 10 ** (self.cfg.rise_db / 10) + 0.5 * fl))
+        self.floor_db = 10 * math.log10(max(fl_b[-1], 1e-30))
         self._prev_frames = ext[-P:]
-        first_frame = n0 // self.hop
-        for c in cand:
-            fi = first_frame + int(c) - ns + 1  # the summed window starts here
-            if fi - self._last_onset_frame < self.refractory_frames or first_frame + int(c) < self._quiet_until_frame:
-                continue
-            self._last_onset_frame = fi + ns - 1
-            self._waiting.append((fi * self.hop, float(fl[c])))
+        rise = 10 ** (self.cfg.rise_db / 10)
+        args = (now, bg, np.asarray(thr_b, dtype=np.float64), np.asarray(fl_b, dtype=np.float64), sub, rise,
+                n0 // self.hop, ns, self.refractory_frames, self._last_onset_frame, self._quiet_until_frame)
+        onsets, floors, self._last_onset_frame = (kernels.onset_scan(*args) if kernels.compiled()
+                                                  else self._onsets_numpy(*args))
+        self._waiting += zip((onsets * self.hop).tolist(), floors.tolist())
         self._append_raw(x)
         self._consumed += len(x)
         return self._emit_ready(final=False)
+
+    @staticmethod
+    def _onsets_numpy(now, bg, thr_b, fl_b, sub: int, rise: float, first_frame: int, ns: int, refractory: int,
+                      last: int, quiet: int) -> tuple[np.ndarray, np.ndarray, int]:
+        """The onset rule over a chunk's frames: a frame is a candidate when its 2 ms power beats its
+        block's threshold and the power 2.5-6 ms before it by the rise; a candidate starts an impact
+        unless within the refractory time of the last one or in the quiet frames after a gap.
+        Returns the onset frames (where each summed window starts), their blocks' floors and the last
+        onset frame (the reference of the compiled ``kernels.onset_scan``)."""
+        blk = np.arange(len(now)) // sub
+        thr, fl = thr_b[blk], fl_b[blk]
+        onsets, floors = [], []
+        for c in np.flatnonzero((now > thr) & (now > bg * rise + 0.5 * fl)).tolist():
+            fi = first_frame + c - ns + 1  # the summed window starts here
+            if fi - last < refractory or first_frame + c < quiet:
+                continue
+            last = fi + ns - 1
+            onsets.append(fi)
+            floors.append(fl[c])
+        return np.array(onsets, dtype=np.int64), np.array(floors, dtype=np.float64), last
 
     def _block_thresholds(self, q_floor, q20, q50, q90, rel: float, min_level: float) -> tuple[list, list]:
         """:meth:`_block_thresholds_one_by_one` for a run of blocks once both running windows are

@@ -69,3 +69,16 @@ def match_pick(c: np.ndarray, C: np.ndarray, xp: np.ndarray, l0: int, n_lags: in
     _c.match_pick(c, C, xp, int(l0), int(n_lags), int(nt), int(width),
                   None if pref is None else np.ascontiguousarray(pref, dtype=np.float64), float(energy),
                   w, w1, w2, int(nfft), int(iters), tau, val, rho)
+
+
+def onset_scan(now: np.ndarray, bg: np.ndarray, thr_b: np.ndarray, fl_b: np.ndarray, sub: int, rise: float,
+               first_frame: int, ns: int, refractory: int, last: int, quiet: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """The compiled :meth:`tickscope.core.detect.ImpactDetector._onsets_numpy`: onset frames, their
+    blocks' floors, and the last onset frame.  Only call when :func:`compiled` is true."""
+    on = np.empty(len(now), dtype=np.int64)
+    fl = np.empty(len(now))
+    n, last = _c.onset_scan(np.ascontiguousarray(now, dtype=np.float64), np.ascontiguousarray(bg, dtype=np.float64),
+                            np.ascontiguousarray(thr_b, dtype=np.float64), np.ascontiguousarray(fl_b, dtype=np.float64),
+                            int(sub), float(rise), int(first_frame), int(ns), int(refractory), int(last), int(quiet),
+                            on, fl)
+    return on[:n], fl[:n], int(last)
