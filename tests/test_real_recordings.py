@@ -196,3 +196,23 @@ def test_real_step_sounds_with_noise_level_changes_and_lossy_encoding(tmp_path):
     assert s.steps_detected == len(times) - 1 and s.missed_steps == 1
     _assert_missed_at(s, times, [60])
     assert abs(s.rate.rate_s_per_day - (-3.2)) <= s.rate.ci95_s_per_day
+
+
+@pytest.mark.parametrize("level_db", [-12.0, -8.0])
+def test_real_step_sounds_with_a_second_clock_of_the_same_kind(tmp_path, level_db):
+    # A second clock of the same model in the room, behind the same noise gate: its steps sound
+    # exactly like the movement's, only quieter, and it runs 150 s/day slow.  Out of the gate's
+    # digital silence both stand far above any floor; the acquisition must still lock onto the
+    # louder one (it took the pair for a 0.5 s beat that was not a stepping motor before).
+    y, fs, times = _lay_ticks(+7.5, 150.0)
+    y2, _, _ = _lay_ticks(-150.0, 150.0)
+    lag = int(0.37 * fs)
+    y[lag:] += 10 ** (level_db / 20) * y2[:-lag]
+    p = tmp_path / "two-clocks.wav"
+    sf.write(p, y, fs, subtype="PCM_16")
+    s = _analyze(p)
+    assert s.sound == "stepping" and s.step_interval_s == 1.0
+    assert s.steps_detected == len(times) and s.missed_steps == 0
+    assert abs(s.rate.rate_s_per_day - 7.5) <= s.rate.ci95_s_per_day and abs(s.rate.rate_s_per_day - 7.5) < 0.01
+    if level_db == -8.0:  # loud enough to be named, with its own rate
+        assert s.extras["other_clock"]["rate_s_per_day"] == pytest.approx(-150.0, abs=6.0)

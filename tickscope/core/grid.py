@@ -279,7 +279,10 @@ class StepTracker:
         # median floor of the window, and the SNR is capped at 60 dB.
         snr = np.array([o.imp.frame_snr_db for o in buf])
         peak = np.array([o.imp.peak_dbfs for o in buf])
-        floor = np.maximum(peak - snr, np.median(peak - snr))
+        # Behind a noise gate every sound rises out of digital silence: the floor is also taken no
+        # lower than 50 dB under the loud end, so that a second clock 12 dB down stands 12 dB less
+        # far above it than the movement (both would otherwise pass any cap and weigh the same).
+        floor = np.maximum(np.maximum(peak - snr, np.median(peak - snr)), np.percentile(peak, 90) - 50.0)
         snr = np.minimum(peak - floor, 60.0)
         # relative to the loud end (90th percentile: the steps, while they are a tenth of the sounds
         # or more), so the faint noise impacts of a quiet room -- several a second at 8 kHz, four
