@@ -45,7 +45,7 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
         "steps_in_fit": r.n_steps if r else 0,
         "outliers": r.n_outliers if r else 0,
         "ringdown": {p: {"decay_ms_median": _num(v.decay_ms_median, 4), "decay_ms_iqr": _num(v.decay_ms_iqr, 4),
-                         "steps": v.n, "abnormal": v.n_abnormal} for p, v in s.ringdown.items()},
+                         "steps": v.n, "abnormal": v.n_abnormal, "bent": v.n_bent} for p, v in s.ringdown.items()},
         "signal": {"step_snr_db": _num(s.step_snr_db, 2), "clipped_steps": s.clipped_steps,
                    "hum_hz": _num(s.hum_hz), "hum_db": _num(s.hum_db, 1), "dc_offset": _num(s.dc_offset, 5),
                    "peak_dbfs": _num(s.peak_dbfs, 2)},

@@ -7,7 +7,7 @@ import numpy as np
 
 
 #: Step flags packed into a small integer (the analyzer's step columns, the log database).
-FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8}
+FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8, "bent-decay": 16}
 #: Event kinds as stored in the log database.
 KIND_CODES = {"step": 0, "missed": 1, "failed": 2, "correction": 3, "rejected": 4}
 
@@ -97,6 +97,7 @@ class RingDownStats:
     decay_ms_median: float
     decay_ms_iqr: float
     n_abnormal: int
+    n_bent: int = 0  # steps whose decay curve bends away from one exponential (reverberation, noise)
 
 
 @dataclass(frozen=True)

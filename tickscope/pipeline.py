@@ -188,7 +188,7 @@ class Analyzer:
                 dq = self._decays[pol]  # log decay times of this polarity's recent steps
                 if math.isfinite(d) and d > 0:
                     ld = math.log(d)
-                    if len(dq) >= 20:
+                    if len(dq) >= 20 and "bent-decay" not in flags:
                         med = dq.median()
                         mad = 1.4826 * dq.median_abs_deviation(med)
                         if abs(ld - med) > max(5 * mad, math.log(1.5)):
@@ -352,9 +352,10 @@ class Analyzer:
             sel = (self.step_pol.values == pol) & np.isfinite(self.step_decay.values)
             d = self.step_decay.values[sel].astype(np.float64)
             ab = int(np.count_nonzero((self.step_flags.values[sel] & FLAG_BITS["ringdown"]) != 0))
+            bent = int(np.count_nonzero((self.step_flags.values[sel] & FLAG_BITS["bent-decay"]) != 0))
             if len(d):
                 q1, med, q3 = np.percentile(d, [25, 50, 75])
-                ring[name] = RingDownStats(name, len(d), float(med), float(q3 - q1), ab)
+                ring[name] = RingDownStats(name, len(d), float(med), float(q3 - q1), ab, bent)
         hum_hz, hum_db = self._hum()
         dc = self.detector.sum_x / max(self.detector.samples_seen, 1)
         peak = 20 * math.log10(max(self.detector.max_abs, 1e-12))
@@ -384,6 +385,14 @@ class Analyzer:
             beats = {"beats": {"heard": tr.slots_heard, "like_first": tr.slots_matched,
                                "scatter_ms": None if spread is None else round(spread * 1000, 3),
                                "alternation_ms": None if asym_us is None else round(asym_us / 1000, 3)}}
+        for v in ring.values():
+            # a decay that bends on many steps and varies widely from step to step: the room, not the motor
+            if v.n >= 8 and v.n_bent > v.n / 3 and v.decay_ms_iqr > 0.5 * v.decay_ms_median:
+                warnings.append(f"the ring-down of polarity {v.polarity} bends away from one exponential on {v.n_bent} of "
+                                f"{v.n} steps and varies widely (median {v.decay_ms_median:.1f} ms, IQR "
+                                f"{v.decay_ms_iqr:.1f} ms): the room's reverberation or noise shapes it as much as the "
+                                "movement does, so these decay times describe the recording more than the motor; for "
+                                "ring-down figures put the microphone on the case in a quiet room")
         if self.clock_ppm is None and rate_out is not None:
             warnings.append(f"the rate is on the audio device's own, uncalibrated time base; such clocks are "
                             f"commonly off by tens of ppm (+-{TYPICAL_DEVICE_PPM:.0f} ppm = "

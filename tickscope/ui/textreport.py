@@ -151,9 +151,10 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
         rt.add_column("T60", justify="right")
         rt.add_column("steps", justify="right")
         rt.add_column("abnormal", justify="right")
+        rt.add_column("bent", justify="right")
         for p, v in sorted(s.ringdown.items()):
             rt.add_row(p, f"{v.decay_ms_median:.2f} ms", f"{v.decay_ms_iqr:.2f} ms", f"{6.908 * v.decay_ms_median:.1f} ms",
-                       str(v.n), str(v.n_abnormal))
+                       str(v.n), str(v.n_abnormal), str(v.n_bent))
         parts.append(Text("ring-down (amplitude e-folding time)", style="bold"))
         parts.append(rt)
     if s.extras.get("diagnosis"):
