@@ -44,6 +44,15 @@ get_buffer(PyObject *obj, Py_buffer *view, int writable, Py_ssize_t itemsize, co
     return 0;
 }
 
+/* Take a buffer into `held` (released in reverse at the function's `done:` label), or go there
+   with the error set; for the functions that take many buffers. */
+#define TAKE(obj, view, wr, size, name)                          \
+    do {                                                         \
+        if (get_buffer(obj, view, wr, size, name) < 0)           \
+            goto done;                                           \
+        held[nheld++] = view;                                    \
+    } while (0)
+
 /* sum_k wa[k] Im(C[k] z^k) and sum_k wb[k] Re(C[k] z^k), z = exp(2 pi i tau / nfft); the powers of z
    by running products, as numpy's cumprod forms them in timing._rotate */
 static void
@@ -476,12 +485,6 @@ match_pick(PyObject *self, PyObject *args)
     int nheld = 0, has_pref = po != Py_None;
     PyObject *result = NULL;
     double *cand = NULL, *rowbuf = NULL;
-#define TAKE(obj, view, wr, size, name)                          \
-    do {                                                         \
-        if (get_buffer(obj, view, wr, size, name) < 0)           \
-            goto done;                                           \
-        held[nheld++] = view;                                    \
-    } while (0)
     TAKE(co, &cb, 0, sizeof(float), "c");
     TAKE(Co, &Cb, 0, 2 * sizeof(float), "C");
     TAKE(xo, &xb, 0, sizeof(float), "x");
@@ -493,7 +496,6 @@ match_pick(PyObject *self, PyObject *args)
     TAKE(to, &tb, 1, sizeof(double), "tau");
     TAKE(vo, &vb, 1, sizeof(double), "val");
     TAKE(ro, &rb, 1, sizeof(double), "rho");
-#undef TAKE
     const Py_ssize_t nrow = tb.len / (Py_ssize_t)sizeof(double);
     const Py_ssize_t nb = wb.len / (Py_ssize_t)sizeof(double);
     if (nfft < 4 || L < 1 || l0 < 0 || l0 + L > nfft || nt < 1 || width > nfft || iters < 0
@@ -647,19 +649,12 @@ onset_scan(PyObject *self, PyObject *args)
     Py_buffer *held[6];
     int nheld = 0;
     PyObject *result = NULL;
-#define TAKE(obj, view, wr, size, name)                          \
-    do {                                                         \
-        if (get_buffer(obj, view, wr, size, name) < 0)           \
-            goto done;                                           \
-        held[nheld++] = view;                                    \
-    } while (0)
     TAKE(no, &nb_, 0, sizeof(double), "now");
     TAKE(bo, &bb, 0, sizeof(double), "bg");
     TAKE(to, &tb, 0, sizeof(double), "thr");
     TAKE(fo, &fb, 0, sizeof(double), "floor");
     TAKE(oo, &ob, 1, sizeof(long long), "onsets");
     TAKE(flo, &flb, 1, sizeof(double), "floors");
-#undef TAKE
     {
         const Py_ssize_t nf = nb_.len / (Py_ssize_t)sizeof(double);
         const Py_ssize_t nblk = tb.len / (Py_ssize_t)sizeof(double);
