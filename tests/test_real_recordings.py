@@ -216,3 +216,6 @@ def test_real_step_sounds_with_a_second_clock_of_the_same_kind(tmp_path, level_d
     assert abs(s.rate.rate_s_per_day - 7.5) <= s.rate.ci95_s_per_day and abs(s.rate.rate_s_per_day - 7.5) < 0.01
     # and named, with its own rate (its two step sounds begin 9.5 ms apart: its line carries that)
     assert s.extras["other_clock"]["rate_s_per_day"] == pytest.approx(-150.0, abs=6.0)
+    # and its level is its ticks' loudest sound against the steps', not that of the gate's hiss
+    # each tick begins with (read 4.5 dB low that way)
+    assert s.extras["other_clock"]["level_db"] == pytest.approx(level_db, abs=2.5)

@@ -285,6 +285,17 @@ class OtherClock:
     drift_ms_per_min: float  # how fast its ticks move against the steps
 
 
+def _loudest_after(t: np.ndarray, pk: np.ndarray, first: np.ndarray, span_s: float) -> np.ndarray:
+    """For each sound ``first[i]``, the loudest peak among the sounds from it to ``span_s`` later: a
+    tick's level is its loudest impact's, as a step's is, not that of whatever it began with (a
+    gate's hiss, a faint first contact)."""
+    order = np.argsort(t, kind="stable")
+    ts, ps = t[order], pk[order]
+    lo = np.searchsorted(ts, t[first], side="left")
+    hi = np.searchsorted(ts, t[first] + span_s, side="right")
+    return np.array([ps[a:b].max() for a, b in zip(lo, hi)])
+
+
 def _line_with_alternation(n: np.ndarray, t: np.ndarray, alternation: bool = True) -> tuple[float, np.ndarray]:
     """Least-squares t = a + b n (+ c [n odd] with ``alternation``): the slope b and the residuals
     (with one parity only, a plain line)."""
@@ -395,5 +406,5 @@ def other_clock(other_t: np.ndarray, other_peak_dbfs: np.ndarray, step_k: np.nda
     if drift_s < 0.005:
         return None
     return OtherClock(interval_s=float(b), ticks=int(len(idx)),
-                      level_db=float(np.median(pk[idx]) - np.median(spk)),
+                      level_db=float(np.median(_loudest_after(tr, pk, idx, 0.06)) - np.median(spk)),
                       drift_ms_per_min=float((b - interval_s) / interval_s * 60.0 * 1e3))
