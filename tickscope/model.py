@@ -33,7 +33,7 @@ class Block:
     capture (None for files); ``gap_before`` counts samples lost before this block
     (input overflow), which the pipeline must not mistake for missed steps.  ``scale``, when
     set, says the samples are integers (16- or 24-bit audio as read, int16 or int32) standing for
-    their value times ``scale``; :meth:`float_samples` gives them as float32.
+    their value times ``scale`` (:func:`samples_as_float32` gives their float values).
     """
 
     samples: np.ndarray
@@ -44,11 +44,14 @@ class Block:
     gap_before: int = 0
     scale: float | None = None
 
-    def float_samples(self) -> np.ndarray:
-        """The samples as float32 (integers times ``scale``: exact for 16- and 24-bit audio)."""
-        if self.scale is None:
-            return np.asarray(self.samples, dtype=np.float32)
-        return np.multiply(self.samples, np.float32(self.scale), dtype=np.float32)
+
+def samples_as_float32(x: np.ndarray, scale: float | None) -> np.ndarray:
+    """Samples as float32: integers times their ``scale`` (a power of two: exact for 8-, 16- and
+    24-bit audio, the values a file reader converting to float would give); float samples as they
+    are.  The one place that conversion is written (reader, detector, analyzer)."""
+    if scale is None:
+        return np.asarray(x, dtype=np.float32)
+    return np.multiply(x, np.float32(scale), dtype=np.float32)
 
 
 @dataclass(frozen=True)

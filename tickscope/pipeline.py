@@ -19,7 +19,7 @@ from .core import dsp
 from .core.dsp import RollingWindow
 from .core.rate import fit_rate, level_shifts, residuals_s, stretch_weights
 from .errors import ParameterError
-from .model import FLAG_BITS, Block, Event, RateEstimate, RingDownStats, Summary, flag_bits
+from .model import FLAG_BITS, Block, Event, RateEstimate, RingDownStats, Summary, flag_bits, samples_as_float32
 from .units import SECONDS_PER_DAY, ppm_to_s_per_day
 
 #: Typical error of an uncalibrated consumer audio clock (common practice; sound-card
@@ -143,8 +143,7 @@ class Analyzer:
             out += self._record(self.tracker.add(impacts, self._pos / self.samplerate))
             x = x[self._pos - block.start_sample:] if self._pos > block.start_sample else x
         if self._hum_n < HUM_ANALYSIS_S * self.samplerate:
-            self._hum_buf.append(x.copy() if block.scale is None else np.multiply(x, np.float32(block.scale),
-                                                                                  dtype=np.float32))
+            self._hum_buf.append(x.copy() if block.scale is None else samples_as_float32(x, block.scale))
             self._hum_n += len(x)
         out += self._run(x, block.scale)
         return out

@@ -26,6 +26,7 @@ import numpy as np
 from . import dsp, kernels
 
 from ..errors import ParameterError
+from ..model import samples_as_float32
 
 
 @dataclass(frozen=True)
@@ -233,7 +234,7 @@ class ImpactDetector:
     # -- internals ---------------------------------------------------------------------------
     def _as_float(self, x: np.ndarray) -> np.ndarray:
         """The samples as float32 (integers times their scale: exact, the file reader's values)."""
-        return x if self._scale is None else np.multiply(x, np.float32(self._scale), dtype=np.float32)
+        return samples_as_float32(x, self._scale)
 
     def _append_raw(self, x: np.ndarray) -> None:
         """Audio after the raw audio so far.  The chunk itself is not copied: snippets are cut from

@@ -192,8 +192,7 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
 
 
 def _pick_numpy(c: np.ndarray, C: np.ndarray, x: np.ndarray, lags: np.ndarray, nt: int, nfft: int,
-                pref: np.ndarray | None, energy: float, *, use_compiled_newton: bool = True
-                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                pref: np.ndarray | None, energy: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """match_many's choice for each row of the correlations c (spectra C, searched rows x, lag
     indices ``lags`` into c): the refined lag index and correlation there, and the correlation
     coefficient."""
@@ -228,7 +227,7 @@ def _pick_numpy(c: np.ndarray, C: np.ndarray, x: np.ndarray, lags: np.ndarray, n
     keep = pv >= top_p[rows] - 0.03 * np.abs(top_p[rows])
     rows, j, start, order = rows[keep], j[keep], start[keep], order[keep]
     # Newton from the parabola's peak: two or three steps then suffice
-    tau, val = _newton_peaks(C[rows], nfft, start, iters=3, use_compiled=use_compiled_newton)
+    tau, val = _newton_peaks(C[rows], nfft, start, iters=3)
     wander = np.abs(tau - j) > 1.0  # Newton wandered: keep the integer peak
     tau = np.where(wander, j.astype(np.float64), tau)
     val = np.where(wander, c[rows, j], val)

@@ -20,7 +20,7 @@ import numpy as np
 import soundfile as sf
 
 from ..errors import InputError, ParameterError
-from ..model import Block
+from ..model import Block, samples_as_float32
 
 BLOCK_FRAMES = 1 << 20  # 22 s at 48 kHz: large blocks read fastest, and the per-impact work is batched per block
 WRITE_FRAMES = 1 << 14
@@ -250,15 +250,12 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
                 if not len(x):
                     break
                 if scale is None:
-                    y = _zero_nonfinite(np.ascontiguousarray(x[:, channel]), tally)
+                    y, y_scale = _zero_nonfinite(np.ascontiguousarray(x[:, channel]), tally), None
                 elif integers:
-                    y = np.ascontiguousarray(x[:, channel])
-                    yield Block(y, pos, scale=float(scale))
-                    pos += len(y)
-                    continue
+                    y, y_scale = np.ascontiguousarray(x[:, channel]), float(scale)
                 else:
-                    y = np.multiply(x[:, channel], scale, dtype=np.float32)
-                yield Block(y, pos)
+                    y, y_scale = samples_as_float32(x[:, channel], scale), None
+                yield Block(y, pos, scale=y_scale)
                 pos += len(y)
     except (sf.LibsndfileError, OSError) as e:
         if pos == 0:
