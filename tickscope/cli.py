@@ -646,8 +646,8 @@ def cmd_report(args) -> int:
     fig = log_figures(segs, ev, gaps=gaps, minutes=minutes, override_ppm=over_ppm, override_u95=over_u,
                       sounds=sounds, lossy=lossy)
     for s_ in segs:
-        n_bad = meta.get(f"segment {s_.id} nonfinite")
-        if n_bad:
+        n_bad = meta.get(f"segment {s_.id} nonfinite", "")
+        if n_bad.isdigit():  # written by log as a count; anything else is not ours to read
             fig.notes.append(f"segment {s_.id}: " + _nonfinite_note(int(n_bad)))
     if args.steps_csv:
         with open(args.steps_csv, "w", newline="") as fh:
