@@ -178,7 +178,7 @@ def bench_coverage(trials, duration_s):
             continue
         # the fit's own interval (the reported one adds an unseen logic-regulation correction on
         # recordings shorter than 4 minutes, which would make coverage trivially 100 %)
-        stat = s.extras.get("rate_ci95_statistical_s_per_day") or s.rate.ci95_s_per_day
+        stat = s.rate_ci95_statistical_s_per_day or s.rate.ci95_s_per_day
         hits += abs(s.rate.rate_s_per_day - rate) <= stat
         hits_rep += abs(s.rate.rate_s_per_day - rate) <= s.rate.ci95_s_per_day
         if jit > 0:
@@ -450,7 +450,7 @@ def realistic_case(i: int) -> dict:
     s = an.finish()
     n_true = sum(1 for st in truth["steps"] if st["kind"] == "step")
     exp = truth["expected"]["rate_device_time_s_per_day"]
-    stat = s.extras.get("rate_ci95_statistical_s_per_day")
+    stat = s.rate_ci95_statistical_s_per_day
     return dict(i=i, kw=kw, sound=s.sound, steps=s.steps_detected, true=n_true, missed=s.missed_steps,
                 true_missed=len(kw.get("missed_steps", ())), rate=None if s.rate is None else s.rate.rate_s_per_day,
                 exp=exp, stat=stat, reported=None if s.rate is None else s.rate.ci95_s_per_day)

@@ -2,13 +2,15 @@
 import numpy as np
 import pytest
 
-from tickscope.core.diagnose import detect_inhibition, drive_levels, polarity_asymmetry, position_locked
+from tickscope.core.faults import drive_levels, polarity_asymmetry, position_locked
+from tickscope.core.regulation import detect_inhibition
 from tickscope.core.simulate import Scenario
 from conftest import analyze_scenario
+from tickscope.export import summary_to_dict
 
 
 def _ex(s):
-    return s.extras
+    return summary_to_dict(s)
 
 
 # -- inhibition ----------------------------------------------------------------------------------
@@ -162,7 +164,7 @@ def test_other_clock_found_among_bounces_and_noise():
     # event lists as the tracker leaves them: steps at 1 s, a bounce 50 ms after each, a phone's
     # lifted noise (9 blips a second in the second half of each interval) and a second clock
     # gaining 150 s/day, 300 ms out of phase at the start
-    from tickscope.core.diagnose import other_clock
+    from tickscope.core.otherclock import other_clock
 
     rng = np.random.default_rng(21)
     k = np.arange(300)

@@ -23,6 +23,7 @@ if "PULSE_SERVER" not in os.environ and os.path.exists(f"{LOOPBACK_DIR}/native")
 from tickscope.core.simulate import Scenario  # noqa: E402
 from tickscope.io.capture import Capture  # noqa: E402
 from tickscope.io.simfile import write_simulation  # noqa: E402
+from tickscope.export import summary_to_dict
 
 
 # -- the callback, driven by hand ------------------------------------------------------------------
@@ -96,7 +97,7 @@ def test_dashboard_for_beats_that_are_not_steps():
     Console(file=buf, width=80, height=24, color_system=None).print(
         render_live(s, LiveStatus("pulse", 48000, 0, 30.0, -18.0, 0, None), width=80))
     text = buf.getvalue()
-    assert "not a quartz stepping pattern" in text and f"beats {s.extras['beats']['heard']}" in text
+    assert "not a quartz stepping pattern" in text and f"beats {summary_to_dict(s)['beats']['heard']}" in text
     assert "missed" not in text and "s/day" not in text
 
 

@@ -4,6 +4,7 @@ import pytest
 
 from tickscope.core.simulate import Scenario
 from conftest import analyze_scenario, match_times, true_step_times
+from tickscope.export import summary_to_dict
 
 
 def _check(sc, *, timing_tol_us=None, rate_tol=None):
@@ -127,10 +128,10 @@ def test_dense_tick_tock_is_heard_and_its_beat_reported():
     sc = Scenario(duration_s=8, step_interval_s=0.22, polarity_asymmetry_us=10000, snr_db=35, seed=1)
     s, _, _, _ = analyze_scenario(sc)
     assert s.sound == "not-stepping" and s.rate is None
-    assert s.extras["beats"]["heard"] >= 33
+    assert summary_to_dict(s)["beats"]["heard"] >= 33
     assert s.measured_interval_s == pytest.approx(0.22, rel=0.002)
     # A->B minus B->A: (0.22 + 0.01) - (0.22 - 0.01) = +20 ms
-    assert s.extras["beats"]["alternation_ms"] == pytest.approx(20.0, abs=0.5)
+    assert summary_to_dict(s)["beats"]["alternation_ms"] == pytest.approx(20.0, abs=0.5)
 
 
 def test_beats_that_do_not_repeat_are_not_claimed_as_quartz():
@@ -141,9 +142,9 @@ def test_beats_that_do_not_repeat_are_not_claimed_as_quartz():
                   variation_freq_pct=15, variation_db=4)
     s, _, _, _ = analyze_scenario(sc)
     assert s.sound == "not-stepping" and s.rate is None
-    b = s.extras["beats"]
+    b = summary_to_dict(s)["beats"]
     assert b["heard"] >= 28 and b["like_first"] < 0.5 * b["heard"]
-    assert "failed_steps" not in s.extras
+    assert "failed_steps" not in summary_to_dict(s)
     assert s.measured_interval_s == pytest.approx(1.0, rel=0.01)
     assert any("sound like the first ones" in w for w in s.warnings)
 

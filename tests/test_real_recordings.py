@@ -21,6 +21,7 @@ from scipy import signal
 from tickscope.cli import main
 from tickscope.io.audiofile import WRITE_FRAMES, blocks, choose_channel, probe
 from tickscope.pipeline import Analyzer
+from tickscope.export import summary_to_dict
 
 REAL = Path(os.environ.get("TICKSCOPE_REAL_DIR", Path(__file__).resolve().parents[1] / "recordings" / "real"))
 
@@ -69,10 +70,10 @@ def test_wall_clock_beats_are_heard_and_not_taken_for_quartz_steps():
     s = _analyze(p)
     assert s.sound == "not-stepping" and s.rate is None
     assert s.measured_interval_s == pytest.approx(slope, rel=0.003)
-    assert s.extras["beats"]["heard"] >= 14
-    assert s.extras["beats"]["scatter_ms"] > 3.0
+    assert summary_to_dict(s)["beats"]["heard"] >= 14
+    assert summary_to_dict(s)["beats"]["scatter_ms"] > 3.0
     # no motor diagnosis for a sound that is not a stepping motor's
-    assert "failed_steps" not in s.extras and not s.extras["diagnosis"]
+    assert "failed_steps" not in summary_to_dict(s) and not summary_to_dict(s)["diagnosis"]
     assert s.missed_steps == 0 and s.missed_step_times_s == []
 
 
@@ -85,10 +86,10 @@ def test_kitchen_timer_tick_tock_is_heard_with_its_beat_interval():
     assert len(ref) == 18 and alt_ms > 5.0
     s = _analyze(p)
     assert s.sound == "not-stepping" and s.rate is None
-    assert s.extras["beats"]["heard"] >= 17
+    assert summary_to_dict(s)["beats"]["heard"] >= 17
     assert s.measured_interval_s == pytest.approx(iv.mean(), rel=0.01)
     # the onset of a beat is not its envelope peak: allow 3 ms between the two measures
-    assert abs(s.extras["beats"]["alternation_ms"]) == pytest.approx(alt_ms, abs=3.0)
+    assert abs(summary_to_dict(s)["beats"]["alternation_ms"]) == pytest.approx(alt_ms, abs=3.0)
 
 
 def test_real_recordings_through_the_command_line(capsys):
@@ -215,7 +216,7 @@ def test_real_step_sounds_with_a_second_clock_of_the_same_kind(tmp_path, level_d
     assert s.steps_detected == len(times) and s.missed_steps == 0
     assert abs(s.rate.rate_s_per_day - 7.5) <= s.rate.ci95_s_per_day and abs(s.rate.rate_s_per_day - 7.5) < 0.01
     # and named, with its own rate (its two step sounds begin 9.5 ms apart: its line carries that)
-    assert s.extras["other_clock"]["rate_s_per_day"] == pytest.approx(-150.0, abs=6.0)
+    assert summary_to_dict(s)["other_clock"]["rate_s_per_day"] == pytest.approx(-150.0, abs=6.0)
     # and its level is its ticks' loudest sound against the steps', not that of the gate's hiss
     # each tick begins with (read 4.5 dB low that way)
-    assert s.extras["other_clock"]["level_db"] == pytest.approx(level_db, abs=2.5)
+    assert summary_to_dict(s)["other_clock"]["level_db"] == pytest.approx(level_db, abs=2.5)

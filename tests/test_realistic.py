@@ -8,6 +8,7 @@ from tickscope.io.audiofile import blocks, probe
 from tickscope.io.simfile import write_simulation
 from tickscope.pipeline import Analyzer
 from conftest import analyze_scenario, true_step_times
+from tickscope.export import summary_to_dict
 
 CASES = {
     "reverberant": dict(reverb_rt60_ms=450, snr_db=25),
@@ -34,12 +35,12 @@ def test_realistic_recording(name):
     exp = truth["expected"]["rate_device_time_s_per_day"]
     # 90 s is shorter than two logic-regulation periods: the reported interval includes an unseen
     # correction; the fit's own interval must still cover the truth and be narrow
-    stat = s.extras["rate_ci95_statistical_s_per_day"]
-    assert s.extras["rate_provisional"] is True
+    stat = summary_to_dict(s)["rate_ci95_statistical_s_per_day"]
+    assert summary_to_dict(s)["rate_provisional"] is True
     assert abs(s.rate.rate_s_per_day - exp) <= stat < 0.2
     assert s.rate.ci95_s_per_day >= stat
     # another clock in the room is named with its own rate; none is invented where there is none
-    oc = s.extras["other_clock"]
+    oc = summary_to_dict(s)["other_clock"]
     if "second_clock_rate_s_per_day" in CASES[name]:
         assert oc is not None and abs(oc["rate_s_per_day"] - CASES[name]["second_clock_rate_s_per_day"]) < 1.0, oc
         assert any("another clock" in w for w in s.warnings)
@@ -58,7 +59,7 @@ def test_two_clocks_as_loud_as_each_other_are_both_named():
                   second_clock_db=-8.8, transients_per_min=4.81, variation_db=0.71, variation_freq_pct=1.35,
                   jitter_us=23.8, missed_steps=(84,))
     s, an, truth, _ = analyze_scenario(sc)
-    oc = s.extras["other_clock"]
+    oc = summary_to_dict(s)["other_clock"]
     assert oc is not None and oc["level_db"] > -6.0
     pair = sorted([s.rate.rate_s_per_day, oc["rate_s_per_day"]])
     assert abs(pair[0] - (-110.83)) < 1.0 and abs(pair[1] - (-12.2185)) < 1.0, pair
@@ -131,11 +132,11 @@ def test_hard_recordings_from_the_sweep(name):
     tt = true_step_times(truth)
     assert s.sound == "stepping" and an.tracker.nominal_s == 1.0
     assert s.steps_detected == len(tt)
-    assert s.missed_steps == len(sc.missed_steps) and s.extras["failed_steps"] == 0
+    assert s.missed_steps == len(sc.missed_steps) and summary_to_dict(s)["failed_steps"] == 0
     st = np.array([e.time_s for e in events if e.kind == "step"])
     assert max(np.min(np.abs(st - t)) for t in tt) < 0.003  # every true step was found (not another sound)
     exp = truth["expected"]["rate_device_time_s_per_day"]
-    assert abs(s.rate.rate_s_per_day - exp) <= s.extras["rate_ci95_statistical_s_per_day"]
+    assert abs(s.rate.rate_s_per_day - exp) <= summary_to_dict(s)["rate_ci95_statistical_s_per_day"]
 
 
 def test_low_bitrate_opus_voice_note_keeps_an_honest_interval(tmp_path):

@@ -4,7 +4,7 @@ from __future__ import annotations
 import csv
 import math
 
-from .model import KIND_CODES, Event, Summary, flag_names
+from .model import KIND_CODES, Diagnosis, Event, Summary, flag_names
 
 CSV_HEADER = ["index", "step", "time_s", "polarity", "interval_s", "peak_dbfs", "decay_ms", "flags"]
 
@@ -24,7 +24,7 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
     d = {
         "source": source,
         "duration_s": _num(s.duration_s, 6),
-        "sample_rate_hz": _num(s.sample_rate_hz),
+        "sample_rate_hz": _num(s.samplerate),
         "channel": s.channel,
         "sound": s.sound,
         "step_interval_s": _num(s.step_interval_s),
@@ -38,8 +38,8 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
         "rate_ci95_s_per_day": _num(r.ci95_s_per_day, 6) if r else None,
         "rate_ppm": _num(r.rate_s_per_day / 0.0864, 4) if r else None,
         "clock_correction_ppm": _num(r.clock_correction_ppm if r else 0.0),
-        "clock_calibrated": bool(s.extras.get("clock_calibrated", False)),
-        "time_base": s.extras.get("time_base"),
+        "clock_calibrated": s.clock_calibrated,
+        "time_base": s.time_base,
         "timing_jitter_us": _num(r.jitter_us, 3) if r else None,
         "polarity_offset_us": _num(r.polarity_offset_us, 3) if r else None,
         "steps_in_fit": r.n_steps if r else 0,
@@ -51,11 +51,60 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
                    "peak_dbfs": _num(s.peak_dbfs, 2)},
         "warnings": list(s.warnings),
     }
-    for k, v in s.extras.items():
-        if k not in d and k not in ("clock_calibrated", "alternation_us", "coherence"):
-            if k == "diagnosis":
-                v = list(v)
-            d[k] = v
+    if s.diagnosis is not None:
+        d.update(diagnosis_to_dict(s.diagnosis))
+    d["diagnosis"] = list(s.reading)
+    if s.beats is not None:
+        b = s.beats
+        d["beats"] = {"heard": b.heard, "like_first": b.like_first, "scatter_ms": b.scatter_ms,
+                      "alternation_ms": b.alternation_ms}
+    if s.sound_reason is not None:
+        d["sound_reason"] = s.sound_reason
+    if s.capture is not None:
+        c = s.capture
+        d["capture"] = {"device": c.device, "overflows": c.overflows, "dropped_frames": c.dropped_frames,
+                        "wall_seconds": c.wall_seconds, "ended": c.ended}
+    return d
+
+
+def diagnosis_to_dict(dg: Diagnosis) -> dict:
+    """The quartz diagnostics' keys of the JSON object (schema in the README)."""
+    inh, b, oc, f, pa = dg.inhibition, dg.bursts, dg.other_clock, dg.failed, dg.asymmetry
+    d = {
+        "inhibition": None if inh is None else {
+            "period_s": _num(inh.period_s, 3), "correction_us": _num(inh.correction_us, 2),
+            "correction_ci95_us": _num(inh.correction_ci95_us, 2), "pulses_32768": _num(inh.pulses_32768, 2),
+            "pulses_8192": _num(inh.pulses_8192, 2), "crystal_rate_s_per_day": _num(inh.crystal_rate_s_per_day, 4),
+            "regulated_rate_s_per_day": _num(inh.regulated_rate_s_per_day, 5),
+            "periods_observed": inh.periods_observed},
+        "rate_provisional": dg.rate_provisional,
+        "rate_ci95_statistical_s_per_day": _num(dg.rate_ci95_statistical_s_per_day, 6),
+        "pattern": "burst" if b else "regular",
+        "burst_period_s": b.burst_period_s if b else None,
+        "steps_per_burst": b.steps_per_burst if b else None,
+    }
+    if b:
+        d["steps_in_bursts"] = dg.steps_in_bursts
+    d["other_clock"] = None if oc is None else {
+        "rate_s_per_day": _num(oc.rate_s_per_day, 3), "level_db": _num(oc.level_db, 1), "ticks": oc.ticks,
+        "drift_ms_per_min": _num(oc.drift_ms_per_min, 2)}
+    d.update({
+        "failed_steps": f.count,
+        "failed_step_times_s": [round(v, 6) for v in f.times_s],
+        "seconds_lost": round(f.seconds_lost, 3),
+        "seconds_lost_per_day": _num(f.seconds_lost_per_day, 2),
+        "correction_pulses": f.correction_pulses,
+        "drive_levels": {"levels_dbfs": [round(lv.level_dbfs, 1) for lv in dg.drive_levels],
+                         "shares": [round(lv.share, 3) for lv in dg.drive_levels],
+                         "changes": dg.drive_level_changes} if dg.drive_levels else None,
+        "position_locked": None if dg.position_locked is None else {
+            "period_steps": dg.position_locked.period_steps, "positions": dg.position_locked.positions,
+            "count": dg.position_locked.count},
+    })
+    if pa is not None:
+        d["polarity_asymmetry_us"] = _num(pa.value_us, 2)
+        d["polarity_asymmetry_ci95_us"] = _num(pa.ci95_us, 2)
+        d["ringdown_polarity_diff_ms"] = _num(pa.ringdown_diff_ms, 3)
     return d
 
 

@@ -9,7 +9,7 @@ seconds, and the clips themselves have a byte budget.
 """
 from __future__ import annotations
 
-import io
+import dataclasses
 import json
 import math
 import time
@@ -17,12 +17,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .core.diagnose import LONGEST_KNOWN_PERIOD_S, UNSEEN_CORRECTION_S
 from .core.rate import fit_rate
+from .core.regulation import unseen_correction_ci95_s_per_day
+from .io.clips import ClipKeeper
 from .io.store import BLOCK_WINDOW_S, LogStore
 from .model import Block, Event
 from .pipeline import LOUD_REJECT_DB
-from .units import SECONDS_PER_DAY
 
 COMMIT_EVERY_S = 2.0  # wall seconds between commits (at most this much is lost to a crash)
 COMMIT_AUDIO_S = 60.0  # ... and at most this much audio when replaying a file faster than real time
@@ -73,82 +73,6 @@ class _Bucket:
             return None
         return fit_rate(np.array(self.k), np.array(self.t), nominal_s, clock_ppm=clock_ppm or 0.0,
                         clock_ppm_u95=clock_u95)
-
-
-class ClipKeeper:
-    """Short audio clips around anomalies, within a byte budget (``--keep-audio anomalies``)."""
-
-    def __init__(self, samplerate: float, budget_bytes: int, used_bytes: int = 0, *, pre_s: float = 0.6,
-                 post_s: float = 1.0, min_spacing_s: float = 20.0):
-        self.fs = float(samplerate)
-        self.budget = budget_bytes
-        self.used = used_bytes
-        self.pre_s, self.post_s = pre_s, post_s
-        self.min_spacing_s = min_spacing_s
-        n = int(round((pre_s + post_s + 6.0) * self.fs))  # decisions come up to ~3 s after the sound
-        self._ring = np.zeros(n, dtype=np.float32)
-        self._end = 0  # stream sample index just after the ring's newest sample
-        self._pending: list[tuple[str, float]] = []
-        self._last: dict[str, float] = {}
-        self.skipped = 0
-
-    def audio(self, block: Block, start_sample: int) -> None:
-        x = np.asarray(block.samples, dtype=np.float32).reshape(-1)
-        if start_sample != self._end:  # a gap: the ring restarts
-            self._ring[:] = 0
-        need = len(x) + int(round((self.pre_s + self.post_s + 6.0) * self.fs))
-        if len(self._ring) < need:  # a sound is decided up to a block after it: keep two blocks' worth
-            self._ring = np.concatenate([np.zeros(need - len(self._ring), dtype=np.float32), self._ring])
-        n = len(self._ring)
-        if len(x) >= n:
-            self._ring[:] = x[-n:]
-        else:
-            self._ring = np.roll(self._ring, -len(x))
-            self._ring[-len(x):] = x
-        self._end = start_sample + len(x)
-
-    @property
-    def pending(self) -> int:
-        return len(self._pending)
-
-    def request(self, kind: str, time_s: float) -> None:
-        if self.used >= self.budget:
-            self.skipped += 1
-            return
-        if time_s - self._last.get(kind, -math.inf) < self.min_spacing_s or len(self._pending) >= 16:
-            self.skipped += 1
-            return
-        self._last[kind] = time_s
-        self._pending.append((kind, time_s))
-
-    def ready(self) -> list[tuple[str, float, float, bytes]]:
-        """Clips whose audio is complete: (kind, time_s, start_s, FLAC bytes)."""
-        import soundfile as sf
-
-        out, keep = [], []
-        pos_s = self._end / self.fs
-        ring_start_s = (self._end - len(self._ring)) / self.fs
-        for kind, t in self._pending:
-            if t + self.post_s > pos_s:
-                keep.append((kind, t))
-                continue
-            a = max(t - self.pre_s, ring_start_s, 0.0)
-            i0 = int(round((a - ring_start_s) * self.fs))
-            i1 = int(round((t + self.post_s - ring_start_s) * self.fs))
-            seg = self._ring[max(i0, 0): max(i1, 0)]
-            if len(seg) < 0.1 * self.fs:
-                self.skipped += 1
-                continue
-            buf = io.BytesIO()
-            sf.write(buf, np.clip(seg, -1, 1), int(round(self.fs)), format="FLAC", subtype="PCM_16")
-            data = buf.getvalue()
-            if self.used + len(data) > self.budget:
-                self.skipped += 1
-                continue
-            self.used += len(data)
-            out.append((kind, t, a, data))
-        self._pending = keep
-        return out
 
 
 class LogSession:
@@ -320,10 +244,8 @@ class LogSession:
         r = b.rate(self.nominal_s, self.clock_ppm, self.clock_u95)
         if r is None:
             return HourRate(b.index, float("nan"), float("nan"), b.counts["steps"], b.counts["missed"], complete)
-        ci = r.ci95_s_per_day
-        if r.span_s < 2 * LONGEST_KNOWN_PERIOD_S:
-            # as analyze does: a logic-regulation correction may not have come yet
-            ci = math.hypot(ci, SECONDS_PER_DAY * UNSEEN_CORRECTION_S / max(r.span_s, 1.0))
+        # as analyze does: a logic-regulation correction may not have come yet
+        ci = unseen_correction_ci95_s_per_day(r.ci95_s_per_day, r.span_s)
         return HourRate(b.index, r.rate_s_per_day, ci, b.counts["steps"], b.counts["missed"], complete)
 
     def hourly(self) -> list[HourRate]:
@@ -357,8 +279,8 @@ class LogSession:
             # what the segment's sound was, as analyze would say it: a log of a sound that is not a
             # stepping motor (an escapement, a rattle) holds beats, not steps, and its report says so
             self.sound = {"sound": summary.sound, "beat_interval_s": summary.measured_interval_s,
-                          "beats": summary.extras.get("beats", {}).get("heard"),
-                          "why": summary.extras.get("sound_reason") if summary.sound == "not-stepping" else None}
+                          "beats": summary.beats.heard if summary.beats is not None else None,
+                          "why": summary.sound_reason if summary.sound == "not-stepping" else None}
             self.store.set_meta(f"segment {self.seg} sound", json.dumps(self.sound))
         if self._win is not None:
             _, s0, h, wa, ad, _ = self._win
@@ -381,3 +303,74 @@ class LogSession:
             self.clips.post_s = 0.0  # the end of the audio: clip what there is
             self._store_clips()
         self.store.commit()
+
+
+# -- where a new segment goes: the log's resume rules ------------------------------------------------
+@dataclass(frozen=True)
+class SegmentPlan:
+    """Where the next segment of a log begins and how it joins the ones before.
+
+    ``join``: ``first`` (a new log), ``exact`` (a replay resumed on the same audio clock:
+    ``start_frame`` is where the last commit's decided slots end) or ``wall`` (a device log
+    resumed: joined by the wall clock).  ``done`` is set when there is nothing to add.
+    """
+
+    kind: str  # "file" | "device"
+    source: str
+    join: str
+    timeline_s: float
+    start_frame: int = 0
+    channel: int = 0
+    note: str = ""
+    done: str = ""
+
+
+def check_label(store: LogStore, label: str | None, db: str) -> None:
+    """A log holds one movement: a different label is refused; the first label given is kept."""
+    from .errors import ParameterError
+
+    if label and store.meta().get("label") not in (label, ""):
+        raise ParameterError(f"{db} is the log of {store.meta().get('label')!r}, not {label!r}: "
+                             "use a new database for another movement")
+    if label and not store.meta().get("label"):
+        store.set_meta("label", label)
+        store.commit()
+
+
+def plan_file_segment(segments, source: str, *, samplerate: float, frames: int, channel: int | None,
+                      default_channel, db: str) -> SegmentPlan:
+    """A replay of ``source`` (an absolute path): a new log, or the same file resumed where it stopped.
+
+    ``default_channel`` is called for the channel of a new log when none is given.
+    """
+    from .errors import ParameterError
+
+    last = segments[-1] if segments else None
+    if last is not None and last.source_kind != "file":
+        raise ParameterError(f"{db} logs a device; a recording cannot be added to it (use a new database)")
+    if last is not None and last.source != source:
+        raise ParameterError(f"{db} logs {last.source}; to replay {source} use a new database")
+    offset_s = 0.0 if last is None else last.source_offset_s + last.decided_s
+    start_frame = int(round(offset_s * samplerate))
+    if channel is None:
+        channel = last.channel if last is not None else default_channel()
+    plan = SegmentPlan("file", source, "first" if last is None else "exact", offset_s, start_frame, channel,
+                       "" if last is None else f"resuming {source} at {offset_s:.1f} s (segment {len(segments) + 1})")
+    if start_frame >= frames - int(samplerate):
+        plan = dataclasses.replace(plan, done=f"{db} already holds {source} to its end; nothing to add "
+                                              f"(tickscope report {db})")
+    return plan
+
+
+def plan_device_segment(segments, device: str, *, channel: int | None, now_wall_s: float, db: str) -> SegmentPlan:
+    """A device log: a new log, or the log resumed as a segment joined by the wall clock."""
+    from .errors import ParameterError
+
+    last = segments[-1] if segments else None
+    if last is not None and last.source_kind != "device":
+        raise ParameterError(f"{db} logs the recording {last.source}; log a device into a new database")
+    if last is None:
+        return SegmentPlan("device", device, "first", 0.0, channel=channel or 0)
+    pause = now_wall_s - (last.ended_wall or last.started_wall + last.duration_s)
+    return SegmentPlan("device", device, "wall", now_wall_s - segments[0].started_wall, channel=channel or 0,
+                       note=f"resuming the log as segment {len(segments) + 1} after {pause:.0f} s")

@@ -104,11 +104,156 @@ class RingDownStats:
 
 
 @dataclass(frozen=True)
+class StepArrays:
+    """The analyzer's record of a stream so far, as read-only arrays (views; one row per event).
+
+    Steps: grid number ``k``, time ``t_s``, polarity (0 = A, 1 = B), match, decay time, SNR,
+    peak level and flag bits.  Beside them: missed, failed and correction slots, the step-like
+    later sounds of a slot (``sec_k``, ``sec_delay_s``: bursts) and every sound that is not a step
+    (``other_t_s``, ``other_peak_dbfs``: later impacts and rejected sounds).
+    """
+
+    k: np.ndarray
+    t_s: np.ndarray
+    pol: np.ndarray
+    match: np.ndarray
+    decay_ms: np.ndarray
+    snr_db: np.ndarray
+    peak_dbfs: np.ndarray
+    flags: np.ndarray
+    missed_k: np.ndarray
+    missed_t_s: np.ndarray
+    failed_k: np.ndarray
+    failed_t_s: np.ndarray
+    correction_k: np.ndarray
+    sec_k: np.ndarray
+    sec_delay_s: np.ndarray
+    other_t_s: np.ndarray
+    other_peak_dbfs: np.ndarray
+
+
+@dataclass(frozen=True)
+class Inhibition:
+    """Logic regulation found in the step times: once per period one interval is longer."""
+
+    period_s: float
+    period_steps: int
+    correction_us: float
+    correction_ci95_us: float
+    pulses_32768: float
+    pulses_8192: float
+    crystal_rate_s_per_day: float
+    regulated_rate_s_per_day: float
+    regulated_ci95_s_per_day: float
+    periods_observed: int
+    z_score: float
+    phase_step: int  # step number (mod period) whose interval carries the correction
+
+
+@dataclass(frozen=True)
+class Bursts:
+    """End-of-life stepping: steps in groups."""
+
+    steps_per_burst: int
+    burst_period_s: float
+    spacing_ms: float
+
+
+@dataclass(frozen=True)
+class DriveLevel:
+    level_dbfs: float
+    share: float
+    steps: int
+
+
+@dataclass(frozen=True)
+class PositionLock:
+    """Anomalies repeating at the same step of a wheel's turn."""
+
+    period_steps: int
+    positions: list[int]
+    count: int
+
+
+@dataclass(frozen=True)
+class OtherClock:
+    """Another clock ticking in the recording, on a grid of its own."""
+
+    interval_s: float  # its own tick interval, on the recording's time base
+    ticks: int  # sounds that lie on its grid
+    level_db: float  # median level of its ticks minus that of the steps
+    drift_ms_per_min: float  # how fast its ticks move against the steps
+    rate_s_per_day: float = float("nan")  # on the same time base as the movement's rate
+
+
+@dataclass(frozen=True)
+class FailedSteps:
+    """Steps where the rotor only twitched, and what they cost."""
+
+    count: int
+    times_s: tuple[float, ...]
+    correction_pulses: int  # failures recovered by a correction pulse
+    steps_lost: int  # 2 per uncorrected failure whose next slot was missed too, else 1
+    seconds_lost: float
+    seconds_lost_per_day: float
+
+
+@dataclass(frozen=True)
+class PolarityAsymmetry:
+    """Mean A->B interval minus mean B->A interval."""
+
+    value_us: float
+    ci95_us: float
+    uneven: bool  # beyond what the templates' alignment can leave
+    ringdown_diff_ms: float | None  # B's median ring-down minus A's
+
+
+@dataclass(frozen=True)
+class Diagnosis:
+    """The quartz diagnostics of a stepping recording (see :mod:`tickscope.core.diagnose`)."""
+
+    rate: RateEstimate  # as reported: over whole regulation periods, or widened for an unseen one
+    rate_provisional: bool
+    rate_ci95_statistical_s_per_day: float  # the fit's own half-width
+    record_more_s: float  # audio still needed for two whole regulation periods (0 when enough)
+    inhibition: Inhibition | None
+    bursts: Bursts | None
+    steps_in_bursts: int | None
+    other_clock: OtherClock | None
+    failed: FailedSteps
+    drive_levels: tuple[DriveLevel, ...]  # two or more, else empty
+    drive_level_changes: int
+    position_locked: PositionLock | None
+    asymmetry: PolarityAsymmetry | None
+
+
+@dataclass(frozen=True)
+class BeatStats:
+    """A regular beat that is not a stepping motor's: how it was heard."""
+
+    heard: int  # grid slots holding a sound
+    like_first: int  # of those, how many matched the sound of the first beats
+    scatter_ms: float | None  # SD of each beat's first sound about the grid (each polarity's mean removed)
+    alternation_ms: float | None  # mean A->B minus B->A interval (an escapement's tick and tock)
+
+
+@dataclass(frozen=True)
+class CaptureInfo:
+    """How a live capture went."""
+
+    device: str
+    overflows: int
+    dropped_frames: int
+    wall_seconds: float
+    ended: str
+
+
+@dataclass(frozen=True)
 class Summary:
     """Everything an analysis found (the source of every report)."""
 
     duration_s: float
-    sample_rate_hz: float
+    samplerate: float
     channel: int
     step_interval_s: float | None
     measured_interval_s: float | None
@@ -129,4 +274,18 @@ class Summary:
     warnings: list[str] = field(default_factory=list)
     residuals_us: np.ndarray | None = None  # per accepted step, for charts
     residual_times_s: np.ndarray | None = None
-    extras: dict = field(default_factory=dict)
+    diagnosis: Diagnosis | None = None  # stepping recordings only
+    reading: tuple[str, ...] = ()  # the repairer's reading: plain-words statements from the diagnosis
+    beats: BeatStats | None = None  # only when the sound is not a stepping motor's
+    sound_reason: str | None = None  # why the sound is not taken for steps
+    alternation_us: float | None = None  # mean A->B minus B->A interval over all steps
+    coherence: float = float("nan")  # how well the first impacts lined up on the grid (0..1)
+    # set by the command that made the summary
+    clock_calibrated: bool = False
+    time_base: str | None = None
+    capture: CaptureInfo | None = None
+
+    @property
+    def rate_ci95_statistical_s_per_day(self) -> float | None:
+        """The rate fit's own half-width (without an unseen regulation's term), when diagnosed."""
+        return None if self.diagnosis is None else self.diagnosis.rate_ci95_statistical_s_per_day

@@ -22,6 +22,7 @@ import numpy as np
 
 from . import dsp
 from ..errors import ParameterError
+from ..units import s_per_day_to_ppm
 
 
 @dataclass(frozen=True)
@@ -123,3 +124,15 @@ def fit_device_clock(start_sample: np.ndarray, host_time_s: np.ndarray, samplera
     delay = h - A @ coef
     return ClockFit(ppm=float(ppm), ci95_ppm=float(ci), span_s=span, n_blocks=int(len(x)), n_used=int(len(pick)),
                     delay_rms_ms=float(np.sqrt(np.mean((delay - delay.min()) ** 2)) * 1e3), steps=steps)
+
+
+def ppm_from_reference(known_s_per_day: float, known_u95_s_per_day: float, measured_s_per_day: float,
+                       measured_u95_s_per_day: float) -> tuple[float, float]:
+    """The device clock's offset (ppm, 95 % half-width) from a movement of known rate timed on it.
+
+    A device fast by X ppm makes a movement read slow by X ppm: X = (known - measured) in ppm.
+    The two uncertainties are independent and add in quadrature.
+    """
+    ppm = s_per_day_to_ppm(known_s_per_day - measured_s_per_day)
+    u95 = s_per_day_to_ppm(math.hypot(known_u95_s_per_day, measured_u95_s_per_day))
+    return ppm, u95

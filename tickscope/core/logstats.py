@@ -30,8 +30,8 @@ import numpy as np
 
 from . import stability as stab
 from .dsp import line_fit
-from .diagnose import LONGEST_KNOWN_PERIOD_S, UNSEEN_CORRECTION_S
-from .rate import fit_rate as _fit_rate, level_shifts, stretch_weights
+from .rate import fit_rate, level_shifts, stretch_weights
+from .regulation import unseen_correction_ci95_s_per_day
 from ..model import FLAG_BITS, KIND_CODES
 from ..units import SECONDS_PER_DAY
 
@@ -80,17 +80,12 @@ class LogFigures:
     event_pol: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))  # 0 A, 1 B, -1 none
 
 
-def fit_rate(k, t, nominal, **kw):
-    """``core.rate.fit_rate``, with the interval widened while under two regulation periods.
-
-    As ``analyze`` does: a logic-regulated movement corrects once every 60 or 120 s, so a stretch
-    shorter than 4 minutes may not yet hold a correction (up to 2.4 ms).
-    """
-    r = _fit_rate(k, t, nominal, **kw)
-    if r.span_s < 2 * LONGEST_KNOWN_PERIOD_S:
-        ci = math.hypot(r.ci95_s_per_day, SECONDS_PER_DAY * UNSEEN_CORRECTION_S / max(r.span_s, 1.0))
-        r = dataclasses.replace(r, ci95_s_per_day=ci)
-    return r
+def _rate_allowing_unseen(k, t, nominal, **kw):
+    """:func:`~tickscope.core.rate.fit_rate`, with the interval widened while under two regulation
+    periods, as ``analyze`` does: a stretch shorter than 4 minutes may not yet hold a logic-regulation
+    correction (see :func:`~tickscope.core.regulation.unseen_correction_ci95_s_per_day`)."""
+    r = fit_rate(k, t, nominal, **kw)
+    return dataclasses.replace(r, ci95_s_per_day=unseen_correction_ci95_s_per_day(r.ci95_s_per_day, r.span_s))
 
 
 def _timeline(s, t, override_ppm: float | None):
@@ -249,7 +244,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
                 notes.append(f"the audio went through a lossy codec, which shifted the step times abruptly "
                              f"{int(shifts.max())} time{'s' if shifts.max() > 1 else ''}: the overall rate is "
                              "fitted within the stretches between shifts")
-        rate = fit_rate(K[good], T[good], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
+        rate = _rate_allowing_unseen(K[good], T[good], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
                         groups=groups, weights=weights)
     # timeline spans: segments and gaps between them
     spans = []
@@ -279,7 +274,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         gh = good & in_h
         r = None
         if gh.sum() >= 6 and np.ptp(K[gh]) >= 5:
-            r = fit_rate(K[gh], T[gh], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
+            r = _rate_allowing_unseen(K[gh], T[gh], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
                          groups=G[gh])
         covered = sum(max(0.0, min(b, (h + 1) * 3600) - max(a, h * 3600)) for a, b, _ in spans)
         hourly.append({"hour": h, "start_s": h * 3600.0, "covered_s": round(covered, 3),
@@ -509,7 +504,7 @@ def _best_stretch(spans, gaps, anomalies_t, K, T, G, good, nominal, u95, calibra
     sel = good & (T > a) & (T < b)
     r = None
     if sel.sum() >= 6 and np.ptp(K[sel]) >= 5:
-        r = fit_rate(K[sel], T[sel], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0, groups=G[sel])
+        r = _rate_allowing_unseen(K[sel], T[sel], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0, groups=G[sel])
     return {"start_s": a, "end_s": b, "duration_s": b - a,
             "rate_s_per_day": None if r is None else r.rate_s_per_day,
             "rate_ci95_s_per_day": None if r is None else r.ci95_s_per_day}

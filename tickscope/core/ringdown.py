@@ -16,8 +16,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..model import RingDownStats
 from ..units import DB_PER_NEPER
 from . import kernels
+from .dsp import RollingWindow
 
 
 @dataclass(frozen=True)
@@ -125,3 +127,44 @@ def _measure_ringdown_numpy(x: np.ndarray, samplerate: float, *, noise_power: fl
     resid = y - float(np.mean(y)) - (slope / samplerate) * c
     rms = float(np.sqrt(np.dot(resid, resid) / nfit))
     return RingDown(float(-DB_PER_NEPER / slope * 1e3), float(y[0] - y[-1]), rms)
+
+
+class AbnormalJudge:
+    """Flags a step whose ring-down departs from its polarity's recent steps.
+
+    Each polarity keeps the log decay times of its last 200 steps; once 20 are in, a step
+    more than max(5 MAD, a factor 1.5) from their median is abnormal.  A ``bent`` step (its
+    decay curve bends away from one exponential: the room's tail or noise) is never judged
+    (its decay time still joins the history).
+    """
+
+    def __init__(self, history: int = 200, min_steps: int = 20):
+        self._decays = {0: RollingWindow(history), 1: RollingWindow(history)}
+        self.min_steps = min_steps
+
+    def judge(self, polarity: int, decay_ms: float, *, bent: bool) -> bool:
+        """True when the step is abnormal; the step is then (or otherwise) added to the history."""
+        if not (math.isfinite(decay_ms) and decay_ms > 0):
+            return False
+        dq = self._decays[polarity]
+        ld = math.log(decay_ms)
+        abnormal = False
+        if len(dq) >= self.min_steps and not bent:
+            med = dq.median()
+            mad = 1.4826 * dq.median_abs_deviation(med)
+            abnormal = abs(ld - med) > max(5 * mad, math.log(1.5))
+        dq.append(ld)
+        return abnormal
+
+
+def ringdown_stats(pol: np.ndarray, decay_ms: np.ndarray, abnormal: np.ndarray, bent: np.ndarray) -> dict:
+    """Per polarity ('A', 'B'): :class:`~tickscope.model.RingDownStats` of the measured decay times."""
+    out = {}
+    for p, name in ((0, "A"), (1, "B")):
+        sel = (pol == p) & np.isfinite(decay_ms)
+        d = decay_ms[sel].astype(np.float64)
+        if len(d):
+            q1, med, q3 = np.percentile(d, [25, 50, 75])
+            out[name] = RingDownStats(name, len(d), float(med), float(q3 - q1), int(np.count_nonzero(abnormal[sel])),
+                                      int(np.count_nonzero(bent[sel])))
+    return out

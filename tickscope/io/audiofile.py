@@ -329,3 +329,25 @@ class LiveRecorder:
             self._f.close()
         finally:
             self._csv.close()
+
+
+def read_block_readings(path: str) -> tuple[list[tuple[float, float]], int | None]:
+    """The (start sample, host time) rows of a capture's PATH.blocks.csv (written by
+    :class:`LiveRecorder`), and the sample rate of its audio file when that lies beside it."""
+    import csv
+
+    rows = []
+    try:
+        with open(path) as f:
+            for r in csv.DictReader(f):
+                rows.append((float(r["start_sample"]), float(r["host_time_s"])))
+    except (OSError, KeyError, ValueError, TypeError) as e:
+        raise ParameterError(f"{path}: not a tickscope blocks file ({e})") from e
+    audio = path[: -len(".blocks.csv")] if path.endswith(".blocks.csv") else None
+    rate = None
+    if audio and os.path.exists(audio):
+        try:
+            rate = int(sf.info(audio).samplerate)
+        except (sf.LibsndfileError, RuntimeError) as e:
+            raise InputError(f"{audio}: {_short(e)}") from e
+    return rows, rate

@@ -193,3 +193,27 @@ class Capture:
                 continue
             last = self._clock()
             yield item
+
+
+def clock_readings(device: int | None, samplerate: int, seconds: float, *, latency: float | str = "high",
+                   progress=None, clock=time.monotonic) -> tuple[list[tuple[float, float]], bool]:
+    """Capture for ``seconds`` and return each block's (first sample index, host monotonic time).
+
+    No sound is needed: only when the blocks arrive matters (the method of ``calibrate``).
+    ``progress(elapsed_s)`` is called after every block.  Ctrl-C ends the capture early and
+    returns what was read, with True for "interrupted" (KeyboardInterrupt is not raised).
+    """
+    rows: list[tuple[float, float]] = []
+    t0 = clock()
+    try:
+        with Capture(device, samplerate, latency=latency, clock=clock) as cap:
+            for b in cap.blocks():
+                rows.append((float(b.start_sample), float(b.host_time_s)))
+                el = clock() - t0
+                if progress is not None:
+                    progress(min(el, seconds))
+                if el >= seconds:
+                    break
+    except KeyboardInterrupt:
+        return rows, True
+    return rows, False

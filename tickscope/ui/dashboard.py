@@ -117,13 +117,13 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
                 mode: str = "listening") -> RenderableType:
     """The live screen; ``extra`` rows (the log's hourly rates) go under the counts."""
     parts: list[RenderableType] = []
-    ex = s.extras
+    dg = s.diagnosis
     r = s.rate
     head = Text()
     if r is not None:
         head.append(rate_words(r.rate_s_per_day), style="bold")
         head.append(f"   ± {r.ci95_s_per_day:.3f} s/day (95 %)")
-        if ex.get("rate_provisional"):
+        if dg is not None and dg.rate_provisional:
             head.append("   provisional", style="yellow")
         parts.append(head)
         parts.append(interval_ruler(r.rate_s_per_day, r.ci95_s_per_day, width))
@@ -134,18 +134,18 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
         head.append("listening for steps…" if s.steps_detected < 3 else "finding the step grid…", style="bold")
         parts.append(head)
     counts = Text()
-    beats = ex.get("beats")
+    beats = s.beats
     if s.sound == "not-stepping" and beats:
         # beats of another kind of sound: nothing to miss or fail (as in the report)
-        counts.append(f"beats {beats['heard']}", style="bold")
-        counts.append(f" · {beats['like_first']} like the first")
-        if beats.get("scatter_ms") is not None:
-            counts.append(f" · scatter {beats['scatter_ms']:.1f} ms")
+        counts.append(f"beats {beats.heard}", style="bold")
+        counts.append(f" · {beats.like_first} like the first")
+        if beats.scatter_ms is not None:
+            counts.append(f" · scatter {beats.scatter_ms:.1f} ms")
     else:
         counts.append(f"steps {s.steps_detected}", style="bold")
         counts.append(f" · missed {s.missed_steps}", style="red" if s.missed_steps else "")
-    if ex.get("failed_steps"):
-        counts.append(f" · failed {ex['failed_steps']}", style="red")
+    if dg is not None and dg.failed.count:
+        counts.append(f" · failed {dg.failed.count}", style="red")
     counts.append(f" · other sounds {s.rejected_events}")
     counts.append(f" · gaps {st.overflows}", style="red" if st.overflows else "")
     if r is not None:
@@ -169,13 +169,13 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
     for p in ("A", "B"):
         if p in s.ringdown:
             mv.append(f"ring-down {p} {s.ringdown[p].decay_ms_median:.2f} ms  ")
-    inh = ex.get("inhibition")
+    inh = dg.inhibition if dg is not None else None
     if inh:
-        mv.append(f"· regulation {inh['correction_us']:.0f} µs every {inh['period_s']:g} s  ")
+        mv.append(f"· regulation {inh.correction_us:.0f} µs every {inh.period_s:g} s  ")
     elif r is not None:
         mv.append("· regulation: none heard yet  ", style="dim")
-    if ex.get("pattern") == "burst":
-        mv.append(f"· bursts of {ex['steps_per_burst']}: cell at end of life", style="red")
+    if dg is not None and dg.bursts:
+        mv.append(f"· bursts of {dg.bursts.steps_per_burst}: cell at end of life", style="red")
     if len(mv):
         parts.append(mv)
     for w in s.warnings[:3 if width < 100 else 6]:

@@ -101,35 +101,24 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
     if r is not None:
         tab.add_row("rate", f"{r.rate_s_per_day:+.4f} s/day", f"95 % ± {r.ci95_s_per_day:.4f}; "
                     f"{r.rate_s_per_day / 0.0864:+.3f} ppm; line fit, residual corr {r.residual_correlation:+.2f}")
-        tb = s.extras.get("time_base") or (f"clock corrected by {r.clock_correction_ppm:+.3f} ppm"
-                                           if s.extras.get("clock_calibrated") else "device clock, uncalibrated")
-        tab.add_row("time base", f"{r.clock_correction_ppm:+.2f} ppm" if s.extras.get("clock_calibrated") else "", tb)
+        tb = s.time_base or (f"clock corrected by {r.clock_correction_ppm:+.3f} ppm"
+                             if s.clock_calibrated else "device clock, uncalibrated")
+        tab.add_row("time base", f"{r.clock_correction_ppm:+.2f} ppm" if s.clock_calibrated else "", tb)
         tab.add_row("step interval", f"{s.step_interval_s:g} s", f"measured {s.measured_interval_s:.9f} s")
         tab.add_row("timing jitter", f"{r.jitter_us:.2f} µs", "RMS residual from the fitted line")
         tab.add_row("polarity offset", f"{r.polarity_offset_us:+.2f} µs", "B steps relative to A steps")
-    ex = s.extras
-    inh = ex.get("inhibition")
-    if inh:
-        tab.add_row("logic regulation", f"{inh['correction_us']:.1f} µs", f"every {inh['period_s']:g} s "
-                    f"(≈ {inh['pulses_32768']:.1f} pulses of 32768 Hz); crystal alone {inh['crystal_rate_s_per_day']:+.3f} s/day")
-    elif r is not None and "inhibition" in ex:
-        tab.add_row("logic regulation", "none heard", "provisional: record 4 min" if ex.get("rate_provisional") else "")
-    if ex.get("pattern") == "burst":
-        tab.add_row("stepping", "bursts", f"{ex['steps_per_burst']} steps every {ex['burst_period_s']:g} s: cell at end of life")
-    if ex.get("failed_steps"):
-        tab.add_row("failed steps", str(ex["failed_steps"]), f"{ex['correction_pulses']} corrected; {ex['seconds_lost']:g} s lost")
-    if "polarity_asymmetry_us" in ex:
-        tab.add_row("A→B − B→A", f"{ex['polarity_asymmetry_us']:+.1f} µs", f"± {ex['polarity_asymmetry_ci95_us']:.1f} (95 %)")
-    if s.sound == "not-stepping":
+    dg = s.diagnosis
+    if dg is not None:
+        _diagnosis_rows(tab, dg)
+    if s.sound == "not-stepping" and s.beats is not None:
         # beats on a grid of their own: no steps to miss, nothing to diagnose
-        b = ex.get("beats") or {}
-        tab.add_row("beats heard", f"{b.get('heard', s.steps_detected)}",
-                    f"every {_fmt(s.measured_interval_s, '.4f', ' s')} on average; "
-                    f"{b.get('like_first', '?')} sound like the first ones")
-        if b.get("scatter_ms") is not None:
-            tab.add_row("beat scatter", f"{b['scatter_ms']:.1f} ms", "SD of each beat's first sound about the grid")
-        if b.get("alternation_ms") is not None:
-            tab.add_row("tick − tock", f"{b['alternation_ms']:+.2f} ms", "mean A→B interval minus mean B→A")
+        b = s.beats
+        tab.add_row("beats heard", f"{b.heard}", f"every {_fmt(s.measured_interval_s, '.4f', ' s')} on average; "
+                    f"{b.like_first} sound like the first ones")
+        if b.scatter_ms is not None:
+            tab.add_row("beat scatter", f"{b.scatter_ms:.1f} ms", "SD of each beat's first sound about the grid")
+        if b.alternation_ms is not None:
+            tab.add_row("tick − tock", f"{b.alternation_ms:+.2f} ms", "mean A→B interval minus mean B→A")
     else:
         tab.add_row("steps heard", f"{s.steps_detected}", f"{r.n_outliers} outliers left out of the fit" if r else "")
         miss = ", ".join(f"{t:.1f}" for t in s.missed_step_times_s[:6]) + (" …" if s.missed_steps > 6 else "")
@@ -157,11 +146,11 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
                        str(v.n), str(v.n_abnormal), str(v.n_bent))
         parts.append(Text("ring-down (amplitude e-folding time)", style="bold"))
         parts.append(rt)
-    if s.extras.get("diagnosis"):
+    if s.reading:
         parts.append(Text("the repairer's reading", style="bold"))
-        for line in s.extras["diagnosis"]:
+        for line in s.reading:
             parts.append(Text("  • " + line))
-        if any(w in " ".join(s.extras["diagnosis"]) for w in ("cell", "margin", "tooth")):
+        if any(w in " ".join(s.reading) for w in ("cell", "margin", "tooth")):
             parts.append(Text("  Before opening the case or changing the cell: keep button cells away from children, "
                               "expect to re-test a water-resistant case, unplug mains clocks, work antistatic.",
                               style="dim"))
@@ -170,5 +159,23 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
         for w in s.warnings:
             parts.append(Text("  ! " + w, style="yellow"))
     title = f"tickscope · {source}" if source else "tickscope"
-    sub = f"{s.duration_s:.1f} s · {s.sample_rate_hz:g} Hz · channel {s.channel}"
+    sub = f"{s.duration_s:.1f} s · {s.samplerate:g} Hz · channel {s.channel}"
     return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.HEAVY_HEAD, width=min(width, 120))
+
+
+def _diagnosis_rows(tab, dg) -> None:
+    """The quartz diagnostics' rows of the readings table."""
+    inh = dg.inhibition
+    if inh:
+        tab.add_row("logic regulation", f"{inh.correction_us:.1f} µs", f"every {inh.period_s:g} s "
+                    f"(≈ {inh.pulses_32768:.1f} pulses of 32768 Hz); crystal alone {inh.crystal_rate_s_per_day:+.3f} s/day")
+    else:
+        tab.add_row("logic regulation", "none heard", "provisional: record 4 min" if dg.rate_provisional else "")
+    if dg.bursts:
+        tab.add_row("stepping", "bursts", f"{dg.bursts.steps_per_burst} steps every {dg.bursts.burst_period_s:g} s: "
+                    "cell at end of life")
+    if dg.failed.count:
+        tab.add_row("failed steps", str(dg.failed.count), f"{dg.failed.correction_pulses} corrected; "
+                    f"{round(dg.failed.seconds_lost, 3):g} s lost")
+    if dg.asymmetry is not None:
+        tab.add_row("A→B − B→A", f"{dg.asymmetry.value_us:+.1f} µs", f"± {dg.asymmetry.ci95_us:.1f} (95 %)")

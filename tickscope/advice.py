@@ -1,0 +1,190 @@
+"""Plain words: every sentence tickscope says about a recording, built from its figures.
+
+The analysis (:mod:`tickscope.core`, :mod:`tickscope.pipeline`) computes numbers and verdicts;
+this module turns them into the notes, the repairer's reading and the reasons a sound is not
+measured.  It is the one place that may name a command-line option, so the core stays usable
+without the CLI.  Pure: figures in, strings out.
+"""
+from __future__ import annotations
+
+from .units import ppm_to_s_per_day
+
+#: Typical error of an uncalibrated consumer audio clock (common practice; sound-card
+#: oscillators are often quoted at +-100 ppm, shared/domain.md section 4.1).
+TYPICAL_DEVICE_PPM = 50.0
+
+UNCALIBRATED_TIME_BASE = (f"device clock, uncalibrated (typical ±{TYPICAL_DEVICE_PPM:.0f} ppm ≈ "
+                          f"±{ppm_to_s_per_day(TYPICAL_DEVICE_PPM):.1f} s/day)")
+
+_PROFILE_METHODS = {"host-clock": "against the host clock", "reference": "against a reference recording",
+                    "saved-capture": "against the host clock (saved capture)"}
+
+
+def profile_time_base(profile, *, auto: bool, stale_days: float) -> str:
+    """The time base of a rate corrected by a saved clock profile."""
+    stale = " — STALE, recalibrate" if profile.age_days() > stale_days else ""
+    how = _PROFILE_METHODS.get(profile.method, profile.method)
+    return (f"calibrated {how} on {profile.created[:10]} ({profile.ppm:+.2f} ± {profile.u95_ppm:.2f} ppm, "
+            f"profile {profile.name}{', used by default for this device' if auto else ''}){stale}")
+
+
+def nonfinite_note(n: int) -> str:
+    return f"{n} samples of the file are not numbers (NaN or infinite: a damaged float file) and were read as silence"
+
+
+def cut_short_note(analyzed_s: float, header_s: float) -> str:
+    return (f"the file ends at {analyzed_s:.1f} s though its header says {header_s:.1f} s (cut short or damaged): "
+            "analyzed what it holds")
+
+
+# -- the kind of sound -----------------------------------------------------------------------------
+#: Below this length (s), finding no step pattern is put down to the length first.
+SHORT_FOR_PATTERN_S = 8.0
+
+
+def sound_reason(kind: str, cause: str, *, duration_s: float, beat_interval_s: float | None,
+                 alternation_us: float | None, slots_heard: int, slots_matched: int,
+                 scatter_s: float | None) -> str | None:
+    """Why the sound is not taken for steps (None when it is)."""
+    if kind == "none":
+        if duration_s < SHORT_FOR_PATTERN_S:
+            return (f"the recording is only {duration_s:.1f} s long, too short to find a stepping pattern "
+                    "(it takes several steps in a row): record at least 30 s")
+        return ("no stepping-motor pattern was heard: move the microphone onto the case or closer "
+                "to the movement, quiet the room, and record at least 30 s")
+    if kind != "not-stepping":
+        return None
+    if cause == "unlike":
+        how = (f"; only {slots_matched} of {slots_heard} beats sound like the first ones"
+               + ("" if scatter_s is None else f", and they scatter by {scatter_s * 1000:.1f} ms (SD) about the grid"))
+    else:
+        how = "" if alternation_us is None else f", alternate beats differ by {alternation_us / 1000:.2f} ms"
+    return (f"the sound is not a quartz stepping-motor pattern (beat interval heard {beat_interval_s:.4f} s{how}): "
+            "no rate is claimed for it")
+
+
+# -- notes on a summary ----------------------------------------------------------------------------
+def notes(s, *, calibrated: bool, codec_shifts: tuple[int, float] | None, trailing_silence_slots: int,
+          gaps: list[tuple[float, float]]) -> list[str]:
+    """The plain-words notes of a summary, those that put the rate itself in doubt first.
+
+    ``s`` is the :class:`~tickscope.model.Summary` being built (its warnings not yet set).
+    """
+    out: list[str] = []
+    if s.sound_reason:
+        out.append(s.sound_reason)
+    out += _ringdown_notes(s.ringdown)
+    rate, dg = s.rate, s.diagnosis
+    if not calibrated and rate is not None:
+        out.append(f"the rate is on the audio device's own, uncalibrated time base; such clocks are "
+                   f"commonly off by tens of ppm (+-{TYPICAL_DEVICE_PPM:.0f} ppm = "
+                   f"+-{ppm_to_s_per_day(TYPICAL_DEVICE_PPM):.1f} s/day): calibrate and pass --clock-ppm")
+    if rate is not None and codec_shifts is not None and not (dg and dg.inhibition):
+        n, largest_us = codec_shifts
+        out.append(f"the lossy codec shifted the step times abruptly {n} time{'s' if n > 1 else ''} (by up to "
+                   f"{largest_us:.0f} us): the rate is fitted within the stretches between shifts; a lossless "
+                   "recording (WAV, FLAC) avoids this")
+    if rate is not None and (rate.span_s < 20 or rate.n_steps < 10):
+        out.append(f"the recording is short ({rate.span_s:.0f} s of steps): record at least a minute "
+                   "for a useful rate, ten for a precise one")
+    n = s.steps_detected
+    if n and s.step_snr_db < 12:
+        out.append(f"steps are weak (median {s.step_snr_db:.0f} dB above the noise): put the microphone on the case "
+                   "or closer to the movement and quiet the room")
+    if n and s.clipped_steps > 0.05 * n:
+        out.append(f"{s.clipped_steps} steps clip the input: lower the input gain or move the microphone back")
+    if s.hum_hz:
+        out.append(f"mains hum at {s.hum_hz:.0f} Hz ({s.hum_db:+.0f} dB over the noise floor) was heard and ignored; "
+                   "keep the microphone cable away from mains leads")
+    if s.rejected_events > max(5, 0.1 * max(n, 1)):
+        out.append(f"{s.rejected_events} sounds off the step grid (knocks, voices, another clock) were ignored")
+    if abs(s.dc_offset) > 0.05:
+        out.append(f"the recording has a DC offset of {s.dc_offset:+.3f} full scale (removed before analysis)")
+    if dg is not None:
+        first, later = _diagnosis_notes(dg)
+        out = first + out + later
+    if trailing_silence_slots:
+        out.append(f"the steps stopped {trailing_silence_slots} slots before the end (not counted as missed)")
+    if gaps:
+        out.append(f"{len(gaps)} gaps in the audio ({sum(b - a for a, b in gaps):.2f} s lost); "
+                   "steps there are not counted as missed")
+    return out
+
+
+def _ringdown_notes(ringdown: dict) -> list[str]:
+    out = []
+    for v in ringdown.values():
+        # a decay that bends on many steps and varies widely from step to step: the room, not the motor
+        if v.n >= 8 and v.n_bent > v.n / 3 and v.decay_ms_iqr > 0.5 * v.decay_ms_median:
+            out.append(f"the ring-down of polarity {v.polarity} bends away from one exponential on {v.n_bent} of "
+                       f"{v.n} steps and varies widely (median {v.decay_ms_median:.1f} ms, IQR "
+                       f"{v.decay_ms_iqr:.1f} ms): the room's reverberation or noise shapes it as much as the "
+                       "movement does, so these decay times describe the recording more than the motor; for "
+                       "ring-down figures put the microphone on the case in a quiet room")
+    return out
+
+
+#: Another clock this loud against the steps (dB) or louder puts the steps timed in doubt.
+LOUD_OTHER_CLOCK_DB = -6.0
+
+
+def _diagnosis_notes(dg) -> tuple[list[str], list[str]]:
+    """Notes from the diagnosis: (those that put the rate in doubt, the others)."""
+    first, later = [], []
+    if dg.rate_provisional:
+        later.append(f"the rate is provisional: logic-regulated movements correct once every 60 or 120 s, "
+                     f"so record {dg.record_more_s:.0f} s more (4 minutes in all) to see whole correction periods")
+    b = dg.bursts
+    if b:
+        later.append(f"end-of-life stepping: {b.steps_per_burst} steps every {b.burst_period_s:g} s — "
+                     "replace the cell (keep button cells away from children)")
+    oc = dg.other_clock
+    if oc is not None:
+        if oc.level_db >= LOUD_OTHER_CLOCK_DB:
+            first.append(
+                f"another clock ticks in the recording nearly as loud as the steps ({oc.level_db:+.1f} dB): it runs at "
+                f"{oc.rate_s_per_day:+.1f} s/day on the same time base and drifts {oc.drift_ms_per_min:+.1f} ms a minute "
+                "against the steps timed here; make sure these are the movement's (move the microphone onto it, "
+                "or stop the other clock: a phone's gain control can make two clocks sound alike)")
+        else:
+            later.append(f"another clock ticks in the background ({oc.level_db:.0f} dB below the steps, "
+                         f"{oc.rate_s_per_day:+.1f} s/day): its ticks were left out")
+    if dg.failed.correction_pulses:
+        later.append(f"{dg.failed.correction_pulses} correction pulses: the movement is working at its margin")
+    return first, later
+
+
+# -- the repairer's reading ------------------------------------------------------------------------
+def reading(dg) -> tuple[str, ...]:
+    """Plain-words statements, each built from a figure of the diagnosis."""
+    out = []
+    inh = dg.inhibition
+    if inh is not None:
+        out.append(f"logic regulation: every {inh.period_s:g} s one step comes {inh.correction_us:.1f} µs late "
+                   f"(≈ {inh.pulses_32768:.1f} pulses of 32768 Hz); the crystal alone "
+                   f"{'gains' if inh.crystal_rate_s_per_day >= 0 else 'loses'} {abs(inh.crystal_rate_s_per_day):.2f} s/day, "
+                   f"regulated {inh.regulated_rate_s_per_day:+.3f} s/day over {inh.periods_observed} whole periods")
+    b = dg.bursts
+    if b:
+        out.append(f"the cell is at end of life: the circuit steps in bursts of {b.steps_per_burst} every "
+                   f"{b.burst_period_s:g} s ({b.spacing_ms:.0f} ms apart); the rate above is burst to burst")
+    f = dg.failed
+    if f.count:
+        out.append(f"the motor failed {f.count} steps ({f.correction_pulses} recovered by a correction pulse), losing "
+                   f"{f.seconds_lost:g} s — about {f.seconds_lost_per_day:.0f} s/day at this "
+                   "rate of failure: the motor works at its margin (worn or dirty train, thick oil, weak cell)")
+    if dg.drive_levels:
+        out.append(f"{len(dg.drive_levels)} drive levels heard "
+                   f"({', '.join(f'{lv.level_dbfs:.0f} dBFS' for lv in dg.drive_levels)}), "
+                   f"{dg.drive_level_changes} changes: an adaptive motor drive, not a fault by itself")
+    pl = dg.position_locked
+    if pl:
+        out.append(f"anomalies repeat at step {', '.join(map(str, pl.positions))} of every {pl.period_steps} "
+                   f"({pl.count} times, counted from the first step heard): look for a damaged tooth or a hand "
+                   "touching the dial, another hand or the glass there")
+    pa = dg.asymmetry
+    if pa is not None and pa.uneven:
+        out.append(f"the two coil polarities step unevenly (A→B minus B→A {pa.value_us:+.0f} ± {pa.ci95_us:.0f} µs): "
+                   "the rotor may sit off-centre in its detent, or one polarity drives weaker (common "
+                   "practice, no source)")
+    return tuple(out)

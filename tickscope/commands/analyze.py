@@ -1,0 +1,98 @@
+"""``tickscope analyze``: a saved recording through the pipeline, then the report, JSON, CSV or plot."""
+from __future__ import annotations
+
+import dataclasses
+import os
+
+from .. import advice
+from ..errors import NoStepsError, ParameterError
+from .common import DEMO_RECORDING, clock_from_args, console, recordings_dir, write_json
+
+
+def run(args) -> int:
+    from ..export import StepsCsv, summary_to_dict
+    from ..io.audiofile import blocks, choose_channel, probe
+    from ..pipeline import Analyzer
+
+    path = args.path
+    demo = path is None
+    if demo:
+        path = os.path.join(recordings_dir(), DEMO_RECORDING)
+    info = probe(path)
+    channel = args.channel
+    chosen_note = ""
+    if channel is None:
+        channel = choose_channel(path, info)
+        if info.channels > 1:
+            chosen_note = f"channel {channel} of {info.channels} has the clearest steps"
+    elif not 0 <= channel < info.channels:
+        raise ParameterError(f"--channel {channel}: {path} has channels 0..{info.channels - 1}")
+    clock = clock_from_args(args)
+    an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                  lossy=info.lossy)
+    csv_fh = None
+    if args.steps_csv:
+        try:
+            csv_fh = open(args.steps_csv, "w", newline="")
+        except OSError as e:
+            raise ParameterError(f"cannot write {args.steps_csv}: {e.strerror}") from e
+    try:
+        writer = StepsCsv(csv_fh) if csv_fh else None
+        tally: dict = {}
+        run_file(an, blocks(path, info, channel, tally=tally, integers=True), info, writer,
+                 show_progress=not args.json and not args.quiet)
+        summary = an.finish()
+        if writer:
+            for ev in an.drain_final_events():
+                writer.write(ev)
+    finally:
+        if csv_fh:
+            csv_fh.close()
+    notes = list(summary.warnings)
+    if summary.duration_s < info.duration_s - max(1.0, 0.01 * info.duration_s):
+        notes.append(advice.cut_short_note(summary.duration_s, info.duration_s))
+    if tally.get("nonfinite"):
+        notes.append(advice.nonfinite_note(tally["nonfinite"]))
+    if chosen_note:
+        notes.insert(0, chosen_note)
+    summary = dataclasses.replace(summary, warnings=notes, clock_calibrated=clock.ppm is not None,
+                                  time_base=clock.time_base)
+    if demo and not args.json:
+        console(stderr=True).print(f"[dim]no file given: analyzing the bundled demo recording {path}[/dim]")
+    if args.json:
+        write_json(summary_to_dict(summary, source=path))
+    else:
+        from ..ui.textreport import render_summary
+
+        con = console()
+        con.print(render_summary(summary, source=os.path.basename(path), width=con.width))
+    if args.plot:
+        from ..ui.plots import plot_analysis
+
+        plot_analysis(summary, an, args.plot, title=os.path.basename(path))
+    if summary.sound == "none" or summary.steps_detected == 0:
+        why = summary.sound_reason or (summary.warnings[-1] if summary.warnings else "no stepping pattern heard")
+        raise NoStepsError(f"no steps could be found in {path}: {why}")
+    return 0
+
+
+def run_file(an, block_iter, info, writer, *, show_progress: bool) -> None:
+    """Feed a file's blocks to the analyzer (with a progress bar for files over a minute)."""
+    def feed(update=None):
+        for b in block_iter:
+            evs = an.feed(b)
+            if writer:
+                for ev in evs:
+                    writer.write(ev)
+            if update:
+                update(b.start_sample + len(b.samples))
+
+    if show_progress and info.duration_s > 60:
+        from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+        with Progress(TextColumn("analyzing"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
+                      TimeRemainingColumn(), console=console(stderr=True), transient=True) as prog:
+            task = prog.add_task("a", total=info.frames)
+            feed(lambda done: prog.update(task, completed=done))
+    else:
+        feed()

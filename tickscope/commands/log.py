@@ -1,0 +1,210 @@
+"""``tickscope log``: a device or a replayed recording through the pipeline into the log database."""
+from __future__ import annotations
+
+import math
+import os
+import sys
+import time
+
+from .. import __version__, advice
+from ..errors import DeviceError, ParameterError, StoreError
+from .common import PeakMeter, Refit, clock_from_args, console, text, write_json
+
+
+def run(args) -> int:
+    from ..io.store import LogStore
+
+    if (args.source is None) == (args.device is None):
+        if args.source is None:
+            raise ParameterError("give a source: --device DEVICE (a microphone) or --source PATH (a recording)")
+        raise ParameterError("give either --device or --source, not both")
+    if args.hours is not None and not args.hours > 0:
+        raise ParameterError(f"--hours {args.hours}: expected > 0")
+    store = LogStore(args.db)
+    try:
+        return _run(args, store)
+    finally:
+        try:
+            store.close()
+        except StoreError:
+            pass
+
+
+def _run(args, store) -> int:
+    from ..core.detect import DetectorConfig
+    from ..io.clips import ClipKeeper
+    from ..io.profiles import host_sync_status
+    from ..logsession import HISTORY_STEPS, LogSession, check_label, plan_device_segment, plan_file_segment
+    from ..pipeline import Analyzer
+
+    segs = store.segments()
+    store.init_meta(args.label or "", __version__)
+    check_label(store, args.label, args.db)
+    now = time.time()
+    cap = info = block_iter = detector = None
+    tally: dict = {}  # samples of the source that were not numbers (read as silence)
+    if args.source is not None:
+        from ..io.audiofile import blocks, choose_channel, probe
+
+        src = os.path.abspath(args.source)
+        info = probe(src)
+        plan = plan_file_segment(segs, src, samplerate=info.samplerate, frames=info.frames, channel=args.channel,
+                                 default_channel=lambda: choose_channel(src, info), db=args.db)
+        if plan.done:
+            console(stderr=True).print(plan.done)
+            return 0
+        if not 0 <= plan.channel < info.channels:
+            raise ParameterError(f"--channel {plan.channel}: {src} has channels 0..{info.channels - 1}")
+        samplerate = info.samplerate
+        block_iter = blocks(src, info, plan.channel, start_frame=plan.start_frame, tally=tally)
+        clock = clock_from_args(args)
+    else:
+        from ..io.capture import Capture, resolve_device
+
+        plan = plan_device_segment(segs, str(args.device), channel=args.channel, now_wall_s=now, db=args.db)
+        if not 8000 <= args.rate_hz <= 192000:
+            raise ParameterError(f"--rate-hz {args.rate_hz}: expected 8000..192000")
+        dev = resolve_device(args.device)
+        samplerate = args.rate_hz
+        clock = clock_from_args(args, device_name=args.device)
+        cap = Capture(dev, samplerate, channel=plan.channel, blocksize=2048)
+        detector = DetectorConfig(chunk_s=0.25)
+    seg = store.new_segment(started_wall=now, source_kind=plan.kind, source=plan.source,
+                            source_offset_s=plan.timeline_s if plan.kind == "file" else 0.0,
+                            timeline_s=plan.timeline_s, join_kind=plan.join, sample_rate_hz=samplerate,
+                            channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                            time_base=clock.time_base, host_sync=host_sync_status() if plan.kind == "device" else None,
+                            version=__version__)
+    an = Analyzer(samplerate, channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                  detector=detector, history_steps=HISTORY_STEPS, lossy=info is not None and info.lossy)
+    clips = None
+    if args.keep_audio == "anomalies":
+        clips = ClipKeeper(samplerate, int(args.clip_budget_mb * 1e6), used_bytes=store.clip_bytes())
+    ls = LogSession(store, seg, an, timeline_s=plan.timeline_s, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                    clips=clips)
+    limit_s = args.hours * 3600.0 if args.hours else None
+    if plan.note:
+        console(stderr=True).print(plan.note)
+    err = None
+    reason = "end of source"
+    try:
+        if cap is None:
+            _log_file(ls, block_iter, info.duration_s - plan.timeline_s, limit_s,
+                      show_progress=not args.quiet and not args.json)
+            if limit_s is not None and ls.position_s >= limit_s:
+                reason = "hours reached"
+        else:
+            reason = _log_device(ls, cap, limit_s, args, len(segs) + 1, quiet=args.quiet or args.json)
+    except KeyboardInterrupt:
+        reason = "stopped by Ctrl-C"
+    except DeviceError as e:
+        reason = f"capture ended: {e}"
+        err = e
+    except StoreError:
+        store.rollback()  # a full disk: what was committed stays; nothing more can be written
+        raise
+    ls.finish(reason)
+    if tally.get("nonfinite"):
+        store.set_meta(f"segment {seg} nonfinite", str(tally["nonfinite"]))
+    _report_segment(args, ls, len(segs) + 1, plan.source, reason, clock.time_base, tally, clips)
+    if err is not None:
+        sys.stderr.write(f"tickscope: {reason}; everything up to then is kept in {args.db}\n")
+        return 2
+    return 0
+
+
+def _report_segment(args, ls, number: int, source: str, reason: str, time_base: str, tally: dict, clips) -> None:
+    """The segment's totals at its end (JSON, or a few lines and the hourly rates)."""
+    t = ls.totals
+    d = {"db": args.db, "segment": number, "source": source, "duration_s": round(ls.position_s, 3),
+         "steps": t["steps"], "missed": t["missed"], "failed": t["failed"], "rejected": t["rejected"],
+         "gaps": t["gaps"], "stopped_slots": t.get("stopped_slots", 0), "ended": reason, "time_base": time_base}
+    if tally.get("nonfinite"):
+        d["nonfinite_samples"] = tally["nonfinite"]
+    snd = ls.sound or {}
+    d["sound"] = snd.get("sound")
+    if snd.get("sound") == "not-stepping":
+        d["beat_interval_s"] = snd.get("beat_interval_s")
+    if clips is not None:
+        d["clips_kept_bytes"] = clips.used
+        d["clips_skipped"] = clips.skipped
+    if args.json:
+        write_json(d)
+        return
+    con = console()
+    if snd.get("sound") == "not-stepping":
+        con.print(f"log {args.db}: segment {number} ended ({reason}) after {ls.position_s / 3600:.2f} h of audio: "
+                  f"{snd.get('why') or 'the sound is not a quartz stepping-motor pattern'}; "
+                  "its beats are kept, but no steps, missed steps or rate are counted from them")
+    else:
+        con.print(f"log {args.db}: segment {number} ended ({reason}) after {ls.position_s / 3600:.2f} h of "
+                  f"audio: {t['steps']} steps, {t['missed']} missed, {t['failed']} failed, {t['gaps']} gaps")
+    hours = [h for h in ls.hourly() if math.isfinite(h.rate_s_per_day)]
+    if hours and snd.get("sound") != "not-stepping":
+        from ..ui.dashboard import hourly_lines
+
+        for line in hourly_lines(hours, min(con.width, 120), max_rows=12):
+            con.print(line)
+    if tally.get("nonfinite"):
+        con.print(f"[yellow]{advice.nonfinite_note(tally['nonfinite'])}[/yellow]")
+    con.print(f"[dim]see the whole log: tickscope report {args.db}[/dim]")
+
+
+def _log_file(ls, block_iter, total_s, limit_s, *, show_progress: bool) -> None:
+    def feed(update=None):
+        for b in block_iter:
+            ls.feed(b)
+            if update:
+                update(ls.position_s)
+            if limit_s is not None and ls.position_s >= limit_s:
+                break
+
+    goal = min(total_s, limit_s) if limit_s else total_s
+    if show_progress and goal > 60:
+        from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+        with Progress(TextColumn("logging"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
+                      TextColumn("{task.fields[info]}"), TimeRemainingColumn(), console=console(stderr=True),
+                      transient=True) as prog:
+            task = prog.add_task("a", total=goal, info="")
+            feed(lambda p: prog.update(task, completed=p, info=f"{ls.totals['steps']} steps, {ls.totals['missed']} missed"))
+    else:
+        feed()
+
+
+def _log_device(ls, cap, limit_s, args, number: int, *, quiet: bool) -> str:
+    live = con = None
+    meter = PeakMeter()
+    last_draw = 0.0
+    refit = Refit(lambda: ls.an.summary())
+    with cap:
+        if not quiet:
+            from rich.live import Live
+
+            con = console()
+            live = Live(console=con, refresh_per_second=4, transient=False, auto_refresh=False)
+            live.start()
+        try:
+            from ..ui.dashboard import LiveStatus, hourly_lines, render_live
+
+            for b in cap.blocks():
+                new_step = any(ev.kind == "step" for ev in ls.feed(b))
+                now = time.monotonic()
+                level = meter.update(b.samples, now)
+                if live is not None and (new_step or now - last_draw >= 0.5):
+                    st = LiveStatus(str(args.device), args.rate_hz, ls.an.channel, ls.position_s, level,
+                                    cap.overflows + (1 if cap.dropped_frames else 0), None)
+                    w = min(con.width, 160)
+                    t = ls.totals
+                    info = text(f"log {os.path.basename(args.db)} · segment {number}: {t['steps']} steps, "
+                                f"{t['missed']} missed, {t['failed']} failed · committed {ls.commits}× · "
+                                "the rate above covers the last 1-2 h", style="dim")
+                    live.update(render_live(refit.get(now), st, width=w, mode="logging",
+                                            extra=[info, *hourly_lines(ls.hourly(), w, max_rows=6)]), refresh=True)
+                    last_draw = now
+                if limit_s is not None and ls.position_s >= limit_s:
+                    return "hours reached"
+        finally:
+            if live is not None:
+                live.stop()
+    return "end of source"
