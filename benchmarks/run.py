@@ -320,7 +320,7 @@ def log_worker(db: str, hours: float) -> None:
     r = Renderer(sc)
     store = LogStore(db)
     store.init_meta("benchmark", "bench")
-    seg = store.new_segment(started_wall=time.time(), timeline_s=0.0, join_kind="first", sample_rate_hz=fs,
+    seg = store.new_segment(started_wall=time.time(), timeline_s=0.0, join_kind="first", samplerate=fs,
                             channel=0, source_kind="file", source="simulated")
     ls = LogSession(store, seg, Analyzer(fs, history_steps=HISTORY_STEPS), timeline_s=0.0)
     pos = 0
@@ -375,7 +375,7 @@ def bench_log(tmp, audio_hours: float, event_hours: float):
     db2 = os.path.join(tmp, "bench-events.db")
     store = LogStore(db2)
     store.init_meta("benchmark", "bench")
-    seg = store.new_segment(started_wall=time.time(), timeline_s=0.0, join_kind="first", sample_rate_hz=8000.0,
+    seg = store.new_segment(started_wall=time.time(), timeline_s=0.0, join_kind="first", samplerate=8000.0,
                             channel=0, source_kind="device", source="simulated")
     ls = LogSession(store, seg, None, nominal_s=1.0)
     rng = np.random.default_rng(1)

@@ -215,7 +215,7 @@ def test_sixty_hour_log_with_drift_missed_steps_and_a_gap(tmp_path):
     missed = {5_000, 100_000, 190_000}
     failed = {150_000}
     gap_k = (108_000, 109_800)  # no audio from 30 h to 30.5 h
-    common = dict(sample_rate_hz=8000.0, channel=0, clock_ppm=None, source_kind="device", source="bench mic")
+    common = dict(samplerate=8000.0, channel=0, clock_ppm=None, source_kind="device", source="bench mic")
     seg1 = store.new_segment(started_wall=1.8e9, timeline_s=0.0, join_kind="first", **common)
     ls = LogSession(store, seg1, None, nominal_s=1.0, timeline_s=0.0, commit_every_s=1e9, commit_audio_s=600)
     evs = _weekend_events(rng, 0, gap_k[0], 1.0, drift, 3e-6, 0.0, missed, failed)
@@ -280,7 +280,7 @@ def test_full_database_stops_with_a_clear_error_and_keeps_the_committed(tmp_path
     db = str(tmp_path / "full.db")
     store = LogStore(db)
     store.init_meta("", "test")
-    seg = store.new_segment(started_wall=0.0, timeline_s=0.0, join_kind="first", sample_rate_hz=8000.0, channel=0,
+    seg = store.new_segment(started_wall=0.0, timeline_s=0.0, join_kind="first", samplerate=8000.0, channel=0,
                             source_kind="file", source="x")
     store.db.execute("PRAGMA max_page_count=40")  # SQLite's own "database or disk is full" (SQLITE_FULL)
     ls = LogSession(store, seg, None, nominal_s=1.0, commit_every_s=1e9, commit_audio_s=100)
@@ -397,7 +397,7 @@ def test_report_calibrates_a_device_log_from_its_own_block_readings(tmp_path, ca
     db = str(tmp_path / "dev.db")
     store = LogStore(db)
     store.init_meta("", "test")
-    seg = store.new_segment(started_wall=1.8e9, timeline_s=0.0, join_kind="first", sample_rate_hz=48000.0,
+    seg = store.new_segment(started_wall=1.8e9, timeline_s=0.0, join_kind="first", samplerate=48000.0,
                             channel=0, source_kind="device", source="usb mic", host_sync="synchronised (NTP)")
     ppm = 40.0
     for i in range(360):
@@ -432,7 +432,7 @@ def test_polarity_names_hold_across_a_restart(tmp_path):
     rng = np.random.default_rng(5)
     store = LogStore(str(tmp_path / "restart.db"))
     store.init_meta("polarity test", "test")
-    common = dict(sample_rate_hz=8000.0, channel=0, clock_ppm=None, source_kind="device", source="bench mic")
+    common = dict(samplerate=8000.0, channel=0, clock_ppm=None, source_kind="device", source="bench mic")
 
     def events(k0, k1, t_shift):
         out = []

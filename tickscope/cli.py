@@ -32,7 +32,7 @@ def _parents() -> dict[str, argparse.ArgumentParser]:
                        "calibrate; listen and log use the profile named like --device by default)")
     device = parent()
     device.add_argument("--device", default=None, help="input device index or part of its name (default: the default input)")
-    device.add_argument("--rate-hz", type=int, default=48000, help="sample rate to ask the device for, Hz (default 48000)")
+    device.add_argument("--rate-hz", dest="samplerate", type=int, default=48000, help="sample rate to ask the device for, Hz (default 48000)")
     return {"json": json_, "quiet": quiet, "clock": clock, "device": device}
 
 

@@ -5,6 +5,7 @@ import csv
 import math
 
 from .model import KIND_CODES, Diagnosis, Event, Summary, flag_names
+from .units import s_per_day_to_ppm
 
 CSV_HEADER = ["index", "step", "time_s", "polarity", "interval_s", "peak_dbfs", "decay_ms", "flags"]
 
@@ -36,7 +37,7 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
         "secondary_impacts": s.secondary_impacts,
         "rate_s_per_day": _num(r.rate_s_per_day, 6) if r else None,
         "rate_ci95_s_per_day": _num(r.ci95_s_per_day, 6) if r else None,
-        "rate_ppm": _num(r.rate_s_per_day / 0.0864, 4) if r else None,
+        "rate_ppm": _num(s_per_day_to_ppm(r.rate_s_per_day), 4) if r else None,
         "clock_correction_ppm": _num(r.clock_correction_ppm if r else 0.0),
         "clock_calibrated": s.clock_calibrated,
         "time_base": s.time_base,
@@ -153,7 +154,7 @@ def log_to_dict(fig, *, db: str, meta: dict, segments, time_base: str, device_cl
         "db": db,
         "label": meta.get("label") or None,
         "segments": [{"id": s.id, "source": s.source, "join": s.join_kind, "timeline_s": _num(s.timeline_s, 3),
-                      "duration_s": _num(s.duration_s, 3), "sample_rate_hz": s.sample_rate_hz,
+                      "duration_s": _num(s.duration_s, 3), "sample_rate_hz": s.samplerate,
                       "clock_ppm": _num(s.clock_ppm), "ended": s.end_reason or "still logging or interrupted",
                       "version": s.version} for s in segments],
         "duration_s": _num(fig.duration_s, 3),
@@ -169,7 +170,7 @@ def log_to_dict(fig, *, db: str, meta: dict, segments, time_base: str, device_cl
         "gaps": [{"start_s": round(a, 3), "end_s": round(b, 3), "kind": k} for a, b, k in fig.gaps],
         "rate_s_per_day": _num(r.rate_s_per_day, 6) if r else None,
         "rate_ci95_s_per_day": _num(r.ci95_s_per_day, 6) if r else None,
-        "rate_ppm": _num(r.rate_s_per_day / 0.0864, 4) if r else None,
+        "rate_ppm": _num(s_per_day_to_ppm(r.rate_s_per_day), 4) if r else None,
         "timing_jitter_us": _num(r.jitter_us, 3) if r else None,
         "clock_correction_ppm": _num(fig.clock_correction_ppm),
         "clock_correction_u95_ppm": _num(fig.clock_ppm_u95),

@@ -101,7 +101,7 @@ class LogSession:
         self.timeline_s = timeline_s
         self.clock_ppm = clock_ppm
         self.clock_u95 = clock_ppm_u95
-        self.fs = float(samplerate or (analyzer.samplerate if analyzer is not None else 1.0))
+        self.samplerate = float(samplerate or (analyzer.samplerate if analyzer is not None else 1.0))
         self._nominal = nominal_s
         self.clips = clips
         self.commit_every_s = commit_every_s
@@ -137,11 +137,11 @@ class LogSession:
         an = self.an
         if block.gap_before > 0:
             g0 = an.duration_s
-            self.store.add_gap(self.seg, g0, g0 + block.gap_before / self.fs, "overflow")
+            self.store.add_gap(self.seg, g0, g0 + block.gap_before / self.samplerate, "overflow")
             self.totals["gaps"] += 1
         evs = an.feed(block)
         self.position_s = an.duration_s
-        start = int(round(an.duration_s * self.fs)) - len(block.samples)
+        start = int(round(an.duration_s * self.samplerate)) - len(block.samples)
         if self.clips is not None:
             self.clips.audio(block, start)
         if block.host_time_s is not None:
@@ -154,11 +154,11 @@ class LogSession:
 
     def _store_clips(self) -> None:
         for kind, t, a, data in self.clips.ready():
-            self.store.add_clip(self.seg, t, kind, int(round(self.fs)), a, data)
+            self.store.add_clip(self.seg, t, kind, int(round(self.samplerate)), a, data)
 
     def _block_reading(self, start: int, b: Block) -> None:
-        w = int(start / self.fs // BLOCK_WINDOW_S)
-        delay = b.host_time_s - start / self.fs
+        w = int(start / self.samplerate // BLOCK_WINDOW_S)
+        delay = b.host_time_s - start / self.samplerate
         if self._win is not None and self._win[0] != w:
             _, s0, h, wa, ad, _ = self._win
             self.store.add_block(self.seg, s0, h, wa, ad)

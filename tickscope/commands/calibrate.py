@@ -23,7 +23,7 @@ def run(args) -> int:
     if args.reference:
         ppm, u, dur, method, device, note = _from_reference(args)
     else:
-        fit, rate_hz, method, device = _from_readings(args)
+        fit, samplerate, method, device = _from_readings(args)
         ppm, u, dur = fit.ppm, fit.ci95_ppm, fit.span_s
         note = (f"{fit.n_blocks} blocks, delay scatter {fit.delay_rms_ms:.2f} ms rms"
                 + (f"; {len(fit.steps)} host clock steps removed" if fit.steps else ""))
@@ -107,8 +107,8 @@ def _from_readings(args):
     if args.from_blocks:
         from ..io.audiofile import read_block_readings
 
-        rows, rate_hz = read_block_readings(args.from_blocks)
-        rate_hz = rate_hz or args.rate_hz
+        rows, samplerate = read_block_readings(args.from_blocks)
+        samplerate = samplerate or args.samplerate
         method, device = "saved-capture", args.device or ""
     else:
         from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
@@ -121,13 +121,13 @@ def _from_readings(args):
                       TimeRemainingColumn(), console=console(stderr=True), transient=True,
                       disable=args.json) as prog:
             task = prog.add_task("c", total=args.seconds)
-            rows, interrupted = clock_readings(dev, args.rate_hz, args.seconds, latency=latency,
+            rows, interrupted = clock_readings(dev, args.samplerate, args.seconds, latency=latency,
                                   progress=lambda el: prog.update(task, completed=el))
         if interrupted:
             sys.stderr.write("tickscope: interrupted; fitting what was captured\n")
-        rate_hz = args.rate_hz
+        samplerate = args.samplerate
         method, device = "host-clock", str(args.device or "default input")
     arr = np.array(rows)
     if len(arr) < 16:
         raise ParameterError("too few blocks were captured to calibrate")
-    return fit_device_clock(arr[:, 0], arr[:, 1], rate_hz), rate_hz, method, device
+    return fit_device_clock(arr[:, 0], arr[:, 1], samplerate), samplerate, method, device

@@ -18,16 +18,16 @@ def run(args) -> int:
     from ..io.capture import Capture, resolve_device
     from ..pipeline import Analyzer
 
-    if not 8000 <= args.rate_hz <= 192000:
-        raise ParameterError(f"--rate-hz {args.rate_hz}: expected 8000..192000")
+    if not 8000 <= args.samplerate <= 192000:
+        raise ParameterError(f"--rate-hz {args.samplerate}: expected 8000..192000")
     dev = resolve_device(args.device)
     clock = clock_from_args(args, device_name=args.device)
     # short processing chunks: a step reaches the screen promptly (results equal those of `analyze`)
-    an = Analyzer(args.rate_hz, channel=args.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+    an = Analyzer(args.samplerate, channel=args.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
                   detector=DetectorConfig(chunk_s=0.25))
-    rec = LiveRecorder(args.save, args.rate_hz) if args.save else None
+    rec = LiveRecorder(args.save, args.samplerate) if args.save else None
     # ~43 ms blocks: fewer wake-ups than the driver's default (less CPU), well inside the 0.25 s chunk
-    cap = Capture(dev, args.rate_hz, channel=args.channel, blocksize=2048)
+    cap = Capture(dev, args.samplerate, channel=args.channel, blocksize=2048)
     src = args.device if args.device is not None else "default input"
     t0 = time.monotonic()
     stop_note, rec_error = _capture(an, cap, rec, args, str(src))
@@ -87,7 +87,7 @@ def _capture(an, cap, rec, args, src: str) -> tuple[str | None, str | None]:
                 if live is not None and (new_step or now - last_draw >= 0.4):
                     from ..ui.dashboard import LiveStatus, render_live
 
-                    st = LiveStatus(src, args.rate_hz, args.channel, an.duration_s, level,
+                    st = LiveStatus(src, args.samplerate, args.channel, an.duration_s, level,
                                     cap.overflows + (1 if cap.dropped_frames else 0), args.save)
                     live.update(render_live(refit.get(now), st, width=min(con.width, 160)), refresh=True)
                     last_draw = now

@@ -62,16 +62,16 @@ def _run(args, store) -> int:
         from ..io.capture import Capture, resolve_device
 
         plan = plan_device_segment(segs, str(args.device), channel=args.channel, now_wall_s=now, db=args.db)
-        if not 8000 <= args.rate_hz <= 192000:
-            raise ParameterError(f"--rate-hz {args.rate_hz}: expected 8000..192000")
+        if not 8000 <= args.samplerate <= 192000:
+            raise ParameterError(f"--rate-hz {args.samplerate}: expected 8000..192000")
         dev = resolve_device(args.device)
-        samplerate = args.rate_hz
+        samplerate = args.samplerate
         clock = clock_from_args(args, device_name=args.device)
         cap = Capture(dev, samplerate, channel=plan.channel, blocksize=2048)
         detector = DetectorConfig(chunk_s=0.25)
     seg = store.new_segment(started_wall=now, source_kind=plan.kind, source=plan.source,
                             source_offset_s=plan.timeline_s if plan.kind == "file" else 0.0,
-                            timeline_s=plan.timeline_s, join_kind=plan.join, sample_rate_hz=samplerate,
+                            timeline_s=plan.timeline_s, join_kind=plan.join, samplerate=samplerate,
                             channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
                             time_base=clock.time_base, host_sync=host_sync_status() if plan.kind == "device" else None,
                             version=__version__)
@@ -192,7 +192,7 @@ def _log_device(ls, cap, limit_s, args, number: int, *, quiet: bool) -> str:
                 now = time.monotonic()
                 level = meter.update(b.samples, now)
                 if live is not None and (new_step or now - last_draw >= 0.5):
-                    st = LiveStatus(str(args.device), args.rate_hz, ls.an.channel, ls.position_s, level,
+                    st = LiveStatus(str(args.device), args.samplerate, ls.an.channel, ls.position_s, level,
                                     cap.overflows + (1 if cap.dropped_frames else 0), None)
                     w = min(con.width, 160)
                     t = ls.totals

@@ -111,10 +111,10 @@ def _device_clock(store, segs) -> list[dict]:
         if s.source_kind != "device":
             continue
         start, host = store.blocks(s.id)
-        if len(start) < 16 or (start[-1] - start[0]) / s.sample_rate_hz < 600:
+        if len(start) < 16 or (start[-1] - start[0]) / s.samplerate < 600:
             continue
         try:
-            f = fit_device_clock(start, host, s.sample_rate_hz, segments=min(64, len(start) // 2))
+            f = fit_device_clock(start, host, s.samplerate, segments=min(64, len(start) // 2))
         except TickscopeError:
             continue
         out.append({"segment": s.id, "ppm": round(f.ppm, 3), "ci95_ppm": round(f.ci95_ppm, 3),

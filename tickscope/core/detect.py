@@ -27,6 +27,8 @@ from . import dsp, kernels
 
 from ..errors import ParameterError
 from ..model import samples_as_float32
+from .noisefloor import FloorTracker
+from .snippets import Impact, impacts_from_rows, noise_whitener
 
 
 @dataclass(frozen=True)
@@ -47,20 +49,6 @@ class DetectorConfig:
     post_s: float = 0.090  # and after it (ring-down and a hand's bounce)
     highpass_hz: float = 300.0  # timing works above hum and handling noise
     min_level_dbfs: float = -110.0  # frames below this never start an impact
-
-
-@dataclass
-class Impact:
-    """One impulsive sound: coarse position, level, and a snippet of audio around it."""
-
-    onset_sample: int  # coarse onset (frame resolution) on the stream's sample index
-    peak_dbfs: float  # peak sample magnitude in the snippet, dBFS
-    frame_snr_db: float  # peak frame energy over the noise floor
-    snippet_start: int  # sample index of snippet[0]
-    snippet: np.ndarray  # high-passed audio, float64
-    wsnippet: np.ndarray  # the same, whitened against the background noise (for timing)
-    clipped: bool = False
-    truncated: bool = False
 
 
 class ImpactDetector:
@@ -122,8 +110,7 @@ class ImpactDetector:
         self._wh_resp = self._hp_resp
         self._tail = np.zeros(0, dtype=self._dtype)  # last `lag` samples before this chunk
         self._prev_frames = np.zeros(16)  # energies of the 16 frames before this chunk
-        self._floors = dsp.RollingWindow(max(1, int(round(self.cfg.floor_window_s / self.cfg.stats_block_s))))
-        self._spreads = dsp.RollingWindow(self._floors.maxlen)
+        self._floor = FloorTracker(self.cfg, self.sub)
         self._last_onset_frame = -(10**12)
         self._quiet_until_frame = -1
         self._raw = np.zeros(0, dtype=self._dtype)  # recent raw audio (our own copy)
@@ -297,7 +284,7 @@ class ImpactDetector:
             if contrast > best * 1.05:  # prefer short lags unless a longer one is clearly better
                 best, best_lag = contrast, lag
         self.lag = best_lag
-        self.whitener = _noise_whitener(x, self._frame_energy(x, np.zeros(0, dtype=np.float32), best_lag),
+        self.whitener = noise_whitener(x, self._frame_energy(x, np.zeros(0, dtype=np.float32), best_lag),
                                         self.hop, self.samplerate)
         # the whitening FIR is causal: its spectrum times the zero-phase high-pass
         self._wh_resp = (self._hp_resp * np.fft.rfft(self.whitener, self._nfft)).astype(np.complex64)
@@ -317,46 +304,11 @@ class ImpactDetector:
         # frames before it (cs[j] is the sum of the first j frames)
         now = (cs[P + 1: m + 1] - cs[P + 1 - ns: m + 1 - ns]) / ns
         bg = (cs[P - 4: m - 4] - cs[P - 12: m - 12]) / 8.0
-        nf = len(e)
-        # Statistics per fixed block of frames (0.25 s), whatever the processing chunk: files are
-        # processed in long chunks (fast), live audio in short ones (prompt), with equal results.
-        # The per-block order statistics are taken for all whole blocks at once (a partial sort
-        # along rows); only the smoothing over the last seconds runs block by block.
-        sub = self.sub
-        nb_full = nf // sub
-        starts = list(range(0, nf, sub))
-        q_floor = np.empty(len(starts))
-        q20 = np.full(len(starts), np.nan)
-        q50 = np.full(len(starts), np.nan)
-        q90 = np.full(len(starts), np.nan)
-        kq = int(self.cfg.floor_quantile * (sub - 1))
-        if nb_full:
-            q_floor[:nb_full] = np.partition(e[: nb_full * sub].reshape(nb_full, sub), kq, axis=1)[:, kq]
-            if sub >= 16:
-                i20, i50, i90 = int(0.2 * (sub - 1)), sub // 2, int(0.9 * (sub - 1))
-                # a full sort along the rows: numpy's vectorised sort is ~8x faster here than a
-                # partial sort asked for three order statistics (the same values either way)
-                part = np.sort(now[: nb_full * sub].reshape(nb_full, sub), axis=1)
-                q20[:nb_full], q50[:nb_full], q90[:nb_full] = part[:, i20], part[:, i50], part[:, i90]
-        if nb_full < len(starts):  # a partial block at the end of the stream
-            s0 = nb_full * sub
-            q_floor[nb_full] = _quick_quantile(e[s0:], self.cfg.floor_quantile)
-            seg = now[s0:]
-            if len(seg) >= 16:
-                i20, i50, i90 = int(0.2 * (len(seg) - 1)), len(seg) // 2, int(0.9 * (len(seg) - 1))
-                part = np.sort(seg)
-                q20[nb_full], q50[nb_full], q90[nb_full] = part[i20], part[i50], part[i90]
-        min_level = 10 ** (self.cfg.min_level_dbfs / 10)
-        rel = 10 ** (self.cfg.threshold_db / 10)
-        W = self._floors.maxlen
-        if len(self._floors) == W and len(self._spreads) == W and W > 1 and not np.isnan(q50).any():
-            thr_b, fl_b = self._block_thresholds(q_floor, q20, q50, q90, rel, min_level)
-        else:
-            thr_b, fl_b = self._block_thresholds_one_by_one(q_floor, q20, q50, q90, rel, min_level)
+        thr_b, fl_b = self._floor.thresholds(e, now)
         self.floor_db = 10 * math.log10(max(fl_b[-1], 1e-30))
         self._prev_frames = ext[-P:]
         rise = 10 ** (self.cfg.rise_db / 10)
-        args = (now, bg, np.asarray(thr_b, dtype=np.float64), np.asarray(fl_b, dtype=np.float64), sub, rise,
+        args = (now, bg, np.asarray(thr_b, dtype=np.float64), np.asarray(fl_b, dtype=np.float64), self.sub, rise,
                 n0 // self.hop, ns, self.refractory_frames, self._last_onset_frame, self._quiet_until_frame)
         onsets, floors, self._last_onset_frame = (kernels.onset_scan(*args) if kernels.compiled()
                                                   else self._onsets_numpy(*args))
@@ -385,45 +337,6 @@ class ImpactDetector:
             floors.append(fl[c])
         return np.array(onsets, dtype=np.int64), np.array(floors, dtype=np.float64), last
 
-    def _block_thresholds(self, q_floor, q20, q50, q90, rel: float, min_level: float) -> tuple[list, list]:
-        """:meth:`_block_thresholds_one_by_one` for a run of blocks once both running windows are
-        full: the windows ending at each block sorted as the rows of one array (the same medians
-        and order statistics, far fewer Python steps)."""
-        W = self._floors.maxlen
-        win = np.arange(len(q_floor))[:, None] + np.arange(W)  # row i: the window ending at block i
-        srt = np.sort(np.concatenate([np.fromiter(self._floors, float, W)[1:], q_floor])[win], axis=1)
-        floors = srt[:, W // 2] if W % 2 else (srt[:, W // 2 - 1] + srt[:, W // 2]) / 2
-        new_spreads = [_block_spread(a20, a50, a90) for a20, a50, a90 in zip(q20.tolist(), q50.tolist(), q90.tolist())]
-        spreads = np.sort(np.concatenate([np.fromiter(self._spreads, float, W)[1:], new_spreads])[win], axis=1)[:, W // 4]
-        fl_b = floors.tolist()
-        thr_b = [max(floor * max(rel, spread ** 3), min_level) for floor, spread in zip(fl_b, spreads.tolist())]
-        for v in q_floor[-W:].tolist():
-            self._floors.append(v)
-        for v in new_spreads[-W:]:
-            self._spreads.append(v)
-        return thr_b, fl_b
-
-    def _block_thresholds_one_by_one(self, q_floor, q20, q50, q90, rel: float, min_level: float) -> tuple[list, list]:
-        """Per 0.25 s block: the onset threshold (power) and the noise floor."""
-        thr_b = []
-        fl_b = []
-        for qf, a20, a50, a90 in zip(q_floor.tolist(), q20.tolist(), q50.tolist(), q90.tolist()):
-            # noise floor: a low quantile of this block, smoothed over the last seconds
-            self._floors.append(qf)
-            floor = self._floors.median()
-            # How much the background itself fluctuates over 2 ms: white noise barely (many
-            # degrees of freedom), low-frequency noise a lot.  The threshold rises with it so
-            # that noise alone seldom starts an impact.
-            if a50 == a50:  # not nan: the block had 16 frames or more
-                self._spreads.append(_block_spread(a20, a50, a90))
-            # the lower quartile over the last seconds: a block holding a step's ring-down, a voice or
-            # a phone's gain pumping after a step reads tens of times the background's spread, and
-            # early in a recording such blocks can be half of those seen
-            spread = self._spreads.order_stat(len(self._spreads) // 4) if len(self._spreads) else 1.0
-            thr_b.append(max(floor * max(rel, spread ** 3), min_level))
-            fl_b.append(floor)
-        return thr_b, fl_b
-
     def _emit_ready(self, final: bool) -> list[Impact]:
         out: list[Impact] = []
         end = self._raw_end()
@@ -449,117 +362,19 @@ class ImpactDetector:
     def _cut(self, ready: list[tuple[int, float]]) -> list[Impact]:
         """The impacts' snippets and levels (each ``snr`` comes in as the floor's power, goes out in dB).
 
-        The snippets of all impacts ready at once are filtered together (one FFT over the
-        stacked rows: the same numbers as one at a time, with less overhead per impact).
+        The snippets of all impacts ready at once are cut straight into rows as long as the FFT
+        (the zeros are its padding; an FFT asked to pad for itself copies each row first, costing
+        as much as the transform) and filtered together (:func:`.snippets.impacts_from_rows`).
         """
         n = self.pre + self.post
-        # cut straight into rows as long as the FFT (the zeros are its padding; an FFT asked to
-        # pad for itself copies each row first, costing as much as the transform)
         padded = np.zeros((len(ready), self._nfft), dtype=np.float32)
-        raw = padded[:, :n]
         trunc = []
         end = self._raw_end()
         for i, (onset, _) in enumerate(ready):
             a = onset - self.pre
-            self._fetch(raw[i], a)
+            self._fetch(padded[i, :n], a)
             trunc.append(onset + self.post > end or a < self._raw_start)
-        if self._scale is not None:  # integers: exact in float32, and so after the power-of-two scale
-            raw *= np.float32(self._scale)
-        # the level of each impact only: its first 10 ms (a later sound in the snippet is another impact)
-        ms1 = int(0.001 * self.samplerate)
-        ms10 = int(0.010 * self.samplerate)
-        head = raw[:, max(0, self.pre - ms1): self.pre + ms10]
-        peak = np.abs(head).max(axis=1) if head.shape[1] else np.zeros(len(ready))
-        clipped = _flat_tops(head, peak)
-        # level over the floor, measured the way the floor was (lagged difference, frame energy)
-        # on the first 10 ms of each impact
-        lag = self.lag or 1
-        hd = raw[:, self.pre - ms1: self.pre + ms10].astype(np.float32)
-        if hd.shape[1] > lag + self.hop:
-            dd = hd[:, lag:] - hd[:, :-lag]
-            m = (dd.shape[1] // self.hop) * self.hop
-            dd = dd[:, :m].reshape(len(ready), -1, self.hop)
-            fe = np.einsum("ijk,ijk->ij", dd, dd) / self.hop
-            floors = np.array([f for _, f in ready])
-            snr = 10 * np.log10(np.maximum(fe.max(axis=1).astype(np.float64), 1e-30) / np.maximum(floors, 1e-30))
-        else:
-            snr = np.zeros(len(ready))
-        # zero-phase high-pass and whitening in one spectrum; the 6 ms before the onset absorb
-        # the start-up transient (the pre-onset mean is removed first, so a DC offset cannot
-        # ring the filter)
-        raw -= raw[:, : max(1, self.pre // 2)].mean(axis=1, keepdims=True)
-        X = np.fft.rfft(padded, axis=1)
-        hp = np.fft.irfft(X * self._hp_resp, self._nfft, axis=1)[:, :n]
-        wh = np.fft.irfft(X * self._wh_resp, self._nfft, axis=1)[:, :n] if len(self.whitener) > 1 else hp
-        return [Impact(onset_sample=onset, peak_dbfs=20 * math.log10(max(float(peak[i]), 1e-12)),
-                       frame_snr_db=float(snr[i]), snippet_start=onset - self.pre, snippet=hp[i], wsnippet=wh[i],
-                       clipped=bool(clipped[i]), truncated=trunc[i])
-                for i, (onset, _) in enumerate(ready)]
-
-
-def _block_spread(q20: float, q50: float, q90: float) -> float:
-    """How much a block's 2 ms energies fluctuate: the ratio of their 90th to 50th percentile,
-    held to what the quieter half of the block implies.
-
-    For background noise alone q90/q50 is close to (q50/q20)**1.4 (white, pink and brown noise
-    at 8 and 48 kHz agree within 6 %: measured with this detector's energies).  Where sound
-    fills more than a tenth of every block (a mechanical timer beating 4.4 times a second,
-    each beat ringing ~50 ms: a real recording) q90 lies inside the beats and the ratio
-    reads ~100, which would lift the threshold 60 dB over the floor and hide every beat;
-    the quieter half still reads the background, so the ratio is capped at 1.5 times what
-    it implies (our own margin: it never binds on noise alone).
-    """
-    if not q50 > 0:
-        return 1.0
-    r = q90 / q50
-    if q20 > 0:
-        r = min(r, 1.5 * (q50 / q20) ** 1.4)
-    return r
-
-
-def _quick_quantile(e: np.ndarray, q: float) -> float:
-    """The q-quantile (lower order statistic) by partial sort: np.quantile costs ~10x more per call."""
-    k = int(q * (len(e) - 1))
-    return float(np.partition(e, k)[k])
-
-
-def _flat_tops(rows: np.ndarray, peak: np.ndarray) -> np.ndarray:
-    """Per row: True when the waveform sits at its extreme for 3+ consecutive samples (clipping)."""
-    if rows.shape[1] < 3:
-        return np.zeros(len(rows), dtype=bool)
-    at = np.abs(rows) >= 0.999 * peak[:, None]
-    run3 = at[:, :-2] & at[:, 1:-1] & at[:, 2:]
-    return run3.any(axis=1) & (peak > 0)
-
-
-def _noise_whitener(x: np.ndarray, frame_e: np.ndarray, hop: int, samplerate: float,
-                    order: int = 16, window_s: float = 0.25) -> np.ndarray:
-    """FIR prediction-error filter A(z) of the quietest stretch of ``x`` (linear prediction).
-
-    Filtering with A(z) whitens the background (pink noise, hum, rumble), so the template
-    match becomes the matched filter for coloured noise (the prefilter of Knapp & Carter's
-    generalized cross-correlation).  Steps and templates go through the same filter.
-    """
-    nwin = max(1, int(window_s * samplerate / hop))
-    if len(frame_e) < nwin + 2:
-        return np.ones(1)
-    c = np.convolve(frame_e, np.ones(nwin), mode="valid")
-    i = int(np.argmin(c))
-    seg = x[i * hop: (i + nwin) * hop].astype(np.float64)
-    if len(seg) < 4 * order:
-        return np.ones(1)
-    seg = seg - seg.mean()
-    sos = dsp.butter_highpass_sos(4, min(300.0, 0.2 * samplerate / 2) / (samplerate / 2))
-    nfft = dsp.fast_len(2 * len(seg))
-    seg = np.fft.irfft(np.fft.rfft(seg, nfft) * dsp.sos_power_response(sos, nfft), nfft)[: len(seg)]
-    seg = seg[int(0.01 * samplerate): len(seg) - int(0.01 * samplerate)]
-    # autocorrelation at lags 0..order only (the full correlation costs n^2)
-    r = np.array([float(np.dot(seg[: len(seg) - j], seg[j:])) for j in range(order + 1)])
-    if r[0] <= 0:
-        return np.ones(1)
-    r[0] *= 1.0 + 1e-3  # a little white floor keeps the filter tame
-    try:
-        a = dsp.levinson(r, order)
-    except np.linalg.LinAlgError:
-        return np.ones(1)
-    return np.concatenate([[1.0], a])
+        return impacts_from_rows(padded, [o for o, _ in ready], np.array([f for _, f in ready]), trunc,
+                                 pre=self.pre, post=self.post, samplerate=self.samplerate, lag=self.lag or 1,
+                                 hop=self.hop, scale=self._scale, hp_resp=self._hp_resp, wh_resp=self._wh_resp,
+                                 whitened=len(self.whitener) > 1)

@@ -30,6 +30,7 @@ import numpy as np
 
 from . import stability as stab
 from .dsp import line_fit
+from .logphase import polarity_offset_s, phase_figures
 from .rate import fit_rate, level_shifts, stretch_weights
 from .regulation import unseen_correction_ci95_s_per_day
 from ..model import FLAG_BITS, KIND_CODES
@@ -137,7 +138,7 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
                 k = np.where(has, k - k[has][0] + int(prev_k[-1]) + 1, -1)
             K[sel] = k
             kc = K[sel][steps]
-            pol = _polarity_offset_s(kc, T[sel][steps], np.zeros(len(kc), dtype=np.int64))
+            pol = polarity_offset_s(kc, T[sel][steps], np.zeros(len(kc), dtype=np.int64))
             if stitch:
                 # A replay resumed on the same audio clock: the phase runs on, but the new segment
                 # learned new templates, whose time origin (and A/B offset) can sit ~0.1 ms from the
@@ -225,28 +226,67 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     silent, silences = _silences(ev, T, K, nominal)
     good = (kinds == KIND_STEP) & (ev["match"] >= GOOD_MATCH) & ((ev["flags"] & LOW_MATCH_BIT) == 0) & (K >= 0)
     steps_all = kinds == KIND_STEP
-    # clock correction
+    calibrated, u95, clock_ppm = _clock_terms(segments, override_ppm, override_u95, notes)
+    rate = _overall_rate(K, T, G, good, ev, nominal, lossy, u95 if calibrated else 0.0, notes)
+    spans, gap_list = _spans_and_gaps(segments, gaps, silences, override_ppm)
+    duration = _union_length([(a, b) for a, b, _ in spans])  # a resumed replay re-reads a little
+    t_lo = min(a for a, _, _ in spans)
+    t_hi = max(b for _, b, _ in spans)
+    hourly, ring = _hourly(ev, T, K, G, P, good, silent, spans, t_lo, t_hi, nominal, u95 if calibrated else 0.0)
+    adev = tie = None
+    step_t, step_x, step_k = np.zeros(0), np.zeros(0), np.zeros(0, dtype=np.int64)
+    if rate is not None:
+        adev, tie, step_t, step_x, step_k = phase_figures(K, T, G, good, nominal, rate.interval_s, notes)
+    # missed / failed / rejected on the timeline
+    missed_t = T[(kinds == KIND_MISSED) & ~silent]
+    failed_t = T[kinds == KIND_FAILED]
+    rej = (kinds == KIND_REJECTED) & (ev["snr_db"] >= REJECT_SNR_DB)
+    rejected_t = T[rej]
+    worst = _worst_hour(hourly, rate)
+    best = _best_stretch(spans, gap_list, np.sort(np.concatenate([missed_t, failed_t])), K, T, G, good, nominal, u95,
+                         calibrated)
+    return LogFigures(
+        segments=len(segments), duration_s=duration, span_s=t_hi - t_lo, nominal_s=nominal,
+        steps_detected=int(steps_all.sum()), missed_steps=int(len(missed_t)), failed_steps=int(len(failed_t)),
+        correction_pulses=int(np.count_nonzero(kinds == KIND_CORRECTION)), rejected_events=int(rej.sum()),
+        rate=rate, clock_correction_ppm=clock_ppm, clock_ppm_u95=u95 if calibrated else 0.0,
+        groups=int(G.max()) + 1 if len(G) else 1, gaps=gap_list, hourly=hourly, minutes=_merge_minutes(minutes),
+        adev=adev, tie=tie, worst_hour=worst, best_stretch=best, missed_times_s=missed_t, failed_times_s=failed_t,
+        rejected_times_s=rejected_t, notes=notes, step_t=step_t, step_x=step_x, step_k=step_k, ringdown_hourly=ring,
+        event_t=T, event_k=K, event_pol=P)
+
+
+def _clock_terms(segments, override_ppm, override_u95: float, notes: list[str]) -> tuple[bool, float, float | None]:
+    """(all segments corrected, the 95 % half-width of the correction, the one correction or None)."""
     ppms = [override_ppm] if override_ppm is not None else [s.clock_ppm for s in segments]
     calibrated = all(p is not None for p in ppms)
     u95 = override_u95 if override_ppm is not None else max((s.clock_ppm_u95 or 0.0) for s in segments)
     clock_ppm = (ppms[0] if len(set(ppms)) == 1 else None) if calibrated else None
     if calibrated and clock_ppm is None:
         notes.append("segments carry different clock corrections: each segment is corrected by its own")
-    # overall rate: common slope, one intercept per group
-    rate = None
-    if good.sum() >= 3 and np.ptp(K[good]) >= 2:
-        groups, weights = G[good], None
-        if lossy and set(np.unique(ev["seg"][good]).tolist()) <= set(lossy):
-            shifts = level_shifts(K[good], T[good])
-            if shifts is not None:
-                groups = np.unique(np.stack([G[good], shifts]), axis=1, return_inverse=True)[1].ravel()
-                weights = stretch_weights(K[good], T[good], groups)
-                notes.append(f"the audio went through a lossy codec, which shifted the step times abruptly "
-                             f"{int(shifts.max())} time{'s' if shifts.max() > 1 else ''}: the overall rate is "
-                             "fitted within the stretches between shifts")
-        rate = _rate_allowing_unseen(K[good], T[good], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
-                        groups=groups, weights=weights)
-    # timeline spans: segments and gaps between them
+    return calibrated, u95, clock_ppm
+
+
+def _overall_rate(K, T, G, good, ev, nominal: float, lossy, u95: float, notes: list[str]):
+    """The rate over the whole log: a common slope, one intercept per group (None with too few steps)."""
+    if good.sum() < 3 or np.ptp(K[good]) < 2:
+        return None
+    groups, weights = G[good], None
+    if lossy and set(np.unique(ev["seg"][good]).tolist()) <= set(lossy):
+        shifts = level_shifts(K[good], T[good])
+        if shifts is not None:
+            groups = np.unique(np.stack([G[good], shifts]), axis=1, return_inverse=True)[1].ravel()
+            weights = stretch_weights(K[good], T[good], groups)
+            notes.append(f"the audio went through a lossy codec, which shifted the step times abruptly "
+                         f"{int(shifts.max())} time{'s' if shifts.max() > 1 else ''}: the overall rate is "
+                         "fitted within the stretches between shifts")
+    return _rate_allowing_unseen(K[good], T[good], nominal, clock_ppm=0.0, clock_ppm_u95=u95, groups=groups,
+                                 weights=weights)
+
+
+def _spans_and_gaps(segments, gaps, silences, override_ppm):
+    """Each segment's span on the timeline, and every gap: between segments, restarts of a replay,
+    the audio's own gaps and the silences."""
     spans = []
     for s in segments:
         spans.append((_timeline(s, 0.0, override_ppm), _timeline(s, s.duration_s, override_ppm), s))
@@ -263,9 +303,13 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         gap_list.append((a, b, kind or "overflow"))
     gap_list += silences
     gap_list.sort()
-    duration = _union_length([(a, b) for a, b, _ in spans])  # a resumed replay re-reads a little
-    t_lo = min(a for a, _, _ in spans)
-    t_hi = max(b for _, b, _ in spans)
+    return spans, gap_list
+
+
+def _hourly(ev, T, K, G, P, good, silent, spans, t_lo: float, t_hi: float, nominal: float, u95: float):
+    """Per hour of the timeline: rate, counts and coverage; and the ring-down per polarity."""
+    kinds = ev["kind"]
+    steps_all = kinds == KIND_STEP
     # hourly rates, counts and ring-down
     hourly, ring = [], []
     hour = np.floor(T / 3600.0).astype(np.int64)
@@ -274,7 +318,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         gh = good & in_h
         r = None
         if gh.sum() >= 6 and np.ptp(K[gh]) >= 5:
-            r = _rate_allowing_unseen(K[gh], T[gh], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0,
+            r = _rate_allowing_unseen(K[gh], T[gh], nominal, clock_ppm=0.0, clock_ppm_u95=u95,
                          groups=G[gh])
         covered = sum(max(0.0, min(b, (h + 1) * 3600) - max(a, h * 3600)) for a, b, _ in spans)
         hourly.append({"hour": h, "start_s": h * 3600.0, "covered_s": round(covered, 3),
@@ -296,70 +340,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
                                                  "abnormal": int(np.count_nonzero(
                                                      (ev["flags"][steps_all & in_h & (P == pol)] & RINGDOWN_BIT) != 0))}
         ring.append(row)
-    # time error and Allan deviation, per group (never across a wall-clock join)
-    adev = tie = None
-    step_t = np.zeros(0)
-    step_x = np.zeros(0)
-    step_k = np.zeros(0, dtype=np.int64)
-    if rate is not None:
-        sums = None
-        n_points = 0
-        n_out = 0
-        xs, ts, ks = [], [], []
-        x_end = None
-        for g in np.unique(G[good]):
-            sel = good & (G == g)
-            kg, tg = K[sel], T[sel]
-            kg, first = np.unique(kg, return_index=True)  # sorted; a step number appears once
-            tg = tg[first]
-            # each segment's templates set its own A/B offset: removed group by group
-            pol_c = _polarity_offset_s(kg, tg, np.zeros(len(kg), dtype=np.int64))
-            grid, x = stab.phase_from_steps(kg, tg - pol_c * ((kg % 2) - 0.5), nominal)
-            n_out += _drop_outliers(x)
-            if x_end is not None:
-                # continue on the fitted rate across the join: x grows by (b - nominal) per step
-                x = x + x_end[1] + (grid[0] - x_end[0]) * (rate.interval_s - nominal)
-            ok = np.isfinite(x)
-            x_end = (grid[ok][-1], x[ok][-1])
-            t_grid = np.full(len(grid), np.nan)
-            t_grid[kg - grid[0]] = tg
-            xs.append(x[ok])
-            ts.append(t_grid[ok])
-            ks.append(grid[ok])
-            m = stab.octave_factors(max(len(x), 4))
-            s_ = stab.oadev_sums(x, m)
-            n_points += int(ok.sum())
-            if sums is None:
-                sums = s_
-            else:
-                mm = np.union1d(sums.m, s_.m)
-                sums = _pad(sums, mm) + _pad(s_, mm)
-        step_x = np.concatenate(xs)
-        step_t = np.concatenate(ts)
-        step_k = np.concatenate(ks)
-        tie = stab.tie_summary(step_k, step_x)
-        if sums is not None and n_points >= 8:
-            adev = stab.oadev_from_sums(sums, nominal, n_points)
-        if n_out:
-            notes.append(f"{n_out} step{'s' if n_out != 1 else ''} sat far off their neighbours (a knock or a voice on top of the step): "
-                         "left out of the time error and the Allan deviation")
-    # missed / failed / rejected on the timeline
-    missed_t = T[(kinds == KIND_MISSED) & ~silent]
-    failed_t = T[kinds == KIND_FAILED]
-    rej = (kinds == KIND_REJECTED) & (ev["snr_db"] >= REJECT_SNR_DB)
-    rejected_t = T[rej]
-    worst = _worst_hour(hourly, rate)
-    best = _best_stretch(spans, gap_list, np.sort(np.concatenate([missed_t, failed_t])), K, T, G, good, nominal, u95,
-                         calibrated)
-    return LogFigures(
-        segments=len(segments), duration_s=duration, span_s=t_hi - t_lo, nominal_s=nominal,
-        steps_detected=int(steps_all.sum()), missed_steps=int(len(missed_t)), failed_steps=int(len(failed_t)),
-        correction_pulses=int(np.count_nonzero(kinds == KIND_CORRECTION)), rejected_events=int(rej.sum()),
-        rate=rate, clock_correction_ppm=clock_ppm, clock_ppm_u95=u95 if calibrated else 0.0,
-        groups=int(G.max()) + 1 if len(G) else 1, gaps=gap_list, hourly=hourly, minutes=_merge_minutes(minutes),
-        adev=adev, tie=tie, worst_hour=worst, best_stretch=best, missed_times_s=missed_t, failed_times_s=failed_t,
-        rejected_times_s=rejected_t, notes=notes, step_t=step_t, step_x=step_x, step_k=step_k, ringdown_hourly=ring,
-        event_t=T, event_k=K, event_pol=P)
+    return hourly, ring
 
 
 SILENT_RUN = 10  # this many missed steps in a row are a silence (microphone moved, movement stopped)
@@ -398,51 +379,6 @@ def _silences(ev, T, K, nominal) -> tuple[np.ndarray, list[tuple[float, float, s
     return silent, out
 
 
-def _polarity_offset_s(k: np.ndarray, t: np.ndarray, g: np.ndarray) -> float:
-    """How much later odd steps sound than even ones, from each step against its two neighbours.
-
-    A global least-squares polarity term picks up part of any curvature of the phase (a rate
-    that drifts over days), because alternating signs do not sum to zero against k^2 at the
-    ends; the local form ``x_k - (x_k-1 + x_k+1) / 2`` cancels the trend step by step.
-    """
-    vals = []
-    for gg in np.unique(g):
-        sel = g == gg
-        kk, first = np.unique(k[sel], return_index=True)
-        tt = t[sel][first]
-        if len(kk) < 3:
-            continue
-        trip = (kk[2:] - kk[:-2] == 2) & (kk[1:-1] - kk[:-2] == 1)
-        d = tt[1:-1] - 0.5 * (tt[:-2] + tt[2:])
-        sign = np.where(kk[1:-1] % 2 == 1, 1.0, -1.0)
-        vals.append((d * sign)[trip])
-    v = np.concatenate(vals) if vals else np.zeros(0)
-    return float(np.median(v)) if len(v) >= 8 else 0.0
-
-
-def _drop_outliers(x: np.ndarray, *, window: int = 31, sigmas: float = 6.0, floor_s: float = 2e-6) -> int:
-    """Set to NaN the steps far from the running median of their neighbours; returns how many.
-
-    The running median follows a drifting rate and a logic-regulation sawtooth, so only
-    single mis-timed steps stand out (the rate fit drops the same steps as outliers).
-    """
-    from scipy.ndimage import median_filter
-
-    ok = np.flatnonzero(np.isfinite(x))
-    if len(ok) < window:
-        return 0
-    v = x[ok] - np.polyval(np.polyfit(ok, x[ok], 1), ok)  # a straight ramp would bias the median at the ends
-    r = v - median_filter(v, size=window, mode="nearest")
-    mad = 1.4826 * float(np.median(np.abs(r - np.median(r))))
-    bad = np.abs(r - np.median(r)) > max(sigmas * mad, floor_s)
-    # a logic-regulation jump moves every later step: the running median follows it within
-    # half a window, so only isolated points are dropped (at most 1 in 50)
-    if bad.sum() > len(v) / 50:
-        return 0
-    x[ok[bad]] = np.nan
-    return int(bad.sum())
-
-
 def _union_length(intervals) -> float:
     total, end = 0.0, -math.inf
     for a, b in sorted(intervals):
@@ -450,15 +386,6 @@ def _union_length(intervals) -> float:
             total += b - max(a, end)
             end = b
     return total
-
-
-def _pad(s: stab.AdevSums, m: np.ndarray) -> stab.AdevSums:
-    ss = np.zeros(len(m))
-    cnt = np.zeros(len(m), dtype=np.int64)
-    idx = np.searchsorted(m, s.m)
-    ss[idx] = s.sum_sq
-    cnt[idx] = s.count
-    return stab.AdevSums(m, ss, cnt)
 
 
 def _merge_minutes(rows) -> list[dict]:

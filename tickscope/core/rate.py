@@ -26,6 +26,8 @@ from ..units import SECONDS_PER_DAY
 #: this factor: the 99th percentile of chi2(6)/6 = 16.81/6 (8 batch means, a line through them;
 #: the chi-squared quantile from memory of the standard tables)
 BATCH_VIEW_F = 2.80
+#: Stretches averaged for the batch-means view of the rate's interval.
+BATCHES = 8
 
 
 def _lsq(k: np.ndarray, t: np.ndarray, polarity_term: bool, groups: np.ndarray | None = None,
@@ -97,6 +99,34 @@ def _one_polarity_groups(k: np.ndarray, g: np.ndarray) -> bool:
     return all(len(np.unique(k[g == v] % 2)) == 1 for v in np.unique(g))
 
 
+def _checked(steps, times_s, nominal_interval_s: float, polarity_term: bool, groups, weights):
+    """fit_rate's inputs as arrays, checked: (k, t, polarity_term, groups or None, sqrt weights or None)."""
+    k = np.asarray(steps, dtype=np.float64)
+    t = np.asarray(times_s, dtype=np.float64)
+    if k.shape != t.shape or k.ndim != 1:
+        raise ParameterError("steps and times_s must be 1-D arrays of the same length")
+    if len(k) < 3:
+        raise ParameterError(f"need at least 3 steps to fit a rate, got {len(k)}")
+    if not nominal_interval_s > 0:
+        raise ParameterError(f"nominal_interval_s={nominal_interval_s!r}: expected > 0")
+    polarity_term = polarity_term and len(np.unique(k % 2)) == 2 and len(k) >= 6
+    g = None if groups is None else np.asarray(groups)
+    if g is not None and g.shape != k.shape:
+        raise ParameterError("groups must have one entry per step")
+    if g is not None and len(np.unique(g)) == 1:
+        g = None
+    if g is not None and polarity_term and _one_polarity_groups(k, g):
+        polarity_term = False  # each group's intercept holds its polarity's offset
+    if weights is not None:
+        w = np.asarray(weights, dtype=np.float64)
+        if w.shape != k.shape or not np.all(w > 0):
+            raise ParameterError("weights must be positive, one per step")
+        sw_all = np.sqrt(w / w.mean())
+    else:
+        sw_all = None
+    return k, t, polarity_term, g, sw_all
+
+
 def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, *,
              clock_ppm: float = 0.0, clock_ppm_u95: float = 0.0,
              outlier_sigmas: float = 5.0, polarity_term: bool = True,
@@ -143,29 +173,7 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     >>> round(est.rate_s_per_day, 4)
     0.864
     """
-    k = np.asarray(steps, dtype=np.float64)
-    t = np.asarray(times_s, dtype=np.float64)
-    if k.shape != t.shape or k.ndim != 1:
-        raise ParameterError("steps and times_s must be 1-D arrays of the same length")
-    if len(k) < 3:
-        raise ParameterError(f"need at least 3 steps to fit a rate, got {len(k)}")
-    if not nominal_interval_s > 0:
-        raise ParameterError(f"nominal_interval_s={nominal_interval_s!r}: expected > 0")
-    polarity_term = polarity_term and len(np.unique(k % 2)) == 2 and len(k) >= 6
-    g = None if groups is None else np.asarray(groups)
-    if g is not None and g.shape != k.shape:
-        raise ParameterError("groups must have one entry per step")
-    if g is not None and len(np.unique(g)) == 1:
-        g = None
-    if g is not None and polarity_term and _one_polarity_groups(k, g):
-        polarity_term = False  # each group's intercept holds its polarity's offset
-    if weights is not None:
-        w = np.asarray(weights, dtype=np.float64)
-        if w.shape != k.shape or not np.all(w > 0):
-            raise ParameterError("weights must be positive, one per step")
-        sw_all = np.sqrt(w / w.mean())
-    else:
-        sw_all = None
+    k, t, polarity_term, g, sw_all = _checked(steps, times_s, nominal_interval_s, polarity_term, groups, weights)
     keep = _inliers(k, t, polarity_term, g, sw_all, outlier_sigmas, min_keep=3)
     kk, tt = k[keep], t[keep]
     gg = None if g is None else g[keep]
@@ -174,75 +182,29 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     b, a, c, res_t = _lsq(kk, tt, polarity_term, gg, sw)
     res = res_t if sw is None else res_t * sw  # the statistics below are of the weighted residuals
     n_groups = 1 if gg is None else len(np.unique(gg))
-    if gg is None and sw is None:
-        sxx = float(np.sum((kk - kk.mean()) ** 2))
-        span_steps = float(kk.max() - kk.min()) + 1
-    else:
-        sxx = span_steps = 0.0
-        for v in (np.unique(gg) if gg is not None else [None]):
-            sel = slice(None) if v is None else gg == v
-            kv = kk[sel]
-            wv = np.ones(len(kv)) if sw is None else sw[sel] ** 2
-            sxx += float(np.sum(wv * (kv - np.average(kv, weights=wv)) ** 2))
-            span_steps += float(kv.max() - kv.min()) + 1
+    sxx, span_steps = _spread_of_steps(kk, gg, sw)
     dof = max(n - 1 - n_groups - int(polarity_term), 1)
     s2 = float(np.sum(res**2)) / dof
-    # lag-1 autocorrelation over consecutive steps only (of the same group)
     order = np.argsort(kk, kind="stable") if gg is None else np.lexsort((kk, gg))
     kk_o, res_o = kk[order], res[order]
     same = np.ones(len(kk_o) - 1, dtype=bool) if gg is None else np.diff(gg[order]) == 0
-    adj = np.flatnonzero((np.diff(kk_o) == 1) & same)
-    rho = 0.0
-    if len(adj) >= 8 and s2 > 0:
-        rho = float(np.sum(res_o[adj] * res_o[adj + 1]) / np.sum(res_o**2) * n / max(len(adj), 1))
-        rho = min(max(rho, -0.5), 0.98)
+    consecutive = (np.diff(kk_o) == 1) & same  # pairs of consecutive steps (of the same group)
+    rho = _lag1_correlation(res_o, consecutive, s2, n)
     infl = (1 + rho) / (1 - rho)
     var_b = s2 / sxx * infl if sxx > 0 else float("inf")
-    # Second view: the two noise types of time-and-frequency metrology, white phase noise
-    # (each step time scattered independently) and white frequency noise (each interval
-    # scattered independently: the phase wanders as a random walk).  From the intervals
-    # d_k of consecutive steps: var(d) = 2 s_pm^2 + s_fm^2 and cov(d_k, d_k+1) = -s_pm^2.
-    # OLS slope variance: s_pm^2 / Sxx (= 12 s_pm^2 / N^3) + (6/5) s_fm^2 / N (large-N forms; from memory).
-    if len(adj) >= 8:
-        d = np.diff(res_o)[(np.diff(kk_o) == 1) & same]  # residual intervals: line and polarity removed
-        d = d - d.mean()
-        c1 = float(np.mean(d[:-1] * d[1:])) if len(d) > 2 else 0.0
-        s_pm2 = max(-c1, 0.0)
-        vd = float(np.mean(d * d))
-        s_fm2 = max(vd - 2 * s_pm2, 0.0)
-        if s_fm2 < 3.0 * vd * np.sqrt(2.0 / len(d)):  # not significant: sampling scatter alone
-            s_fm2 = 0.0
-        var_mix = s_pm2 / sxx + 1.2 * s_fm2 / span_steps
-        if var_mix > var_b:
-            infl = max(infl, var_mix / (s2 / sxx)) if s2 > 0 and sxx > 0 else infl
-            var_b = var_mix
+    var_mix = _phase_frequency_variance(res_o, consecutive, sxx, span_steps)
+    if var_mix is not None and var_mix > var_b:
+        infl = max(infl, var_mix / (s2 / sxx)) if s2 > 0 and sxx > 0 else infl
+        var_b = var_mix
     n_eff = max(3.0, n / infl)
-    # Third view: slow structure neither model above describes -- a level shift where a lossy codec
-    # changes mode (low-bitrate Opus moved every step by 30-50 us at once, mid-recording) or a
-    # phone's gain control changes its state, a room warming up.  The residuals are averaged over
-    # 8 consecutive stretches (the method of batch means for correlated data; from memory) and the
-    # slope is then known only as well as a line through those 8 means determines it.  This view
-    # is taken only when its variance exceeds the models' by 2.80, the 99th percentile of
-    # chi2(6)/6, so that residuals the models describe seldom widen the interval.
-    # (Also for a lossy file's weighted stretches: a codec's timing error also drifts smoothly with
-    # a step's place in its frames; not for a log's wall-joined segments, whose drifts the
-    # white-frequency view describes.)
-    nb = 8
-    if (gg is None or sw is not None) and n >= 8 * nb:
-        parts = np.array_split(np.argsort(kk, kind="stable"), nb)
-        # (weighted) batch means, and a line through them weighted by each batch's total weight;
-        # unweighted, every batch counts alike
-        wv = np.ones(n) if sw is None else sw * sw
-        wb = np.ones(nb) if sw is None else np.array([wv[i].sum() for i in parts])
-        kb = np.array([np.average(kk[i], weights=wv[i]) for i in parts])
-        rb = np.array([np.average(res_t[i], weights=wv[i]) for i in parts])
-        kc = kb - np.average(kb, weights=wb)
-        sxx_b = float(np.sum(wb * kc * kc))
-        e = rb - np.average(rb, weights=wb) - kc * (float(np.sum(wb * kc * rb)) / sxx_b)
-        var_bm = float(np.sum(wb * e * e)) / (nb - 2) / sxx_b
+    # (a lossy file's weighted stretches too: a codec's timing error also drifts smoothly with a
+    # step's place in its frames; not a log's wall-joined segments, whose drifts the
+    # white-frequency view describes)
+    if (gg is None or sw is not None) and n >= 8 * BATCHES:
+        var_bm = _batch_means_variance(kk, res_t, sw)
         if var_bm > BATCH_VIEW_F * var_b:
             var_b = var_bm
-            n_eff = float(nb)
+            n_eff = float(BATCHES)
     q = dsp.t_ppf(0.975, max(n_eff - 2, 1))
     se_b = math.sqrt(var_b)
     scale = 1.0 + clock_ppm * 1e-6
@@ -263,6 +225,77 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         clock_correction_ppm=float(clock_ppm),
         polarity_offset_us=float(c * 1e6),
     )
+
+
+def _spread_of_steps(kk: np.ndarray, gg: np.ndarray | None, sw: np.ndarray | None) -> tuple[float, float]:
+    """The (weighted) sum of squares of the step numbers about their group means, and the groups'
+    summed spans in steps: the slope's variance is s^2 / Sxx."""
+    if gg is None and sw is None:
+        return float(np.sum((kk - kk.mean()) ** 2)), float(kk.max() - kk.min()) + 1
+    sxx = span_steps = 0.0
+    for v in (np.unique(gg) if gg is not None else [None]):
+        sel = slice(None) if v is None else gg == v
+        kv = kk[sel]
+        wv = np.ones(len(kv)) if sw is None else sw[sel] ** 2
+        sxx += float(np.sum(wv * (kv - np.average(kv, weights=wv)) ** 2))
+        span_steps += float(kv.max() - kv.min()) + 1
+    return sxx, span_steps
+
+
+def _lag1_correlation(res_o: np.ndarray, consecutive: np.ndarray, s2: float, n: int) -> float:
+    """Lag-1 autocorrelation of the residuals (in step order) over consecutive steps only, held to
+    -0.5 .. 0.98 (first view: AR(1) residuals widen the interval by (1 + rho) / (1 - rho))."""
+    adj = np.flatnonzero(consecutive)
+    if len(adj) < 8 or not s2 > 0:
+        return 0.0
+    rho = float(np.sum(res_o[adj] * res_o[adj + 1]) / np.sum(res_o**2) * n / max(len(adj), 1))
+    return min(max(rho, -0.5), 0.98)
+
+
+def _phase_frequency_variance(res_o: np.ndarray, consecutive: np.ndarray, sxx: float,
+                              span_steps: float) -> float | None:
+    """Second view: the slope's variance under the two noise types of time-and-frequency metrology.
+
+    White phase noise (each step time scattered independently) and white frequency noise (each
+    interval scattered independently: the phase wanders as a random walk).  From the intervals
+    d_k of consecutive steps: var(d) = 2 s_pm^2 + s_fm^2 and cov(d_k, d_k+1) = -s_pm^2.  OLS slope
+    variance: s_pm^2 / Sxx (= 12 s_pm^2 / N^3) + (6/5) s_fm^2 / N (large-N forms; from memory).
+    None with fewer than 8 consecutive pairs.
+    """
+    if np.count_nonzero(consecutive) < 8:
+        return None
+    d = np.diff(res_o)[consecutive]  # residual intervals: line and polarity removed
+    d = d - d.mean()
+    c1 = float(np.mean(d[:-1] * d[1:])) if len(d) > 2 else 0.0
+    s_pm2 = max(-c1, 0.0)
+    vd = float(np.mean(d * d))
+    s_fm2 = max(vd - 2 * s_pm2, 0.0)
+    if s_fm2 < 3.0 * vd * np.sqrt(2.0 / len(d)):  # not significant: sampling scatter alone
+        s_fm2 = 0.0
+    return s_pm2 / sxx + 1.2 * s_fm2 / span_steps
+
+
+def _batch_means_variance(kk: np.ndarray, res_t: np.ndarray, sw: np.ndarray | None) -> float:
+    """Third view: slow structure neither model describes, by the method of batch means.
+
+    A level shift where a lossy codec changes mode (low-bitrate Opus moved every step by 30-50 us
+    at once, mid-recording) or a phone's gain control changes its state, a room warming up.  The
+    residuals are averaged over ``BATCHES`` consecutive stretches (the method of batch means for
+    correlated data; from memory) and the slope is then known only as well as a line through
+    those means determines it (weighted by each batch's total weight; unweighted, every batch
+    counts alike).  The caller takes this view only when its variance exceeds the models' by
+    ``BATCH_VIEW_F``, so that residuals the models describe seldom widen the interval.
+    """
+    nb = BATCHES
+    parts = np.array_split(np.argsort(kk, kind="stable"), nb)
+    wv = np.ones(len(kk)) if sw is None else sw * sw
+    wb = np.ones(nb) if sw is None else np.array([wv[i].sum() for i in parts])
+    kb = np.array([np.average(kk[i], weights=wv[i]) for i in parts])
+    rb = np.array([np.average(res_t[i], weights=wv[i]) for i in parts])
+    kc = kb - np.average(kb, weights=wb)
+    sxx_b = float(np.sum(wb * kc * kc))
+    e = rb - np.average(rb, weights=wb) - kc * (float(np.sum(wb * kc * rb)) / sxx_b)
+    return float(np.sum(wb * e * e)) / (nb - 2) / sxx_b
 
 
 def residuals_s(steps: np.ndarray, times_s: np.ndarray, *, polarity_term: bool = True) -> np.ndarray:

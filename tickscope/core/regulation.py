@@ -65,9 +65,21 @@ def detect_inhibition(k: np.ndarray, t: np.ndarray, nominal_s: float, *, clock_p
     if np.any(par == 0) and np.any(par == 1):
         m0, m1, mall = np.mean(d[par == 0]), np.mean(d[par == 1]), np.mean(d)
         d = d - np.where(par == 0, m0, m1) + mall
-    span_steps = int(k.max() - k.min())
+    best = _fold_search(kd, d, nominal_s, int(k.max() - k.min()), min_periods)
+    if best is None or best[0] < z_min:
+        return None
+    # The smallest correction a 32768 Hz divider can make is one pulse, 30.5 us; anything
+    # under half of that is not logic regulation.
+    if best[3] < 0.5 / CRYSTAL_HZ:
+        return None
+    z, m, j = best[0], best[1], best[2]
+    return _regulation_model(k, t, m, j, nominal_s, clock_ppm, clock_ppm_u95, kd, float(z))
+
+
+def _fold_search(kd: np.ndarray, d: np.ndarray, step_s: float, span_steps: int, min_periods: int):
+    """The fold of the intervals ``d`` (ending at steps ``kd``) whose one phase stands out most:
+    (z, period in steps, phase, excess s, its standard error), or None."""
     best = None
-    step_s = nominal_s
     # Periods up to a fifth of the record, and no longer than 30 minutes: published periods run
     # from seconds to about 20 minutes (see the domain notes); each period costs a pass over
     # every interval, so an unbounded search grows with the square of the record's length.
@@ -105,16 +117,14 @@ def detect_inhibition(k: np.ndarray, t: np.ndarray, nominal_s: float, *, clock_p
         z = excess / se
         if best is None or z > best[0]:
             best = (z, m, j, excess, se)
-    if best is None or best[0] < z_min:
-        return None
-    # The smallest correction a 32768 Hz divider can make is one pulse, 30.5 us; anything
-    # under half of that is not logic regulation.
-    if best[3] < 0.5 / CRYSTAL_HZ:
-        return None
-    z, m, j, excess, se = best
-    # One least-squares model of the step times: t = a + b_fast k + J n(k) + c [k odd], with
-    # n(k) the number of corrections before step k.  The regulated (mean) interval is
-    # b_fast + J/m, and its variance comes from the model's covariance.
+    return best
+
+
+def _regulation_model(k: np.ndarray, t: np.ndarray, m: int, j: int, nominal_s: float, clock_ppm: float,
+                      clock_ppm_u95: float, kd: np.ndarray, z: float) -> Inhibition:
+    """One least-squares model of the step times at the found period and phase:
+    t = a + b_fast k + J n(k) + c [k odd], n(k) the number of corrections before step k.
+    The regulated (mean) interval is b_fast + J/m; its variance comes from the model's covariance."""
     kk = k.astype(np.float64)
     ncorr = np.floor((k - j) / m) - np.floor((k.min() - j) / m)
     X = np.vstack([np.ones_like(kk), kk - kk.mean(), ncorr - ncorr.mean(), (k % 2) - 0.5]).T
@@ -147,6 +157,6 @@ def detect_inhibition(k: np.ndarray, t: np.ndarray, nominal_s: float, *, clock_p
         regulated_rate_s_per_day=reg,
         regulated_ci95_s_per_day=reg_ci,
         periods_observed=int(np.count_nonzero((kd % m) == j)),
-        z_score=float(z),
+        z_score=z,
         phase_step=j,
     )

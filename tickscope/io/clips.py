@@ -18,12 +18,12 @@ class ClipKeeper:
 
     def __init__(self, samplerate: float, budget_bytes: int, used_bytes: int = 0, *, pre_s: float = 0.6,
                  post_s: float = 1.0, min_spacing_s: float = 20.0):
-        self.fs = float(samplerate)
+        self.samplerate = float(samplerate)
         self.budget = budget_bytes
         self.used = used_bytes
         self.pre_s, self.post_s = pre_s, post_s
         self.min_spacing_s = min_spacing_s
-        n = int(round((pre_s + post_s + 6.0) * self.fs))  # decisions come up to ~3 s after the sound
+        n = int(round((pre_s + post_s + 6.0) * self.samplerate))  # decisions come up to ~3 s after the sound
         self._ring = np.zeros(n, dtype=np.float32)
         self._end = 0  # stream sample index just after the ring's newest sample
         self._pending: list[tuple[str, float]] = []
@@ -34,7 +34,7 @@ class ClipKeeper:
         x = np.asarray(block.samples, dtype=np.float32).reshape(-1)
         if start_sample != self._end:  # a gap: the ring restarts
             self._ring[:] = 0
-        need = len(x) + int(round((self.pre_s + self.post_s + 6.0) * self.fs))
+        need = len(x) + int(round((self.pre_s + self.post_s + 6.0) * self.samplerate))
         if len(self._ring) < need:  # a sound is decided up to a block after it: keep two blocks' worth
             self._ring = np.concatenate([np.zeros(need - len(self._ring), dtype=np.float32), self._ring])
         n = len(self._ring)
@@ -64,21 +64,21 @@ class ClipKeeper:
         import soundfile as sf
 
         out, keep = [], []
-        pos_s = self._end / self.fs
-        ring_start_s = (self._end - len(self._ring)) / self.fs
+        pos_s = self._end / self.samplerate
+        ring_start_s = (self._end - len(self._ring)) / self.samplerate
         for kind, t in self._pending:
             if t + self.post_s > pos_s:
                 keep.append((kind, t))
                 continue
             a = max(t - self.pre_s, ring_start_s, 0.0)
-            i0 = int(round((a - ring_start_s) * self.fs))
-            i1 = int(round((t + self.post_s - ring_start_s) * self.fs))
+            i0 = int(round((a - ring_start_s) * self.samplerate))
+            i1 = int(round((t + self.post_s - ring_start_s) * self.samplerate))
             seg = self._ring[max(i0, 0): max(i1, 0)]
-            if len(seg) < 0.1 * self.fs:
+            if len(seg) < 0.1 * self.samplerate:
                 self.skipped += 1
                 continue
             buf = io.BytesIO()
-            sf.write(buf, np.clip(seg, -1, 1), int(round(self.fs)), format="FLAC", subtype="PCM_16")
+            sf.write(buf, np.clip(seg, -1, 1), int(round(self.samplerate)), format="FLAC", subtype="PCM_16")
             data = buf.getvalue()
             if self.used + len(data) > self.budget:
                 self.skipped += 1

@@ -7,6 +7,7 @@ import os
 from dataclasses import asdict, dataclass
 
 from ..errors import ParameterError, StoreError
+from ..units import SECONDS_PER_DAY
 
 FILE = "clock-profiles.json"
 
@@ -29,7 +30,7 @@ class ClockProfile:
             t = dt.datetime.fromisoformat(self.created)
         except ValueError:
             return float("inf")
-        return (now - t).total_seconds() / 86400.0
+        return (now - t).total_seconds() / SECONDS_PER_DAY
 
 
 def config_dir() -> str:

@@ -110,7 +110,7 @@ class Segment:
     source_offset_s: float
     timeline_s: float
     join_kind: str
-    sample_rate_hz: float
+    samplerate: float  # column sample_rate_hz
     channel: int
     clock_ppm: float | None
     clock_ppm_u95: float
@@ -121,6 +121,11 @@ class Segment:
     duration_s: float
     decided_s: float
     end_reason: str | None
+
+
+#: Segment fields stored under another column name (the schema keeps its units in its names).
+_COLUMNS = {"samplerate": "sample_rate_hz"}
+_FIELDS = {v: k for k, v in _COLUMNS.items()}
 
 
 class LogStore:
@@ -215,6 +220,8 @@ class LogStore:
 
     # -- writing -----------------------------------------------------------------------------
     def new_segment(self, **f) -> int:
+        """A new segment row (fields of :class:`Segment`; the id is returned)."""
+        f = {_COLUMNS.get(k, k): v for k, v in f.items()}
         cols = ", ".join(f)
         q = ", ".join("?" for _ in f)
         self._begin()
@@ -251,11 +258,11 @@ class LogStore:
         with self._guard():
             self.db.execute(f"INSERT OR REPLACE INTO minutes ({cols}) VALUES ({q})", (seg, *row.values()))
 
-    def add_clip(self, seg: int, time_s: float, kind: str, sample_rate_hz: int, start_s: float, flac: bytes) -> None:
+    def add_clip(self, seg: int, time_s: float, kind: str, samplerate: int, start_s: float, flac: bytes) -> None:
         self._begin()
         with self._guard():
             self.db.execute("INSERT INTO clips VALUES (?, ?, ?, ?, ?, ?)",
-                            (seg, time_s, kind, sample_rate_hz, start_s, sqlite3.Binary(flac)))
+                            (seg, time_s, kind, samplerate, start_s, sqlite3.Binary(flac)))
 
     def clip_bytes(self) -> int:
         with self._guard():
@@ -288,7 +295,7 @@ class LogStore:
     def segments(self) -> list[Segment]:
         with self._guard():
             cur = self.db.execute("SELECT * FROM segments ORDER BY id")
-            names = [d[0] for d in cur.description]
+            names = [_FIELDS.get(d[0], d[0]) for d in cur.description]
             return [Segment(**dict(zip(names, r))) for r in cur.fetchall()]
 
     def events(self, seg: int | None = None, kinds: tuple[str, ...] | None = None) -> dict[str, np.ndarray]:

@@ -29,7 +29,7 @@ from .textreport import residual_strip
 @dataclass(frozen=True)
 class LiveStatus:
     source: str
-    samplerate_hz: float
+    samplerate: float
     channel: int
     elapsed_s: float
     level_dbfs: float  # peak of the last half second
@@ -184,5 +184,5 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
         parts.append(Text("! " + w, style="yellow", overflow="ellipsis", no_wrap=True))
     elapsed = f"{int(st.elapsed_s // 3600):02d}:{int(st.elapsed_s % 3600 // 60):02d}:{int(st.elapsed_s % 60):02d}"
     title = f"tickscope · {mode} · {st.source}"
-    sub = f"{st.samplerate_hz:g} Hz · ch {st.channel} · {elapsed}" + (f" · saving {st.saving_to}" if st.saving_to else "")
+    sub = f"{st.samplerate:g} Hz · ch {st.channel} · {elapsed}" + (f" · saving {st.saving_to}" if st.saving_to else "")
     return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.ROUNDED, width=width)

@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import ParameterError
+from ..units import SECONDS_PER_DAY
 
 
 def _plt():
@@ -139,7 +140,7 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
                     ms=4, capsize=3, color="tab:blue", label="overlapping ADEV, 95 % interval")
         ax.set_xscale("log")
         ax.set_yscale("log")
-        sec = ax.secondary_yaxis("right", functions=(lambda y: y * 86400, lambda y: y / 86400))
+        sec = ax.secondary_yaxis("right", functions=(lambda y: y * SECONDS_PER_DAY, lambda y: y / SECONDS_PER_DAY))
         sec.set_ylabel("as s/day")
         ax.legend(loc="best", fontsize=8)
     ax.set_xlabel("averaging time τ (s)")

@@ -18,6 +18,7 @@ from rich.text import Text
 
 from ..export import rate_words
 from ..model import Summary
+from ..units import s_per_day_to_ppm
 
 
 def _tlabel(v: float) -> str:
@@ -79,7 +80,31 @@ def _fmt(v: float | None, fmt: str, unit: str = "") -> str:
 
 def render_summary(s: Summary, *, source: str = "", width: int = 80) -> RenderableType:
     """The whole report as one rich renderable."""
-    parts: list[RenderableType] = []
+    parts: list[RenderableType] = [_headline(s), _readings(s)]
+
+    if s.sound == "stepping" and s.residuals_us is not None and len(s.residuals_us) >= 3:
+        parts.append(Panel(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, min(width - 20, 100))),
+                           title="timing residuals", title_align="left", box=box.ROUNDED, expand=False))
+    if s.ringdown:
+        parts += _ringdown_part(s)
+    if s.reading:
+        parts.append(Text("the repairer's reading", style="bold"))
+        for line in s.reading:
+            parts.append(Text("  • " + line))
+        if any(w in " ".join(s.reading) for w in ("cell", "margin", "tooth")):
+            parts.append(Text("  Before opening the case or changing the cell: keep button cells away from children, "
+                              "expect to re-test a water-resistant case, unplug mains clocks, work antistatic.",
+                              style="dim"))
+    if s.warnings:
+        parts.append(Text("notes", style="bold"))
+        for w in s.warnings:
+            parts.append(Text("  ! " + w, style="yellow"))
+    title = f"tickscope · {source}" if source else "tickscope"
+    sub = f"{s.duration_s:.1f} s · {s.samplerate:g} Hz · channel {s.channel}"
+    return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.HEAVY_HEAD, width=min(width, 120))
+
+
+def _headline(s: Summary) -> Text:
     r = s.rate
     head = Text()
     if s.sound == "stepping" and r is not None:
@@ -92,15 +117,19 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
         head.append(f" — beat interval heard {_fmt(s.measured_interval_s, '.5f', ' s')}; no rate claimed")
     else:
         head.append("No steps found", style="bold red")
-    parts.append(head)
+    return head
 
+
+def _readings(s: Summary) -> Table:
+    """The table of figures, each with what it rests on."""
+    r = s.rate
     tab = Table(box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, expand=False)
     tab.add_column("reading", style="bold")
     tab.add_column("value", justify="right")
     tab.add_column("basis", style="dim")
     if r is not None:
         tab.add_row("rate", f"{r.rate_s_per_day:+.4f} s/day", f"95 % ± {r.ci95_s_per_day:.4f}; "
-                    f"{r.rate_s_per_day / 0.0864:+.3f} ppm; line fit, residual corr {r.residual_correlation:+.2f}")
+                    f"{s_per_day_to_ppm(r.rate_s_per_day):+.3f} ppm; line fit, residual corr {r.residual_correlation:+.2f}")
         tb = s.time_base or (f"clock corrected by {r.clock_correction_ppm:+.3f} ppm"
                              if s.clock_calibrated else "device clock, uncalibrated")
         tab.add_row("time base", f"{r.clock_correction_ppm:+.2f} ppm" if s.clock_calibrated else "", tb)
@@ -127,40 +156,22 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
     tab.add_row("step level", _fmt(s.step_snr_db, ".1f", " dB"), f"above the noise floor; peak {s.peak_dbfs:.1f} dBFS")
     if s.hum_hz:
         tab.add_row("mains hum", f"{s.hum_hz:.0f} Hz", f"{s.hum_db:+.0f} dB over the floor")
-    parts.append(tab)
+    return tab
 
-    if s.sound == "stepping" and s.residuals_us is not None and len(s.residuals_us) >= 3:
-        parts.append(Panel(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, min(width - 20, 100))),
-                           title="timing residuals", title_align="left", box=box.ROUNDED, expand=False))
-    if s.ringdown:
-        rt = Table(box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False)
-        rt.add_column("polarity")
-        rt.add_column("decay τ, median", justify="right")
-        rt.add_column("IQR", justify="right")
-        rt.add_column("T60", justify="right")
-        rt.add_column("steps", justify="right")
-        rt.add_column("abnormal", justify="right")
-        rt.add_column("bent", justify="right")
-        for p, v in sorted(s.ringdown.items()):
-            rt.add_row(p, f"{v.decay_ms_median:.2f} ms", f"{v.decay_ms_iqr:.2f} ms", f"{6.908 * v.decay_ms_median:.1f} ms",
-                       str(v.n), str(v.n_abnormal), str(v.n_bent))
-        parts.append(Text("ring-down (amplitude e-folding time)", style="bold"))
-        parts.append(rt)
-    if s.reading:
-        parts.append(Text("the repairer's reading", style="bold"))
-        for line in s.reading:
-            parts.append(Text("  • " + line))
-        if any(w in " ".join(s.reading) for w in ("cell", "margin", "tooth")):
-            parts.append(Text("  Before opening the case or changing the cell: keep button cells away from children, "
-                              "expect to re-test a water-resistant case, unplug mains clocks, work antistatic.",
-                              style="dim"))
-    if s.warnings:
-        parts.append(Text("notes", style="bold"))
-        for w in s.warnings:
-            parts.append(Text("  ! " + w, style="yellow"))
-    title = f"tickscope · {source}" if source else "tickscope"
-    sub = f"{s.duration_s:.1f} s · {s.samplerate:g} Hz · channel {s.channel}"
-    return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.HEAVY_HEAD, width=min(width, 120))
+
+def _ringdown_part(s: Summary) -> list[RenderableType]:
+    rt = Table(box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False)
+    rt.add_column("polarity")
+    rt.add_column("decay τ, median", justify="right")
+    rt.add_column("IQR", justify="right")
+    rt.add_column("T60", justify="right")
+    rt.add_column("steps", justify="right")
+    rt.add_column("abnormal", justify="right")
+    rt.add_column("bent", justify="right")
+    for p, v in sorted(s.ringdown.items()):
+        rt.add_row(p, f"{v.decay_ms_median:.2f} ms", f"{v.decay_ms_iqr:.2f} ms", f"{6.908 * v.decay_ms_median:.1f} ms",
+                   str(v.n), str(v.n_abnormal), str(v.n_bent))
+    return [Text("ring-down (amplitude e-folding time)", style="bold"), rt]
 
 
 def _diagnosis_rows(tab, dg) -> None:

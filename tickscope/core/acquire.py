@@ -1,0 +1,333 @@
+"""Finding the step grid: the interval, the steps' phase and the polarity templates.
+
+From the impacts of the first seconds (:class:`OpenImpact` rows), :func:`find_grid` finds
+
+1. the step interval: the longest period on which the impacts line up (a phase-coherence scan,
+   like a Rayleigh test), multiplied up where only every m-th slot holds sound;
+2. the nominal interval: the nearest interval quartz movements use, within a tolerance; near
+   one, the steps are gathered on the nominal grid at the steps' own phase;
+3. one step per slot, then again on the line fitted through those steps;
+4. a template per polarity (even and odd steps) from those steps, and their fine times.
+
+:class:`~tickscope.core.grid.StepTracker` calls it until a grid is found, then tracks it.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from .detect import Impact
+from .timing import Template, envelope_lag, learn_template, match
+
+if TYPE_CHECKING:
+    from .grid import TrackerConfig
+
+#: Step intervals of quartz movements (s): 2^-k fractions of a second for stepping
+#: sweep hands, and the PCA2002 output periods 1, 5, 10, 20, 30 s (NXP PCA2002
+#: datasheet Rev. 8, Table 7) plus 2 s and 60 s (common practice), and 4 s: the end-of-life
+#: burst period of the Philips PCA16xx ("bursts of 4 pulses are produced every 4 s").
+QUARTZ_INTERVALS_S = (1 / 16, 1 / 8, 1 / 4, 1 / 2, 1.0, 2.0, 4.0, 5.0, 10.0, 20.0, 30.0, 60.0)
+
+
+
+@dataclass
+class OpenImpact:
+    """An impact the tracker has not decided yet, with its best time so far."""
+
+    imp: Impact
+    t_s: float  # best time estimate (coarse until templates exist)
+    slot: int | None = None
+    match: float = float("nan")  # against the template of its slot's polarity
+    match_any: float = float("nan")  # against either polarity's template
+
+
+def find_interval(times_s: np.ndarray, weights: np.ndarray | None = None, *,
+                  min_s: float = 0.05, max_s: float | None = None,
+                  max_impacts: int = 160) -> tuple[float, float, float] | None:
+    """Longest period on which the impact times line up.
+
+    Returns ``(interval_s, phase_s, coherence)`` or None.  The coherence of a period P is
+    ``|sum w exp(2 pi i t / P)| / sum w``: 1 when every impact sits on the same phase.
+    Fractions of the true interval (P/2, P/3 ...) line up too, so the longest period whose
+    coherence is close to the best one is taken.
+    """
+    t = np.asarray(times_s, dtype=np.float64)
+    if len(t) < 3:
+        return None
+    w = np.ones(len(t)) if weights is None else np.asarray(weights, dtype=np.float64)
+    span = float(t[-1] - t[0])
+    if span <= 0:
+        return None
+    max_s = min(max_s or span / 2, span / 2)
+    if max_s <= min_s:
+        return None
+    if len(t) > max_impacts:  # the strongest impacts carry the pattern; the rest cost time
+        top = np.sort(np.argsort(w)[-max_impacts:])
+        t, w = t[top], w[top]
+    tt = t - t[0]
+    # relative resolution 5e-4 (0.05 %): phases drift at most ~0.2 cycles across 40 s at 50 ms
+    step = 5e-4
+    periods = np.exp(np.arange(math.log(min_s), math.log(max_s), step))
+    coh = np.empty(len(periods))
+    W = w.sum()
+    for i in range(0, len(periods), 512):
+        P = periods[i: i + 512]
+        ph = np.exp(2j * np.pi * tt[None, :] / P[:, None])
+        coh[i: i + 512] = np.abs(ph @ w) / W
+    best = float(coh.max())
+    if best <= 0:
+        return None
+    # local maxima close to the best; take the longest period among them
+    good = np.flatnonzero(coh >= 0.8 * best)
+    j = int(good[-1])
+    # climb to the local maximum around j
+    while j + 1 < len(coh) and coh[j + 1] >= coh[j]:
+        j += 1
+    while j - 1 >= 0 and coh[j - 1] > coh[j]:
+        j -= 1
+    P = float(periods[j])
+    phase = float(np.angle(np.sum(w * np.exp(2j * np.pi * tt / P)))) / (2 * np.pi) * P
+    return P, t[0] + phase % P, float(coh[j])
+
+
+def _step_phase(t: np.ndarray, w: np.ndarray, P: float, sound_s: float) -> float:
+    """Time of the steps' phase on a grid of interval P: the earliest strong cluster of impact phases.
+
+    The impacts' phases modulo P are gathered in 1 ms bins (weights ``w``) and smoothed over
+    +-4 ms (a few ms of drift across the window).  The strongest cluster may be a step's later
+    impact (a bounce as loud as the step): the earliest cluster within ``sound_s`` before it
+    that holds at least half its weight is the steps' first impact.
+    """
+    nb = max(16, min(20000, int(round(P / 0.001))))
+    bw = P / nb
+    ph = np.mod(t - t[0], P)
+    hist = np.bincount(np.minimum((ph / bw).astype(np.int64), nb - 1), weights=w, minlength=nb)
+    half = max(1, int(round(0.004 / bw)))
+    ext = np.concatenate([hist[-half:], hist, hist[:half]])
+    cs = np.concatenate([[0.0], np.cumsum(ext)])
+    dens = cs[2 * half + 1:] - cs[: len(cs) - 2 * half - 1]  # circular box sum, one per bin
+    top = int(np.argmax(dens))
+    reach = int(round(min(sound_s, 0.45 * P) / bw))
+    for j in range(reach, 0, -1):  # earliest first
+        c = (top - j) % nb
+        if dens[c] >= 0.5 * dens[top] and dens[c] >= dens[(c - 1) % nb] and dens[c] >= dens[(c + 1) % nb]:
+            return float(t[0] + c * bw)
+    return float(t[0] + top * bw)
+
+
+def _grid_line(chosen: dict) -> tuple[np.ndarray, np.ndarray, float, float, np.ndarray]:
+    """Slot numbers, times, the line t = a + b k through them (outliers left out) and which were kept."""
+    ks = np.array(sorted(chosen))
+    ts = np.array([chosen[k].t_s for k in ks])
+    b, a = np.polyfit(ks, ts, 1)
+    res = ts - (a + b * ks)
+    keep = np.abs(res - np.median(res)) < max(0.005, 4 * np.median(np.abs(res - np.median(res))) + 1e-4)
+    if keep.sum() >= 3:
+        b, a = np.polyfit(ks[keep], ts[keep], 1)
+    return ks, ts, float(a), float(b), keep
+
+
+def _line_spread(chosen: dict) -> float:
+    """Median absolute deviation (s) of the chosen impacts from the line through them."""
+    ks = np.array(sorted(chosen), dtype=np.float64)
+    ts = np.array([chosen[int(k)].t_s for k in ks])
+    b, a = np.polyfit(ks, ts, 1)
+    return float(np.median(np.abs(ts - (a + b * ks))))
+
+
+def nominal_interval(measured_s: float, tolerance: float = 0.005) -> float | None:
+    """The quartz step interval within ``tolerance`` (relative) of a measured one, or None."""
+    for c in QUARTZ_INTERVALS_S:
+        if abs(measured_s / c - 1) <= tolerance:
+            return c
+    return None
+
+
+
+
+@dataclass(frozen=True)
+class Grid:
+    """A step grid found in the first impacts.
+
+    ``a``, ``b``: the line ``t = a + b k`` with the first chosen step as slot 0 (refitted on the
+    fine times when three or more matched well); ``fine_k``, ``fine_t_s``: those steps.
+    """
+
+    measured_s: float
+    nominal_s: float | None
+    coherence: float
+    a: float
+    b: float
+    templates: dict[int, Template]
+    fine_k: list[int]
+    fine_t_s: list[float]
+
+
+def impact_weights(buf: list[OpenImpact]) -> np.ndarray:
+    """How much each impact counts in the search: its SNR against the loud end, capped.
+
+    Impacts that stand far above the noise floor count most (the level alone can mislead: a
+    phone's gain control lifts the noise between steps to the steps' level).  A sound out of
+    digital silence stands 200 dB over its "floor" (the detector's floor has not yet risen to
+    the room's noise): each impact's floor is taken no lower than the median floor of the
+    window, and the SNR is capped at 60 dB.  Behind a noise gate every sound rises out of
+    digital silence: the floor is also taken no lower than 50 dB under the loud end, so that a
+    second clock 12 dB down stands 12 dB less far above it than the movement (both would
+    otherwise pass any cap and weigh the same).  Weights are relative to the loud end (90th
+    percentile: the steps, while they are a tenth of the sounds or more), so the faint noise
+    impacts of a quiet room -- several a second at 8 kHz, four for every step -- weigh little;
+    capped so that no single knock dominates.
+    """
+    snr = np.array([o.imp.frame_snr_db for o in buf])
+    peak = np.array([o.imp.peak_dbfs for o in buf])
+    floor = np.maximum(np.maximum(peak - snr, np.median(peak - snr)), np.percentile(peak, 90) - 50.0)
+    snr = np.minimum(peak - floor, 60.0)
+    return np.clip(10 ** ((snr - np.percentile(snr, 90)) / 10), 0.02, 2.0)
+
+
+def _grow_period(t: np.ndarray, w: np.ndarray, P: float, phase: float) -> tuple[float, float]:
+    """A fraction of the true interval lines up too; if only every m-th slot of the grid holds
+    sound (m = 2, 3 or 5; the others (nearly) empty), the interval is m times as long."""
+    for _ in range(4):
+        kk = np.round((t - phase) / P).astype(np.int64)
+        near = np.abs(t - (phase + kk * P)) <= 0.3 * P  # wide: the phase may be pulled by a bounce
+        grown = False
+        for m in (2, 3, 5):
+            if t[-1] - t[0] < 2 * m * P:
+                continue
+            cw = np.array([float(np.sum(w[near & (kk % m == c)])) for c in range(m)])
+            c_best = int(np.argmax(cw))
+            if np.all(np.delete(cw, c_best) < 0.2 * cw[c_best]):
+                phase += c_best * P
+                P *= m
+                grown = True
+                break
+        if not grown:
+            break
+    return P, phase
+
+
+def find_grid(buf: list[OpenImpact], cfg: "TrackerConfig", samplerate: float, pre: int) -> Grid | None:
+    """The step grid of the impacts in ``buf`` (time order), or None when they hold none."""
+    if len(buf) < 3:
+        return None
+    t = np.array([o.t_s for o in buf])
+    w = impact_weights(buf)
+    found = find_interval(t, w)
+    if found is None or found[2] < cfg.min_coherence:
+        return None
+    P, phase, coh = found
+    P, phase = _grow_period(t, w, P, phase)
+    # The coherence peak is broad over a few seconds, and its phase is a weighted mean over
+    # everything that repeats with the step (a bounce, a burst, a phone's gain pumping, a second
+    # clock at nearly the same rate): the interval can be skewed by tenths of a percent and the
+    # phase by tens of ms.  A quartz movement (and the recording's clock) runs within a few
+    # hundred ppm of its nominal interval, so near one (2 %, our own margin: gain pumping has skewed the peak
+    # by 0.7 %; the line fitted through the steps must still land within the nominal tolerance
+    # below) the steps are gathered on the nominal grid at their own phase (see _step_phase).
+    nom = nominal_interval(P, 4 * cfg.nominal_tolerance)
+    if nom is not None:
+        P = nom
+    tol = min(0.2 * P, 0.06)
+    if nom is not None:
+        phase = _step_phase(t, w, P, cfg.cluster_s if P < 1.5 else cfg.burst_cluster_s)
+        back = tol
+    else:
+        # the slot's first sound may lie well before the coherence phase (bursts)
+        back = min(0.25 * P, 0.35) if P >= 1.5 else tol
+    # one step per slot (see _pick_steps), then again on the line fitted through those steps
+    chosen = _pick_steps(buf, phase, P, back, tol)
+    if len(chosen) < 3:
+        return None
+    ks, ts, a, b, keep = _grid_line(chosen)
+    refined = _pick_steps(buf, a, b, tol, tol)
+    if len(refined) >= 3:
+        chosen = refined
+        ks, ts, a, b, keep = _grid_line(chosen)
+    k0 = int(ks[0])
+    templates = _learn_templates(chosen, ks[keep] if keep.sum() >= 3 else ks, k0, cfg, samplerate, pre)
+    fine_k, fine_t = _fine_times(chosen, ks, k0, templates, cfg, samplerate)
+    line_a, line_b = a + b * k0, b
+    if len(fine_k) >= 3:  # refit the grid on the fine times
+        line_b, line_a = np.polyfit(fine_k, fine_t, 1)
+    return Grid(measured_s=float(b), nominal_s=nominal_interval(b, cfg.nominal_tolerance), coherence=coh,
+                a=line_a, b=line_b, templates=templates, fine_k=fine_k, fine_t_s=fine_t)
+
+
+def _learn_templates(chosen: dict[int, OpenImpact], ks: np.ndarray, k0: int, cfg: "TrackerConfig",
+                     samplerate: float, pre: int) -> dict[int, Template]:
+    """A template per polarity (parity of the step number) from the chosen steps."""
+    templates: dict[int, Template] = {}
+    by_pol: dict[int, list[np.ndarray]] = {0: [], 1: []}
+    for k in ks:
+        pol = (int(k) - k0) % 2
+        if len(by_pol[pol]) < cfg.template_steps:
+            by_pol[pol].append(chosen[int(k)].imp.wsnippet)
+    for pol in (0, 1):
+        if len(by_pol[pol]) >= 2:
+            templates[pol] = learn_template(by_pol[pol], samplerate, pre=pre)
+    if not templates:
+        templates[0] = learn_template(by_pol[0] or by_pol[1], samplerate, pre=pre)
+    for pol in (0, 1):
+        if pol not in templates:
+            templates[pol] = templates[1 - pol]
+    if templates[1] is not templates[0]:
+        # Each template's onset came from its own envelope threshold, which noise or a
+        # phone's gain control can push around.  Tie B's onset to A's by aligning the
+        # two envelopes, so the polarity offset measures the sounds, not the thresholds.
+        templates[1] = dataclasses.replace(
+            templates[1], onset_index=templates[0].onset_index
+            + envelope_lag(templates[0].wave, templates[1].wave, samplerate))
+    return templates
+
+
+def _fine_times(chosen: dict[int, OpenImpact], ks: np.ndarray, k0: int, templates: dict[int, Template],
+                cfg: "TrackerConfig", samplerate: float) -> tuple[list[int], list[float]]:
+    """The chosen steps timed against their templates (those that match well), numbered from k0."""
+    fine_k, fine_t = [], []
+    for k in ks:
+        o = chosen[int(k)]
+        kk = int(k) - k0
+        lag, rho = match(o.imp.wsnippet, templates[kk % 2], max_lag=int(0.002 * samplerate))
+        if rho >= cfg.good_match:
+            fine_k.append(kk)
+            fine_t.append((o.imp.snippet_start + templates[kk % 2].onset_index + lag) / samplerate)
+    return fine_k, fine_t
+
+
+def _pick_steps(buf: list[OpenImpact], phase: float, P: float, back: float, tol: float) -> dict[int, OpenImpact]:
+    """The step of each slot ``phase + k P`` among the impacts from ``back`` before it to ``tol`` after.
+
+    A step's sound can hold several impacts (a hand's bounce as loud as the step): the step
+    is the earliest impact within 6 dB of the slot's loudest.  But where that earliest one is
+    a different sound -- a quieter second clock ticking just before -- the loudest impacts
+    form the movement's line: when the loudest and the earliest differ by a delay that is not
+    the same from slot to slot (a bounce follows its step at a fixed delay), the chain of
+    impacts that lines up better is taken, the loudest on a tie.
+    """
+    near: dict[int, list[OpenImpact]] = {}
+    for o in buf:
+        k = int(round((o.t_s - phase + 0.5 * (back - tol)) / P))
+        r = o.t_s - (phase + k * P)
+        if -back <= r <= tol:
+            near.setdefault(k, []).append(o)
+    early: dict[int, OpenImpact] = {}
+    loud: dict[int, OpenImpact] = {}
+    for k, group in near.items():
+        top = max(o.imp.frame_snr_db for o in group)
+        early[k] = min((o for o in group if o.imp.frame_snr_db >= top - 6.0), key=lambda o: o.t_s)
+        loud[k] = max(group, key=lambda o: o.imp.frame_snr_db)
+    differ = [k for k in early if early[k] is not loud[k]]
+    if len(differ) < 3 or len(early) < 4:
+        return early
+    delays = np.array([loud[k].t_s - early[k].t_s for k in differ])
+    if float(np.std(delays)) < 0.002:
+        return early  # the same step's later impact, at a fixed delay (2 ms: our own margin)
+    spread_early = _line_spread(early)
+    spread_loud = _line_spread(loud)
+    return loud if spread_loud <= max(2 * spread_early, spread_early + 0.0005) else early
+
