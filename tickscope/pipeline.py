@@ -52,6 +52,20 @@ class _Column:
             self.n = n
 
 
+#: The analyzer's record: groups of aligned columns (attribute, StepArrays field or None, dtype).
+_COLUMNS = (
+    (("step_k", "k", np.int64), ("step_t", "t_s", np.float64), ("step_pol", "pol", np.int8),
+     ("step_match", "match", np.float32), ("step_decay", "decay_ms", np.float32), ("step_snr", "snr_db", np.float32),
+     ("step_peak", "peak_dbfs", np.float32), ("step_flags", "flags", np.int16)),
+    (("missed_t", "missed_t_s", np.float64), ("missed_k", "missed_k", np.int64)),
+    (("failed_k", "failed_k", np.int64), ("failed_t", "failed_t_s", np.float64)),
+    (("correction_k", "correction_k", np.int64),),
+    (("sec_k", "sec_k", np.int64), ("sec_delay", "sec_delay_s", np.float64)),  # step-like later sounds of a slot
+    (("rejected_snr", None, np.float32),),
+    (("other_t", "other_t_s", np.float64), ("other_peak", "other_peak_dbfs", np.float32)),  # every sound not a step
+)
+
+
 class Analyzer:
     """Streaming analysis of one channel of audio.
 
@@ -90,24 +104,10 @@ class Analyzer:
         self.tracker = StepTracker(samplerate, self.detector.pre, tracker,
                                    emit_delay_s=(self.detector.post + 2 * self.detector.hop) / samplerate)
         self._pos = 0  # samples fed so far (including zeros fed for gaps)
-        self.step_k = _Column(np.int64)
-        self.step_t = _Column(np.float64)
-        self.step_pol = _Column(np.int8)
-        self.step_match = _Column(np.float32)
-        self.step_decay = _Column(np.float32)
-        self.step_snr = _Column(np.float32)
-        self.step_peak = _Column(np.float32)
-        self.step_flags = _Column(np.int16)
-        self.missed_t = _Column(np.float64)
-        self.missed_k = _Column(np.int64)
-        self.failed_k = _Column(np.int64)
-        self.failed_t = _Column(np.float64)
-        self.correction_k = _Column(np.int64)
-        self.sec_k = _Column(np.int64)  # step-like later sounds within a slot (bursts)
-        self.sec_delay = _Column(np.float64)
-        self.rejected_snr = _Column(np.float32)
-        self.other_t = _Column(np.float64)  # sounds that are not steps (later impacts and rejected ones)
-        self.other_peak = _Column(np.float32)
+        # the record: one growable column per figure (see _COLUMNS), trimmed group by group
+        for group in _COLUMNS:
+            for attr, _, dtype in group:
+                setattr(self, attr, _Column(dtype))
         self.n_secondary = 0
         self.n_clipped = 0
         self.gaps: list[tuple[float, float]] = []
@@ -219,14 +219,10 @@ class Analyzer:
         return out
 
     def _trim(self, n: int) -> None:
-        if self.step_k.n > 2 * n:
-            for c in (self.step_k, self.step_t, self.step_pol, self.step_match, self.step_decay, self.step_snr,
-                      self.step_peak, self.step_flags):
-                c.keep_last(n)
-        for pair in ((self.missed_t, self.missed_k), (self.failed_k, self.failed_t), (self.correction_k,),
-                     (self.sec_k, self.sec_delay), (self.rejected_snr,), (self.other_t, self.other_peak)):
-            if pair[0].n > 2 * n:
-                for c in pair:
+        for group in _COLUMNS:  # the columns of a group stay aligned row by row
+            cols = [getattr(self, attr) for attr, _, _ in group]
+            if cols[0].n > 2 * n:
+                for c in cols:
                     c.keep_last(n)
         if len(self.gaps) > 2 * 64:
             del self.gaps[:-64]
@@ -300,12 +296,7 @@ class Analyzer:
         return StepArrays(**v)
 
     def _columns(self) -> dict[str, _Column]:
-        return {"k": self.step_k, "t_s": self.step_t, "pol": self.step_pol, "match": self.step_match,
-                "decay_ms": self.step_decay, "snr_db": self.step_snr, "peak_dbfs": self.step_peak,
-                "flags": self.step_flags, "missed_k": self.missed_k, "missed_t_s": self.missed_t,
-                "failed_k": self.failed_k, "failed_t_s": self.failed_t, "correction_k": self.correction_k,
-                "sec_k": self.sec_k, "sec_delay_s": self.sec_delay, "other_t_s": self.other_t,
-                "other_peak_dbfs": self.other_peak}
+        return {name: getattr(self, attr) for group in _COLUMNS for attr, name, _ in group if name}
 
     def summary(self) -> Summary:
         """A snapshot of everything found so far."""
