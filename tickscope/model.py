@@ -280,6 +280,7 @@ class Summary:
     sound_reason: str | None = None  # why the sound is not taken for steps
     alternation_us: float | None = None  # mean A->B minus B->A interval over all steps
     coherence: float = float("nan")  # how well the first impacts lined up on the grid (0..1)
+    sounds_heard: int = 0  # impulsive sounds the detector found so far (steps or not)
     # set by the command that made the summary
     clock_calibrated: bool = False
     time_base: str | None = None

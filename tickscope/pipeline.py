@@ -104,6 +104,7 @@ class Analyzer:
         self.tracker = StepTracker(samplerate, self.detector.pre, tracker,
                                    emit_delay_s=(self.detector.post + 2 * self.detector.hop) / samplerate)
         self._pos = 0  # samples fed so far (including zeros fed for gaps)
+        self.sounds_heard = 0  # impacts the detector has handed over
         # the record: one growable column per figure (see _COLUMNS), trimmed group by group
         for group in _COLUMNS:
             for attr, _, dtype in group:
@@ -136,6 +137,7 @@ class Analyzer:
             self.gaps.append((g0, g0 + block.gap_before / self.samplerate))
             self.tracker.add_gap(*self.gaps[-1])
             impacts = self.detector.skip(block.gap_before)
+            self.sounds_heard += len(impacts)
             self._pos = self.detector.position
             out += self._record(self.tracker.add(impacts, self._pos / self.samplerate))
             x = x[self._pos - block.start_sample:] if self._pos > block.start_sample else x
@@ -147,6 +149,7 @@ class Analyzer:
 
     def _run(self, x: np.ndarray, scale: float | None = None) -> list[Event]:
         impacts = self.detector.process(x, scale)
+        self.sounds_heard += len(impacts)
         self._pos += len(x)
         return self._record(self.tracker.add(impacts, self.detector.position / self.samplerate))
 
@@ -154,6 +157,7 @@ class Analyzer:
         """End of the stream: decide the last slots and return the final summary."""
         if not self._finished:
             impacts = self.detector.flush()
+            self.sounds_heard += len(impacts)
             pos_s = self._pos / self.samplerate
             self._final_events = self._record(self.tracker.add(impacts, pos_s))
             self._final_events += self._record(self.tracker.finish(pos_s))
@@ -356,6 +360,7 @@ class Analyzer:
                                              scatter_s=scatter),
             alternation_us=alternation,
             coherence=tr.coherence,
+            sounds_heard=self.sounds_heard,
         )
         return dataclasses.replace(s, warnings=advice.notes(
             s, calibrated=self.clock_ppm is not None, codec_shifts=self.shifts,
