@@ -5,7 +5,7 @@ import pytest
 from tickscope.core.faults import drive_levels, polarity_asymmetry, position_locked
 from tickscope.core.regulation import detect_inhibition
 from tickscope.core.simulate import Scenario
-from conftest import analyze_scenario
+from conftest import analyze_scenario, match_times, true_step_times
 from tickscope.export import summary_to_dict
 
 
@@ -92,6 +92,33 @@ def test_end_of_life_bursts(n):
     assert ex["steps_in_bursts"] == 120
     assert abs(s.rate.rate_s_per_day - 3.0) <= s.rate.ci95_s_per_day
     assert any("end-of-life" in w for w in s.warnings)
+
+
+@pytest.mark.parametrize("n", [2, 4])
+def test_steps_in_a_burst_are_steps(n):
+    # Every step of an end-of-life burst is a motor step: counted, timed, with the polarity that
+    # alternates step by step (they were once filed as later impacts of the burst's first step,
+    # halving the count, and polarities were given per burst).
+    sc = Scenario(duration_s=80.2, burst_steps=n, burst_spacing_ms=50, snr_db=30, seed=61)  # 80 steps: whole bursts
+    s, an, truth, events = analyze_scenario(sc)
+    true_t = true_step_times(truth)
+    steps = [e for e in events if e.kind == "step"]
+    assert s.steps_detected == len(true_t) and s.secondary_impacts == 0 and s.missed_steps == 0
+    got = match_times([e.time_s for e in steps], true_t, tol_s=0.0005)
+    assert np.all(np.isfinite(got))
+    # the simulator numbers every step and gives step m the polarity of m's parity
+    by_time = {round(e.time_s, 4): e.polarity for e in steps}
+    pol = [by_time[round(v, 4)] for v in got]
+    first_pol = pol[0]
+    assert pol == [first_pol if m % 2 == 0 else ("B" if first_pol == "A" else "A") for m in range(len(pol))]
+    assert sum("in-burst" in e.flags for e in steps) == len(true_t) * (n - 1) // n
+
+
+def test_a_step_missing_from_a_burst_is_a_missed_step():
+    sc = Scenario(duration_s=90, burst_steps=2, snr_db=30, missed_steps=(31,), seed=62)
+    s, *_ = analyze_scenario(sc)
+    assert _ex(s)["pattern"] == "burst"
+    assert s.missed_steps == 1 and s.steps_detected == 89
 
 
 def test_regular_is_not_burst_even_with_a_bounce():

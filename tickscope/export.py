@@ -123,7 +123,9 @@ class StepsCsv:
             return
         interval = ""
         if ev.kind == "step" and ev.step is not None:
-            prev = self._last.get(ev.step - 1)
+            # from the previous step when it was heard: the slot before, or (within an end-of-life
+            # burst, whose steps share their slot's number) the burst's step before
+            prev = self._last.get(ev.step if "in-burst" in ev.flags else ev.step - 1)
             if prev is not None:
                 interval = f"{ev.time_s - prev:.9f}"
             self._last = {ev.step: ev.time_s}

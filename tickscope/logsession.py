@@ -187,7 +187,7 @@ class LogSession:
             key = _count_key(ev.kind)
             if key in self.totals:
                 self.totals[key] += 1
-            good = ev.kind == "step" and ev.match >= self.good_match and "low-match" not in ev.flags
+            good = ev.kind == "step" and ev.match >= self.good_match and "low-match" not in ev.flags and "in-burst" not in ev.flags
             self._bucket_minute(ev).add(ev, good)
             hour = self._bucket_hour(ev)
             hour.add(ev, good)

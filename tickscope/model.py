@@ -7,7 +7,7 @@ import numpy as np
 
 
 #: Step flags packed into a small integer (the analyzer's step columns, the log database).
-FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8, "bent-decay": 16}
+FLAG_BITS = {"clipped": 1, "low-match": 2, "truncated": 4, "ringdown": 8, "bent-decay": 16, "in-burst": 32}
 #: Event kinds as stored in the log database.
 KIND_CODES = {"step": 0, "missed": 1, "failed": 2, "correction": 3, "rejected": 4}
 
@@ -108,9 +108,9 @@ class StepArrays:
     """The analyzer's record of a stream so far, as read-only arrays (views; one row per event).
 
     Steps: grid number ``k``, time ``t_s``, polarity (0 = A, 1 = B), match, decay time, SNR,
-    peak level and flag bits.  Beside them: missed, failed and correction slots, the step-like
-    later sounds of a slot (``sec_k``, ``sec_delay_s``: bursts) and every sound that is not a step
-    (``other_t_s``, ``other_peak_dbfs``: later impacts and rejected sounds).
+    peak level and flag bits (the later steps of an end-of-life burst share their burst's ``k`` and
+    carry the ``in-burst`` flag).  Beside them: missed, failed and correction slots and every sound
+    that is not a step (``other_t_s``, ``other_peak_dbfs``: later impacts and rejected sounds).
     """
 
     k: np.ndarray
@@ -126,8 +126,6 @@ class StepArrays:
     failed_k: np.ndarray
     failed_t_s: np.ndarray
     correction_k: np.ndarray
-    sec_k: np.ndarray
-    sec_delay_s: np.ndarray
     other_t_s: np.ndarray
     other_peak_dbfs: np.ndarray
 
@@ -156,7 +154,8 @@ class Bursts:
 
     steps_per_burst: int
     burst_period_s: float
-    spacing_ms: float
+    spacing_ms: float  # from a burst's first step to its second
+    offsets_ms: tuple[float, ...] = ()  # from a burst's first step to each later one
 
 
 @dataclass(frozen=True)

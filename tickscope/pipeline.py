@@ -60,7 +60,6 @@ _COLUMNS = (
     (("missed_t", "missed_t_s", np.float64), ("missed_k", "missed_k", np.int64)),
     (("failed_k", "failed_k", np.int64), ("failed_t", "failed_t_s", np.float64)),
     (("correction_k", "correction_k", np.int64),),
-    (("sec_k", "sec_k", np.int64), ("sec_delay", "sec_delay_s", np.float64)),  # step-like later sounds of a slot
     (("rejected_snr", None, np.float32),),
     (("other_t", "other_t_s", np.float64), ("other_peak", "other_peak_dbfs", np.float32)),  # every sound not a step
 )
@@ -214,9 +213,6 @@ class Analyzer:
                 self.n_secondary += 1
                 self.other_t.append(ev.time_s)
                 self.other_peak.append(ev.peak_dbfs)
-                if ev.match >= self.tracker.cfg.good_match and self.step_k.n and self.step_k.values[-1] == ev.step:
-                    self.sec_k.append(ev.step)
-                    self.sec_delay.append(ev.time_s - self.step_t.values[-1])
             out.append(ev)
         if self.history_steps is not None:
             self._trim(self.history_steps)
@@ -289,8 +285,10 @@ class Analyzer:
         return int(np.count_nonzero(snr >= self.loud_db()))
 
     def _good_steps(self) -> np.ndarray:
-        # clipped steps stay in: their template was learned from clipped steps too
-        return self.step_match.values >= self.tracker.cfg.good_match
+        """Steps that time the grid: matched well (clipped steps stay in: their template was learned
+        from clipped steps too), and the first of each end-of-life burst (the rate is burst to burst)."""
+        return ((self.step_match.values >= self.tracker.cfg.good_match)
+                & ((self.step_flags.values & FLAG_BITS["in-burst"]) == 0))
 
     def arrays(self) -> StepArrays:
         """The record so far as read-only views (valid until the next feed)."""
@@ -316,8 +314,8 @@ class Analyzer:
         stepping = verdict.kind == "stepping"
         diag = None
         if stepping and rate is not None and tr.nominal_s is not None:
-            diag = diagnose(rec, self._good_steps(), rate, tr.nominal_s, clock_ppm=self.clock_ppm or 0.0,
-                            clock_ppm_u95=self.clock_ppm_u95)
+            diag = diagnose(rec, self._good_steps(), rate, tr.nominal_s, bursts=tr.bursts,
+                            clock_ppm=self.clock_ppm or 0.0, clock_ppm_u95=self.clock_ppm_u95)
         scatter = tr.onset_scatter_s() if verdict.kind == "not-stepping" else None
         res_us = res_t = None
         good = self._good_steps()
@@ -370,7 +368,8 @@ class Analyzer:
         """Mean A->B interval minus mean B->A interval (us), over all steps (an escapement's tick-tock)."""
         if self.step_k.n < 6:
             return None
-        pa = polarity_asymmetry(self.step_k.values, self.step_t.values, min_pairs=4, min_group=2)
+        first = (self.step_flags.values & FLAG_BITS["in-burst"]) == 0  # a burst's later steps share its number
+        pa = polarity_asymmetry(self.step_k.values[first], self.step_t.values[first], min_pairs=4, min_group=2)
         return None if pa is None else pa[0]
 
     def _hum(self) -> tuple[float | None, float | None]:

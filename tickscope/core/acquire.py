@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from ..model import Bursts
 from .detect import Impact
 from .timing import Template, envelope_lag, learn_template, match
 
@@ -165,6 +166,7 @@ class Grid:
     templates: dict[int, Template]
     fine_k: list[int]
     fine_t_s: list[float]
+    bursts: Bursts | None = None  # end-of-life stepping: every slot holds a burst of steps
 
 
 def impact_weights(buf: list[OpenImpact]) -> np.ndarray:
@@ -254,8 +256,55 @@ def find_grid(buf: list[OpenImpact], cfg: "TrackerConfig", samplerate: float, pr
     line_a, line_b = a + b * k0, b
     if len(fine_k) >= 3:  # refit the grid on the fine times
         line_b, line_a = np.polyfit(fine_k, fine_t, 1)
-    return Grid(measured_s=float(b), nominal_s=nominal_interval(b, cfg.nominal_tolerance), coherence=coh,
-                a=line_a, b=line_b, templates=templates, fine_k=fine_k, fine_t_s=fine_t)
+    nominal = nominal_interval(b, cfg.nominal_tolerance)
+    bursts = _burst_pattern(buf, [chosen[int(k)] for k in ks], templates, nominal, cfg, samplerate) if nominal else None
+    return Grid(measured_s=float(b), nominal_s=nominal, coherence=coh, a=line_a, b=line_b, templates=templates,
+                fine_k=fine_k, fine_t_s=fine_t, bursts=bursts)
+
+
+#: End-of-life bursts: steps follow the burst's first within this window (s) ...
+BURST_WINDOW_S = (0.012, 0.35)
+#: ... each at the same offset in every burst, to within this (s, SD; our own margin: a circuit's
+#: burst spacing is set by its counter)
+BURST_OFFSET_SD_S = 0.004
+#: ... in this share of the slots at least
+BURST_SHARE = 0.7
+
+
+def _burst_pattern(buf: list[OpenImpact], steps: list[OpenImpact], templates: dict[int, Template],
+                   interval_s: float, cfg: "TrackerConfig", samplerate: float) -> Bursts | None:
+    """End-of-life stepping: every slot of a 2-4 s grid holds a burst of one-second steps.
+
+    The circuit holds steps back and delivers n of them every n seconds (Philips PCA16xx: "bursts
+    of 4 pulses are produced every 4 s"; two steps every 2 s is also documented in consumer watch
+    manuals).  So a burst is: the slot's step, then n - 1 more sounds that match a step template
+    well, at the same offsets in every slot, where n one-second steps make the grid's interval.
+    """
+    if interval_s < 1.5 or len(steps) < 3:
+        return None
+    n = int(round(interval_s))
+    if n < 2 or abs(interval_s / n - 1.0) > 0.02:
+        return None
+    lo, hi = BURST_WINDOW_S
+    hi = min(hi, 0.6 * interval_s / n)
+    max_lag = int(0.003 * samplerate)
+    offsets = []
+    for st in steps:
+        later = [o for o in buf if st.t_s + lo < o.t_s <= st.t_s + hi]
+        like = [o.t_s - st.t_s for o in later
+                if max(match(o.imp.wsnippet, tm, max_lag=max_lag)[1] for tm in templates.values()) >= cfg.good_match]
+        # two sounds within 5 ms are one (a step's own later impact)
+        merged = [d for i, d in enumerate(like) if i == 0 or d - like[i - 1] > 0.005]
+        offsets.append(merged)
+    full = [d for d in offsets if len(d) == n - 1]
+    if len(full) < BURST_SHARE * len(offsets):
+        return None
+    per = np.array(full)
+    if np.any(np.std(per, axis=0) > BURST_OFFSET_SD_S):
+        return None
+    med = np.median(per, axis=0) * 1e3
+    return Bursts(steps_per_burst=n, burst_period_s=float(interval_s), spacing_ms=float(med[0]),
+                  offsets_ms=tuple(float(v) for v in med))
 
 
 def _learn_templates(chosen: dict[int, OpenImpact], ks: np.ndarray, k0: int, cfg: "TrackerConfig",

@@ -14,9 +14,9 @@ import math
 
 import numpy as np
 
-from ..model import FLAG_BITS, Diagnosis, FailedSteps, PolarityAsymmetry, RateEstimate, StepArrays
+from ..model import FLAG_BITS, Bursts, Diagnosis, FailedSteps, PolarityAsymmetry, RateEstimate, StepArrays
 from ..units import rate_from_interval, SECONDS_PER_DAY
-from .faults import detect_bursts, drive_levels, polarity_asymmetry, position_locked
+from .faults import burst_share, drive_levels, polarity_asymmetry, position_locked
 from .otherclock import other_clock
 from .regulation import LONGEST_KNOWN_PERIOD_S, detect_inhibition, unseen_correction_ci95_s_per_day
 
@@ -27,7 +27,7 @@ ASYMMETRY_FLOOR_US = 300.0
 
 
 def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: float, *,
-             clock_ppm: float = 0.0, clock_ppm_u95: float = 0.0) -> Diagnosis:
+             bursts: Bursts | None = None, clock_ppm: float = 0.0, clock_ppm_u95: float = 0.0) -> Diagnosis:
     """Every quartz diagnosis over the step record.
 
     Parameters
@@ -40,9 +40,12 @@ def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: f
         The line fit through the good steps.
     nominal_s : float
         The nominal step interval, s.
+    bursts : Bursts or None
+        The end-of-life stepping the tracker follows (its later steps are flagged ``in-burst``);
+        reported when most of the bursts heard held all their steps.
     """
     k, t = rec.k[good], rec.t_s[good]
-    bursts = detect_bursts(rec.k, rec.sec_k, rec.sec_delay_s, nominal_s)
+    bursts = bursts if burst_share(rec, bursts) >= 0.7 else None
     inh = None if bursts else detect_inhibition(k, t, nominal_s, clock_ppm=clock_ppm, clock_ppm_u95=clock_ppm_u95)
     if inh is not None and math.isfinite(inh.regulated_rate_s_per_day):
         shown = dataclasses.replace(rate, rate_s_per_day=inh.regulated_rate_s_per_day,
@@ -63,7 +66,7 @@ def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: f
     return Diagnosis(
         rate=shown, rate_provisional=provisional, rate_ci95_statistical_s_per_day=rate.ci95_s_per_day,
         record_more_s=max(0.0, 2 * LONGEST_KNOWN_PERIOD_S - rate.span_s) if provisional else 0.0,
-        inhibition=inh, bursts=bursts, steps_in_bursts=int(len(rec.k) + len(rec.sec_k)) if bursts else None,
+        inhibition=inh, bursts=bursts, steps_in_bursts=int(len(rec.k)) if bursts else None,
         other_clock=oc, failed=_failed(rec, nominal_s, rate.span_s),
         drive_levels=tuple(levels) if len(levels) >= 2 else (), drive_level_changes=changes,
         position_locked=_position_locked(rec), asymmetry=_asymmetry(rec, k, t))

@@ -1,7 +1,6 @@
 """Quartz movement faults and habits from the step record (pure functions over arrays).
 
-* End-of-life stepping: steps in bursts (Philips PCA16xx: "bursts of 4 pulses are produced
-  every 4 s"; two steps every 2 s is also documented in consumer watch manuals).
+* End-of-life stepping: steps in bursts (found by the tracker, see :mod:`.acquire`).
 * Adaptive drive levels, anomalies locked to a wheel's position, polarity asymmetry.
 """
 from __future__ import annotations
@@ -11,24 +10,20 @@ import math
 import numpy as np
 
 from . import dsp
-from ..model import Bursts, DriveLevel, PositionLock
+from ..model import FLAG_BITS, Bursts, DriveLevel, PositionLock
 
 
-def detect_bursts(step_k: np.ndarray, sec_k: np.ndarray, sec_delay_s: np.ndarray, interval_s: float) -> Bursts | None:
-    """Steps delivered in groups: every slot of a 2-4 s grid holds 1-3 more step-like sounds at a fixed spacing."""
-    if interval_s < 1.5 or len(step_k) < 3:
-        return None
-    if not len(sec_k):
-        return None
-    per_slot = np.array([np.count_nonzero(sec_k == kk) for kk in step_k])
-    extra = int(np.median(per_slot))
-    if extra < 1 or np.mean(per_slot == extra) < 0.7:
-        return None
-    n = extra + 1
-    if abs(interval_s / n - 1.0) > 0.02:  # bursts of n one-second steps every n seconds
-        return None
-    firsts = [float(np.min(sec_delay_s[sec_k == kk])) for kk in step_k if np.any(sec_k == kk)]
-    return Bursts(n, interval_s, float(np.median(firsts)) * 1e3)
+def burst_share(rec, bursts: Bursts | None) -> float:
+    """Of the bursts heard (the grid's first steps), the share that held all their steps (0 without bursts)."""
+    if bursts is None or not len(rec.k):
+        return 0.0
+    first = (rec.flags & FLAG_BITS["in-burst"]) == 0
+    n_first = int(np.count_nonzero(first))
+    if n_first == 0:
+        return 0.0
+    later = np.bincount(rec.k[~first] - rec.k.min(), minlength=int(rec.k.max() - rec.k.min()) + 1)
+    full = later[rec.k[first] - rec.k.min()] >= bursts.steps_per_burst - 1
+    return float(np.mean(full))
 
 
 def drive_levels(peaks_dbfs: np.ndarray, *, min_gap_db: float = 2.0, min_share: float = 0.05) -> tuple[list[DriveLevel], int]:

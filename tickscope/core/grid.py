@@ -18,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..model import Event
+from ..model import Bursts, Event
 from .acquire import OpenImpact, find_grid
 from .detect import Impact
 from .dsp import MovingLine, RollingWindow
@@ -62,6 +62,7 @@ class StepTracker:
         self.pre = pre
         self.cfg = config or TrackerConfig()
         self.templates: dict[int, Template] = {}
+        self.bursts: Bursts | None = None  # end-of-life stepping heard at acquisition
         self.acquired = False
         self.failed = False
         self.nominal_s: float | None = None
@@ -159,6 +160,7 @@ class StepTracker:
         self.measured_s, self.nominal_s, self.coherence = g.measured_s, g.nominal_s, g.coherence
         self._a, self._b = g.a, g.b
         self.templates = g.templates
+        self.bursts = g.bursts
         if len(g.fine_k) >= 3:
             self._fit.extend(zip(g.fine_k[-self.cfg.track_steps:], g.fine_t_s[-self.cfg.track_steps:]))
         self.acquired = True
@@ -233,7 +235,8 @@ class StepTracker:
         step, failed, correction = self._slot_sounds(in_slot, pred)
         if in_slot:
             self._note_heard(k, pred, in_slot, step, correction)
-        out = self._sort_rest(k, pred, step or correction or failed, (step, failed, correction))
+        later = self._burst_steps(step) if step is not None and self.bursts is not None else []
+        out = self._sort_rest(k, pred, step or correction or failed, (step, failed, correction, *later))
         if failed is not None:
             out.insert(0, Event("failed", failed.t_s, step=k, polarity="AB"[k % 2], peak_dbfs=failed.imp.peak_dbfs,
                                 snr_db=failed.imp.frame_snr_db, match=failed.match, flags=("failed",)))
@@ -243,6 +246,12 @@ class StepTracker:
                                     match=correction.match, flags=("correction",)))
                 self._last_step_t = correction.t_s
         elif step is not None:
+            for i, o in reversed(list(enumerate(later, start=1))):
+                if o is not None:
+                    out.insert(0, self._step_event(o, k, out, burst_index=i))
+                else:  # a burst's step not heard: a missed step at its place in the burst
+                    out.insert(0, Event("missed", step.t_s + self.bursts.offsets_ms[i - 1] * 1e-3, step=k,
+                                        polarity=self._polarity(k, i), flags=("in-burst",)))
             out.insert(0, self._step_event(step, k, out))
             self._last_step_t = step.t_s
             self._peaks.append(step.imp.peak_dbfs)
@@ -250,6 +259,16 @@ class StepTracker:
                 self._follow(k, step.t_s)
         elif not self._in_gap(pred):
             out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
+        return out
+
+    def _burst_steps(self, step: OpenImpact) -> list[OpenImpact | None]:
+        """The later steps of the burst that ``step`` begins: at each of the burst's offsets (within
+        8 ms), the best-matching sound, if it matches a step's sound at all."""
+        out = []
+        for off_ms in self.bursts.offsets_ms:
+            t = step.t_s + off_ms * 1e-3
+            near = [o for o in self._open if o is not step and abs(o.t_s - t) <= 0.008 and o.match >= self.cfg.min_match]
+            out.append(max(near, key=lambda o: o.match) if near else None)
         return out
 
     def _slot_sounds(self, in_slot: list[OpenImpact], pred: float):
@@ -379,9 +398,9 @@ class StepTracker:
     def _in_gap(self, t: float) -> bool:
         return any(a - 0.03 <= t <= b + 0.03 for a, b in self._gaps)
 
-    def _step_event(self, o: OpenImpact, k: int, siblings: list[Event]) -> Event:
+    def _step_event(self, o: OpenImpact, k: int, siblings: list[Event], *, burst_index: int = 0) -> Event:
         imp = o.imp
-        flags = []
+        flags = ["in-burst"] if burst_index else []
         if imp.clipped:
             flags.append("clipped")
         if o.match < self.cfg.good_match:
@@ -390,7 +409,7 @@ class StepTracker:
             flags.append("truncated")
         # ring-down: from the onset to the next impact of the same sound (or the snippet's end)
         i0 = int(round(o.t_s * self.samplerate)) - imp.snippet_start
-        nxt = [e.time_s for e in siblings if e.kind == "secondary" and e.time_s > o.t_s]
+        nxt = [e.time_s for e in siblings if e.kind in ("secondary", "step") and e.time_s > o.t_s]
         i1 = len(imp.snippet)
         if nxt:
             i1 = min(i1, int(round(min(nxt) * self.samplerate)) - imp.snippet_start - int(0.001 * self.samplerate))
@@ -405,8 +424,14 @@ class StepTracker:
         rd = measure_ringdown(imp.snippet[max(i0, 0): max(i1, i0 + 1)], self.samplerate, noise_power=noise)
         if rd.fit_range_db > 0 and rd.fit_rms_db > BENT_DECAY * rd.fit_range_db:
             flags.append("bent-decay")
-        return Event("step", o.t_s, step=k, polarity="AB"[k % 2], peak_dbfs=imp.peak_dbfs,
+        return Event("step", o.t_s, step=k, polarity=self._polarity(k, burst_index), peak_dbfs=imp.peak_dbfs,
                      snr_db=imp.frame_snr_db, match=o.match, decay_ms=rd.decay_ms, flags=tuple(flags))
+
+    def _polarity(self, k: int, burst_index: int = 0) -> str:
+        """The coil polarity of slot k's step (or of the burst_index-th step of its burst): the
+        polarity alternates step by step, and a burst of n holds n steps."""
+        n = self.bursts.steps_per_burst if self.bursts is not None else 1
+        return "AB"[(k * n + burst_index) % 2]
 
     def _event(self, o: OpenImpact, kind: str, k: int | None) -> Event:
         if kind == "secondary" and o.slot is not None:

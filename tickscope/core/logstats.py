@@ -39,7 +39,7 @@ from ..units import SECONDS_PER_DAY
 KIND_STEP, KIND_MISSED, KIND_FAILED, KIND_CORRECTION, KIND_REJECTED = (
     KIND_CODES[k] for k in ("step", "missed", "failed", "correction", "rejected"))
 GOOD_MATCH = 0.6
-LOW_MATCH_BIT = FLAG_BITS["low-match"]
+LOW_MATCH_BIT = FLAG_BITS["low-match"] | FLAG_BITS["in-burst"]  # steps that do not time the grid
 RINGDOWN_BIT = FLAG_BITS["ringdown"]
 REJECT_SNR_DB = 10.0  # off-grid sounds this far over the floor are counted (as analyze does)
 
@@ -115,7 +115,7 @@ def number_steps(segments, ev: dict[str, np.ndarray], nominal_s: float,
         T[sel] = _timeline(s, ev["time_s"][sel], override_ppm)
         k = ev["step"][sel].copy()
         has = k >= 0
-        steps = has & (ev["kind"][sel] == KIND_STEP) & (ev["match"][sel] >= GOOD_MATCH)
+        steps = has & (ev["kind"][sel] == KIND_STEP) & (ev["match"][sel] >= GOOD_MATCH) & ((ev["flags"][sel] & LOW_MATCH_BIT) == 0)
         stitch = i > 0 and s.join_kind == "exact" and prev_k is not None and steps.sum() >= 20
         if i > 0 and not stitch:
             group += 1  # joined by the wall clock (or too short to stitch): its own intercept
