@@ -102,7 +102,7 @@ def test_block_thresholds_in_runs_equal_one_block_at_a_time():
     from tickscope.core.detect import ImpactDetector
 
     rng = np.random.default_rng(11)
-    a, b = ImpactDetector(48000), ImpactDetector(48000)
+    a, b = ImpactDetector(48000)._floor, ImpactDetector(48000)._floor  # their FloorTrackers
     W = a._floors.maxlen
     for n in (W + 3, 1, 2, 64, 5, 200):
         qf = rng.lognormal(-20, 1, n)
