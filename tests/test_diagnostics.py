@@ -121,6 +121,32 @@ def test_a_step_missing_from_a_burst_is_a_missed_step():
     assert s.missed_steps == 1 and s.steps_detected == 89
 
 
+@pytest.mark.parametrize("voice", [{}, {"polarity_b_freq_shift": 0.10}, {"polarity_b_freq_shift": -0.08, "polarity_b_level_db": -6},
+                                   {"movement": "wristwatch", "polarity_b_freq_shift": 0.06},
+                                   {"second_impact_ms": 40, "polarity_b_freq_shift": 0.05}])
+@pytest.mark.parametrize("asym_us", [0.0, 300.0])
+def test_polarity_asymmetry_times_the_steps_not_their_sounds(voice, asym_us):
+    # B steps sound asym_us late, so A->B minus B->A is 2 * asym_us (the simulator's definition).
+    # Each polarity is timed from the arrival of its impulse: polarities that ring differently must
+    # not read as uneven stepping (a default simulation without any asymmetry once read -106 us,
+    # and 400 us read 293.5), and a true asymmetry must be read within its interval.
+    s, *_ = analyze_scenario(Scenario(duration_s=60, polarity_asymmetry_us=asym_us, seed=5, **voice))
+    pa = s.diagnosis.asymmetry
+    assert abs(pa.value_us - 2 * asym_us) <= pa.ci95_us and pa.ci95_us < 60.0
+    assert pa.uneven == (asym_us > 0)
+    assert any("step unevenly" in line for line in s.reading) == (asym_us > 0)
+
+
+def test_polarities_too_different_for_one_reference_claim_nothing():
+    # at 8 kHz the arrivals of two differently ringing polarities are known only to ~150 us: the
+    # difference is reported with that interval, and no uneven stepping is claimed
+    s, *_ = analyze_scenario(Scenario(duration_s=60, samplerate_hz=8000, polarity_b_freq_shift=0.05, snr_db=25,
+                                      polarity_asymmetry_us=300.0, seed=5))
+    pa = s.diagnosis.asymmetry
+    assert pa.reference_u95_us > 150 and not pa.uneven and abs(pa.value_us - 600) <= pa.ci95_us
+    assert any("too different to time both from one reference" in w for w in s.warnings)
+
+
 def test_regular_is_not_burst_even_with_a_bounce():
     s, *_ = analyze_scenario(Scenario(duration_s=60, second_impact_ms=45, snr_db=30, seed=57))
     assert _ex(s)["pattern"] == "regular"

@@ -7,6 +7,7 @@ without the CLI.  Pure: figures in, strings out.
 """
 from __future__ import annotations
 
+from .core.diagnose import ASYMMETRY_REFERENCE_MAX_US
 from .units import ppm_to_s_per_day
 
 #: Typical error of an uncalibrated consumer audio clock (common practice; sound-card
@@ -151,6 +152,11 @@ def _diagnosis_notes(dg) -> tuple[list[str], list[str]]:
                          f"{oc.rate_s_per_day:+.1f} s/day): its ticks were left out")
     if dg.failed.correction_pulses:
         later.append(f"{dg.failed.correction_pulses} correction pulses: the movement is working at its margin")
+    pa = dg.asymmetry
+    if pa is not None and pa.reference_u95_us > ASYMMETRY_REFERENCE_MAX_US:
+        later.append(f"the two coil polarities sound too different to time both from one reference (± "
+                     f"{pa.reference_u95_us:.0f} µs): the A→B − B→A difference ({pa.value_us:+.0f} ± {pa.ci95_us:.0f} µs) "
+                     "cannot tell uneven stepping")
     return first, later
 
 

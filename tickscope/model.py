@@ -202,9 +202,10 @@ class PolarityAsymmetry:
     """Mean A->B interval minus mean B->A interval."""
 
     value_us: float
-    ci95_us: float
-    uneven: bool  # beyond what the templates' alignment can leave
+    ci95_us: float  # the timing's own half-width and the shared time reference's, combined
+    uneven: bool  # significant, and beyond what timing the two sounds can leave
     ringdown_diff_ms: float | None  # B's median ring-down minus A's
+    reference_u95_us: float = 0.0  # how well the two polarities' sounds share one time reference
 
 
 @dataclass(frozen=True)

@@ -315,6 +315,7 @@ class Analyzer:
         diag = None
         if stepping and rate is not None and tr.nominal_s is not None:
             diag = diagnose(rec, self._good_steps(), rate, tr.nominal_s, bursts=tr.bursts,
+                            reference_u_s=tr.reference_u_s(),
                             clock_ppm=self.clock_ppm or 0.0, clock_ppm_u95=self.clock_ppm_u95)
         scatter = tr.onset_scatter_s() if verdict.kind == "not-stepping" else None
         res_us = res_t = None

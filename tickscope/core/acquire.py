@@ -22,7 +22,7 @@ import numpy as np
 
 from ..model import Bursts
 from .detect import Impact
-from .timing import Template, envelope_lag, learn_template, match
+from .timing import Template, learn_template, match
 
 if TYPE_CHECKING:
     from .grid import TrackerConfig
@@ -324,13 +324,8 @@ def _learn_templates(chosen: dict[int, OpenImpact], ks: np.ndarray, k0: int, cfg
     for pol in (0, 1):
         if pol not in templates:
             templates[pol] = templates[1 - pol]
-    if templates[1] is not templates[0]:
-        # Each template's onset came from its own envelope threshold, which noise or a
-        # phone's gain control can push around.  Tie B's onset to A's by aligning the
-        # two envelopes, so the polarity offset measures the sounds, not the thresholds.
-        templates[1] = dataclasses.replace(
-            templates[1], onset_index=templates[0].onset_index
-            + envelope_lag(templates[0].wave, templates[1].wave, samplerate))
+    # each template's time reference is the arrival of its impulse, found the same way for both
+    # (timing.first_arrival): the polarity offset measures the steps' timing, not their sounds
     return templates
 
 

@@ -20,14 +20,20 @@ from .faults import burst_share, drive_levels, polarity_asymmetry, position_lock
 from .otherclock import other_clock
 from .regulation import LONGEST_KNOWN_PERIOD_S, detect_inhibition, unseen_correction_ci95_s_per_day
 
-#: The two polarities' templates are aligned by their envelopes; on simulated movements whose
-#: polarities ring 3 % apart that alignment leaves up to ~110 us, so only a difference well
-#: beyond it is called uneven stepping (our own margin).
-ASYMMETRY_FLOOR_US = 300.0
+#: Each polarity is timed from the arrival of its impulse (timing.first_arrival); the two
+#: sounds' rises can still differ a little, which the reference's own half-width accounts for.
+#: A difference is called uneven stepping when it is significant (beyond its 95 % interval,
+#: the reference's uncertainty included) and larger than this (us; our own margin: a rotor
+#: off-centre in its detent shows hundreds of us, common practice, no source).
+ASYMMETRY_FLOOR_US = 50.0
+#: Above this half-width of the shared reference (us) the two polarities sound too different
+#: to put on one reference: no uneven stepping is claimed.
+ASYMMETRY_REFERENCE_MAX_US = 150.0
 
 
 def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: float, *,
-             bursts: Bursts | None = None, clock_ppm: float = 0.0, clock_ppm_u95: float = 0.0) -> Diagnosis:
+             bursts: Bursts | None = None, reference_u_s: float = 0.0, clock_ppm: float = 0.0,
+             clock_ppm_u95: float = 0.0) -> Diagnosis:
     """Every quartz diagnosis over the step record.
 
     Parameters
@@ -43,6 +49,9 @@ def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: f
     bursts : Bursts or None
         The end-of-life stepping the tracker follows (its later steps are flagged ``in-burst``);
         reported when most of the bursts heard held all their steps.
+    reference_u_s : float
+        Uncertainty (s) of the shared time reference of the two polarities' sounds (the tracker's
+        ``reference_u_s``); widens the polarity asymmetry's interval (twice: it moves one polarity).
     """
     k, t = rec.k[good], rec.t_s[good]
     bursts = bursts if burst_share(rec, bursts) >= 0.7 else None
@@ -69,7 +78,7 @@ def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: f
         inhibition=inh, bursts=bursts, steps_in_bursts=int(len(rec.k)) if bursts else None,
         other_clock=oc, failed=_failed(rec, nominal_s, rate.span_s),
         drive_levels=tuple(levels) if len(levels) >= 2 else (), drive_level_changes=changes,
-        position_locked=_position_locked(rec), asymmetry=_asymmetry(rec, k, t))
+        position_locked=_position_locked(rec), asymmetry=_asymmetry(rec, k, t, 2e6 * reference_u_s))
 
 
 def _failed(rec: StepArrays, nominal_s: float, span_s: float) -> FailedSteps:
@@ -92,11 +101,15 @@ def _position_locked(rec: StepArrays):
     return position_locked(anomalies, span)
 
 
-def _asymmetry(rec: StepArrays, k: np.ndarray, t: np.ndarray) -> PolarityAsymmetry | None:
+def _asymmetry(rec: StepArrays, k: np.ndarray, t: np.ndarray, reference_u95_us: float) -> PolarityAsymmetry | None:
     pa = polarity_asymmetry(k, t)
     if pa is None:
         return None
     d, p = rec.decay_ms, rec.pol
     a, b = d[(p == 0) & np.isfinite(d)], d[(p == 1) & np.isfinite(d)]
     rd = float(np.median(b) - np.median(a)) if len(a) >= 3 and len(b) >= 3 else None
-    return PolarityAsymmetry(pa[0], pa[1], abs(pa[0]) > max(2 * pa[1], ASYMMETRY_FLOOR_US), rd)
+    ci = math.hypot(pa[1], reference_u95_us)
+    # significant: beyond 3.29 sigma (1.68 times the 95 % half-width: p < 0.001 two-sided, so that
+    # a recording without any asymmetry seldom shows one)
+    uneven = abs(pa[0]) > max(1.68 * ci, ASYMMETRY_FLOOR_US) and reference_u95_us <= ASYMMETRY_REFERENCE_MAX_US
+    return PolarityAsymmetry(pa[0], ci, uneven, rd, reference_u95_us)

@@ -258,7 +258,8 @@ class StepTracker:
             if step.match >= self.cfg.good_match:
                 self._follow(k, step.t_s)
         elif not self._in_gap(pred):
-            out.insert(0, Event("missed", pred, step=k, polarity="AB"[k % 2]))
+            # where this polarity's step would have sounded (the line runs between the two polarities)
+            out.insert(0, Event("missed", pred + self._pol_offset(k), step=k, polarity=self._polarity(k)))
         return out
 
     def _burst_steps(self, step: OpenImpact) -> list[OpenImpact | None]:
@@ -359,6 +360,19 @@ class StepTracker:
             b, t_k = self._fit.fit()
             self._b = b
             self._a = t_k - b * k
+
+    def reference_u_s(self) -> float:
+        """How well the two polarities' templates share one time reference (s): the largest change
+        of their arrivals' difference when the arrival is found at another level of the first peak
+        (0 when both polarities use one template)."""
+        a, b = self.templates.get(0), self.templates.get(1)
+        if a is None or b is None or a is b or len(a.arrival_checks) != len(b.arrival_checks):
+            return 0.0
+        d0 = b.onset_index - a.onset_index
+        dev = [abs((cb - ca) - d0) for ca, cb in zip(a.arrival_checks, b.arrival_checks)]
+        # and a twentieth of a sample each: the crossings are interpolated between samples of the
+        # envelope (at 8 kHz 6 us; our own allowance: simulated references erred by up to 4 us there)
+        return (max(dev, default=0.0) + 0.05) / self.samplerate
 
     def onset_scatter_s(self) -> float | None:
         """The spread (standard deviation, s) of the first sound in each slot about the grid,

@@ -21,17 +21,36 @@ from . import dsp, kernels
 #: the first impact's envelope peaks this soon after its coarse onset (an attack of a few ms;
 #: our own choice, wide enough for the simulator's and typical movements' attacks)
 FIRST_IMPACT_PEAK_S = 0.010
+#: A sound's first peak: the first local maximum of its envelope after the sound begins that
+#: reaches this share of the loudest within ``FIRST_PEAK_S`` (a ripple of the lead-in is no peak) ...
+FIRST_PEAK_SHARE = 0.3
+FIRST_PEAK_S = 0.001
+#: where a sound begins, for the search of its first peak: its envelope first reaching this share
+#: of the loudest moment of its first impact (as the templates' windows are placed)
+ONSET_FRACTION = 0.2
+#: ... and its arrival, the time reference of its template: where the envelope rising to that
+#: peak crosses this share of it.  Found the same way for both coil polarities, so that their
+#: time references are one physical event, the impulse's arrival, whatever their ring (our own
+#: choice: half-way up the attack, far above the noise of an averaged template).
+ARRIVAL_LEVEL = 0.5
+#: The arrival is also found at these levels: if the two polarities' rises differ in shape,
+#: their arrivals differ by level, and that difference bounds how well they share a reference.
+ARRIVAL_CHECK_LEVELS = (0.3, 0.7)
 
 
 @dataclass(frozen=True)
 class Template:
-    """The average sound of one polarity, aligned, in snippet coordinates."""
+    """The average sound of one polarity, aligned, in snippet coordinates.  Its time reference,
+    ``onset_index``, is the arrival of its first impact (:func:`first_arrival`)."""
 
     wave: np.ndarray  # float64, same length and origin as the snippets it came from
     onset_index: float  # sub-sample index of the first impact's onset in `wave`
     window: np.ndarray  # taper applied to `wave` for matching (zero outside the window)
     n_used: int  # snippets averaged
     energy: float  # sum of squares of the windowed template
+    #: the arrival found at other levels of the first peak (ARRIVAL_CHECK_LEVELS): how much the
+    #: time reference depends on the level chosen (same indices as onset_index)
+    arrival_checks: tuple[float, ...] = ()
 
     @property
     def matched(self) -> np.ndarray:
@@ -65,6 +84,38 @@ def onset_of(wave: np.ndarray, samplerate: float, *, fraction: float = 0.2,
         return float(i)
     # linear interpolation between i-1 (below) and i (at or above)
     return float(i - 1 + (level - env[i - 1]) / (env[i] - env[i - 1]))
+
+
+def first_arrival(wave: np.ndarray, samplerate: float, *, search_from: int = 0, search_to: int | None = None,
+                  level: float = ARRIVAL_LEVEL) -> float:
+    """Sub-sample index of the arrival of the first impact in ``wave`` (its time reference).
+
+    Where the sound begins is a low crossing of its envelope (``ONSET_FRACTION`` of the loudest
+    moment in ``search_from .. search_to``); its first peak is the first local maximum of the (Hilbert) envelope after that,
+    within ``FIRST_PEAK_S``; the arrival is where the envelope rising to that peak crosses
+    ``level`` of it.  It is scale-free (a quieter polarity arrives at the same time) and depends on
+    the rise of the impulse, not on how the ring that follows beats: two polarities that ring at
+    different frequencies after the same impulse share it.  (Aligning their whole envelopes did
+    not: it read 53 us apart for simulated polarities whose impulses were simultaneous.)
+    """
+    env = _envelope(wave, samplerate)
+    stop = len(env) if search_to is None else max(search_from + 8, min(len(env), search_to))
+    # where the sound begins: a low crossing (ONSET_FRACTION of the loudest moment of the first
+    # impact), and from a little before it the rise to the first peak
+    start = max(search_from + 1, int(onset_of(wave, samplerate, fraction=ONSET_FRACTION, search_from=search_from,
+                                              search_to=stop)) - 1)
+    end = min(len(env) - 1, start + max(3, int(round(FIRST_PEAK_S * samplerate))))
+    top = float(env[start: end + 1].max())
+    p = start
+    while p < end and not (env[p] >= FIRST_PEAK_SHARE * top and env[p] >= env[p - 1] and env[p] >= env[p + 1]):
+        p += 1
+    thr = level * env[p]
+    i = p
+    while i > search_from and env[i - 1] >= thr:
+        i -= 1
+    if i == search_from or env[i] == env[i - 1]:
+        return float(i)
+    return float(i - 1 + (thr - env[i - 1]) / (env[i] - env[i - 1]))
 
 
 _NEWTON_WEIGHTS: dict[tuple[int, int], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
@@ -317,9 +368,12 @@ def learn_template(snippets: list[np.ndarray], samplerate: float, *, pre: int,
                 acc += row
             ref = acc / n
         tmpl = max(n, 1)
-    on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=max(0, pre - max_lag), search_to=pre + first_s)
+    lo, hi = max(0, pre - max_lag), pre + first_s
+    on = onset_of(ref, samplerate, fraction=onset_fraction, search_from=lo, search_to=hi)
     win = _window(L, on, samplerate, window_s)
-    return Template(ref, on, win, int(tmpl), float(np.sum((ref * win) ** 2)))
+    arrival = first_arrival(ref, samplerate, search_from=lo, search_to=hi)
+    checks = tuple(first_arrival(ref, samplerate, search_from=lo, search_to=hi, level=v) for v in ARRIVAL_CHECK_LEVELS)
+    return Template(ref, arrival, win, int(tmpl), float(np.sum((ref * win) ** 2)), checks)
 
 
 def _window(L: int, onset: float, samplerate: float, window_s: float) -> np.ndarray:
