@@ -144,6 +144,8 @@ def test_header_claims_more_data_than_it_holds(tmp_path, capsys):
     assert c == 0 and "Traceback" not in err
     d = json.loads(out)
     assert 28 <= d["steps_detected"] <= 30 and d["missed_steps"] == 0
+    # the README promises a note (it was missing: libsndfile reports the frames the file holds)
+    assert any("cut short" in w and "60.0 s" in w for w in d["warnings"])
 
 
 def test_clipped_dc_and_two_channels(tmp_path, capsys):
@@ -177,6 +179,30 @@ def test_float_file_with_samples_that_are_not_numbers(tmp_path, capsys):
     assert c == 0 and d["steps_detected"] == 30 and d["missed_steps"] == 0
     assert any("4002 samples of the file are not numbers" in w for w in d["warnings"])
     assert "Traceback" not in err
+
+
+def test_unusable_samples_are_a_gap_not_missed_steps(tmp_path, capsys):
+    # two seconds of NaN over two steps of a float file: lost audio, not a movement fault (they
+    # were once two missed steps)
+    sc = Scenario(duration_s=30, snr_db=30, seed=13)
+    p = str(tmp_path / "nan.wav")
+    write_simulation(p, sc, subtype="FLOAT")
+    x, fs = sf.read(p, dtype="float32")
+    x[int(10.2 * fs): int(12.2 * fs)] = np.nan  # the steps at 10.5 and 11.5 s
+    sf.write(p, x, fs, subtype="FLOAT")
+    c, out, err = run(["analyze", p, "--json"], capsys)
+    d = json.loads(out)
+    assert c == 0 and d["steps_detected"] == 28 and d["missed_steps"] == 0
+    assert any("1 gap in the audio (2.00 s lost)" in w for w in d["warnings"])
+
+
+def test_a_file_of_nothing_but_unusable_samples_says_so_first(tmp_path, capsys):
+    p = str(tmp_path / "allnan.wav")
+    sf.write(p, np.full(48000 * 20, np.nan, dtype=np.float32), 48000, subtype="FLOAT")
+    c, out, err = run(["analyze", p], capsys)
+    assert c == 3 and "Traceback" not in err
+    line = err.strip().splitlines()[-1]
+    assert line.startswith("tickscope: no steps could be found: none of the samples") and "microphone" not in line
 
 
 def test_every_subcommand_has_help():

@@ -30,7 +30,12 @@ def profile_time_base(profile, *, auto: bool, stale_days: float) -> str:
 
 
 def nonfinite_note(n: int) -> str:
-    return f"{n} samples of the file are not numbers (NaN or infinite: a damaged float file) and were read as silence"
+    return (f"{n} samples of the file are not numbers (NaN or infinite: a damaged float file): they are lost "
+            "audio, counted as gaps, never as missed steps")
+
+
+def unusable_reason(path: str) -> str:
+    return f"none of the samples of {path} are numbers (NaN or infinite: a damaged float file): there is no audio to analyze"
 
 
 def cut_short_note(analyzed_s: float, header_s: float) -> str:
@@ -107,8 +112,8 @@ def notes(s, *, calibrated: bool, codec_shifts: tuple[int, float] | None, traili
     if trailing_silence_slots:
         out.append(f"the steps stopped {trailing_silence_slots} slots before the end (not counted as missed)")
     if gaps:
-        out.append(f"{len(gaps)} gaps in the audio ({sum(b - a for a, b in gaps):.2f} s lost); "
-                   "steps there are not counted as missed")
+        out.append(f"{len(gaps)} gap{'s' if len(gaps) != 1 else ''} in the audio ({sum(b - a for a, b in gaps):.2f} s "
+                   "lost); steps there are not counted as missed")
     return out
 
 

@@ -48,9 +48,12 @@ def run(args) -> int:
     finally:
         if csv_fh:
             csv_fh.close()
+    if tally.get("nonfinite", 0) >= info.frames:  # nothing usable: say that first, and only that
+        raise NoStepsError(f"no steps could be found: {advice.unusable_reason(path)}")
     notes = list(summary.warnings)
-    if summary.duration_s < info.duration_s - max(1.0, 0.01 * info.duration_s):
-        notes.append(advice.cut_short_note(summary.duration_s, info.duration_s))
+    claimed_s = max(info.duration_s, info.header_duration_s)
+    if summary.duration_s < claimed_s - max(1.0, 0.01 * claimed_s):
+        notes.append(advice.cut_short_note(summary.duration_s, claimed_s))
     if tally.get("nonfinite"):
         notes.append(advice.nonfinite_note(tally["nonfinite"]))
     if chosen_note:

@@ -39,10 +39,17 @@ class FileInfo:
     frames: int
     format: str
     subtype: str
+    header_frames: int | None = None  # what the header claims, when it claims more than the file holds
 
     @property
     def duration_s(self) -> float:
         return self.frames / self.samplerate if self.samplerate else 0.0
+
+    @property
+    def header_duration_s(self) -> float:
+        """How long the header says the recording is (a file cut short holds less)."""
+        frames = self.header_frames if self.header_frames is not None else self.frames
+        return frames / self.samplerate if self.samplerate else 0.0
 
     @property
     def lossy(self) -> bool:
@@ -73,7 +80,8 @@ def probe(path: str) -> FileInfo:
         raise InputError(f"{path} is empty (0 bytes)")
     try:
         info = sf.info(path)
-        fi = FileInfo(path, int(info.samplerate), int(info.channels), int(info.frames), info.format, info.subtype)
+        fi = FileInfo(path, int(info.samplerate), int(info.channels), int(info.frames), info.format, info.subtype,
+                      _wav_claimed_frames(path, int(info.frames)) if info.format == "WAV" else None)
     except (sf.LibsndfileError, RuntimeError, OSError) as e:
         fi = _probe_ffmpeg(path, _short(e))
     if fi.frames <= 0 or fi.samplerate <= 0:
@@ -83,6 +91,32 @@ def probe(path: str) -> FileInfo:
     if fi.duration_s < MIN_DURATION_S:
         raise InputError(f"{path} is only {fi.duration_s:.2f} s long: record at least 30 s of ticking")
     return fi
+
+
+def _wav_claimed_frames(path: str, frames: int) -> int | None:
+    """The frames a RIFF WAV's data chunk claims, when more than the file holds (libsndfile reads
+    what is there and reports that; the header's own figure tells a file cut short)."""
+    import struct
+
+    try:
+        with open(path, "rb") as f:
+            head = f.read(1 << 16)
+    except OSError:
+        return None
+    if head[:4] != b"RIFF" or head[8:12] != b"WAVE":
+        return None
+    i, align = 12, 0
+    while i + 8 <= len(head):
+        cid, size = head[i: i + 4], struct.unpack("<I", head[i + 4: i + 8])[0]
+        if cid == b"fmt " and i + 22 <= len(head):
+            align = struct.unpack("<H", head[i + 20: i + 22])[0]  # bytes per frame (all channels)
+        elif cid == b"data":
+            if not align or size == 0xFFFFFFFF:
+                return None
+            claimed = size // align
+            return claimed if claimed > frames else None
+        i += 8 + size + (size & 1)
+    return None
 
 
 FFMPEG_FORMAT = "FFMPEG"  # FileInfo.format of a file decoded by ffmpeg (subtype: its codec)
@@ -201,19 +235,47 @@ def choose_channel(path: str, info: FileInfo, seconds: float = 20.0) -> int:
     return best_c
 
 
-def _zero_nonfinite(y: np.ndarray, tally: dict | None) -> np.ndarray:
-    """Float samples that are not numbers (NaN, +-inf: a damaged float file) become silence and
-    are counted in ``tally["nonfinite"]``; one summing pass when there are none."""
-    with np.errstate(all="ignore"):
-        if math.isfinite(float(np.sum(y))):
-            return y
+class _Unusable:
+    """Samples that are not numbers (NaN, +-inf: a damaged float file) are lost audio, not silence:
+    they become gaps in the stream (``Block.gap_before``), which the analysis never counts as
+    missed steps.  Counted in ``tally["nonfinite"]``; runs less than ``min_good_s`` apart are one
+    gap (the few samples between them cannot be analyzed)."""
+
+    def __init__(self, samplerate: float, tally: dict | None, min_good_s: float = 0.01):
+        self.tally = tally
+        self.min_good = max(1, int(min_good_s * samplerate))
+        self.pending = 0  # unusable samples not yet handed over (a run reaching the block's end)
+
+    def blocks(self, y: np.ndarray, pos: int) -> list[Block]:
+        """The usable parts of ``y`` (stream index ``pos`` of its first sample) as Blocks."""
+        with np.errstate(all="ignore"):
+            clean = math.isfinite(float(np.sum(y)))
+        if clean:
+            out = [Block(y, pos, gap_before=self.pending)] if len(y) else []
+            self.pending = 0 if len(y) else self.pending
+            return out
         bad = ~np.isfinite(y)
-    n_bad = int(np.count_nonzero(bad))
-    if n_bad:
-        y = np.where(bad, np.float32(0.0), y)
-        if tally is not None:
-            tally["nonfinite"] = tally.get("nonfinite", 0) + n_bad
-    return y
+        if self.tally is not None:
+            self.tally["nonfinite"] = self.tally.get("nonfinite", 0) + int(np.count_nonzero(bad))
+        edges = np.flatnonzero(np.diff(np.concatenate([[True], bad, [True]]).astype(np.int8)))
+        goods = [(int(a), int(b)) for a, b in zip(edges[0::2], edges[1::2])]  # runs of usable samples
+        out, cursor = [], 0
+        for i, (a, b) in enumerate(goods):
+            inner = 0 < a and b < len(y)  # bounded by unusable samples on both sides
+            if inner and b - a < self.min_good:
+                continue  # too short to analyze between two runs: part of the gap
+            out.append(Block(y[a:b], pos + a, gap_before=self.pending + a - cursor))
+            self.pending, cursor = 0, b
+        self.pending += len(y) - cursor
+        return out
+
+    def end(self, pos: int) -> list[Block]:
+        """An unusable stretch at the end of the file: an empty block after it, so it counts as a gap."""
+        if not self.pending:
+            return []
+        out = [Block(np.zeros(0, dtype=np.float32), pos, gap_before=self.pending)]
+        self.pending = 0
+        return out
 
 
 def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FRAMES, *,
@@ -221,8 +283,8 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
     """Yield the chosen channel as float32 Blocks; the file is closed even if abandoned early.
 
     With ``start_frame`` reading starts there, and the blocks count samples from it (a log
-    resumed part-way through a file).  Float samples that are not numbers are read as silence
-    and counted in ``tally["nonfinite"]`` when a dict is given.  With ``integers``, 8-, 16- and
+    resumed part-way through a file).  Float samples that are not numbers are lost audio: they
+    become gaps (``Block.gap_before``) and are counted in ``tally["nonfinite"]`` when a dict is given.  With ``integers``, 8-, 16- and
     24-bit PCM comes as read (int16 or int32 Blocks with their ``scale``; the analyzer converts
     only what it needs, skipping a pass over every sample); other files as float32 still.
     """
@@ -236,6 +298,7 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
     # ~5x the rest of reading.  The result is the same float32 (1/2^15 and 1/2^31 are powers of
     # two; 24-bit samples are exact in float32), as tests/test_audiofile.py checks.
     dtype, scale = _NATIVE_READ.get(info.subtype, ("float32", None))
+    unusable = _Unusable(info.samplerate, tally)
     try:
         with sf.SoundFile(path) as f:
             if start_frame:
@@ -250,22 +313,23 @@ def blocks(path: str, info: FileInfo, channel: int, block_frames: int = BLOCK_FR
                 if not len(x):
                     break
                 if scale is None:
-                    y, y_scale = _zero_nonfinite(np.ascontiguousarray(x[:, channel]), tally), None
+                    yield from unusable.blocks(np.ascontiguousarray(x[:, channel]), pos)
                 elif integers:
-                    y, y_scale = np.ascontiguousarray(x[:, channel]), float(scale)
+                    yield Block(np.ascontiguousarray(x[:, channel]), pos, scale=float(scale))
                 else:
-                    y, y_scale = samples_as_float32(x[:, channel], scale), None
-                yield Block(y, pos, scale=y_scale)
-                pos += len(y)
+                    yield Block(samples_as_float32(x[:, channel], scale), pos)
+                pos += len(x)
     except (sf.LibsndfileError, OSError) as e:
         if pos == 0:
             raise InputError(f"{path}: cannot read audio ({_short(e)})") from e
+    yield from unusable.end(pos)
 
 
 def _ffmpeg_blocks(path: str, info: FileInfo, channel: int, block_frames: int, start_frame: int,
                    tally: dict | None = None) -> Iterator[Block]:
     pos = 0
     skip = int(start_frame)  # decoded and dropped: exact to the sample, as libsndfile's seek
+    unusable = _Unusable(info.samplerate, tally)
     try:
         for x in _ffmpeg_frames(path, info, block_frames):
             if skip:
@@ -273,13 +337,13 @@ def _ffmpeg_blocks(path: str, info: FileInfo, channel: int, block_frames: int, s
                 x, skip = x[drop:], skip - drop
                 if not len(x):
                     continue
-            y = _zero_nonfinite(np.ascontiguousarray(x[:, channel]), tally)
-            yield Block(y, pos)
-            pos += len(y)
+            yield from unusable.blocks(np.ascontiguousarray(x[:, channel]), pos)
+            pos += len(x)
     except _FfmpegFailed as e:
         if pos == 0:
             raise InputError(f"{path}: cannot decode audio (ffmpeg: {e})") from e
         # a truncated or damaged tail: keep what was decoded
+    yield from unusable.end(pos)
 
 
 def audio_format_for(path: str, subtype: str | None = None) -> tuple[str, str]:
