@@ -23,6 +23,7 @@ from rich.text import Text
 
 from ..export import rate_words
 from ..model import Summary
+from .layout import hanging
 from .textreport import residual_strip
 
 
@@ -113,6 +114,36 @@ def hourly_lines(hours, width: int, *, max_rows: int = 8) -> list[Text]:
     return out
 
 
+#: Steps this far over the noise (median, dB) or less get the placement hint (our own choice).
+WEAK_STEPS_DB = 15.0
+#: With no impulsive sound at all for this long (s), the hint says so (several step intervals of
+#: a movement stepping every second or faster; our own choice).
+NOTHING_HEARD_S = 10.0
+
+
+def _waiting(s: Summary) -> str:
+    """What the screen is waiting for before it has a rate."""
+    if s.steps_detected >= 3:
+        return f"{s.steps_detected} steps on the grid, fitting the rate…"
+    n = s.sounds_heard
+    if n == 0:
+        return "heard no sound yet, listening for steps…"
+    return f"heard {n} sound{'s' if n != 1 else ''}, finding the step interval…"
+
+
+def _placement_hint(s: Summary, st: LiveStatus) -> str | None:
+    """Advice on the input, given only on a level that was measured: the input's peak (clipping),
+    the steps' own level over the noise, or no sound standing out of the noise at all."""
+    if st.level_dbfs > -1:
+        return "clipping: lower the input gain"
+    if s.steps_detected >= 3 and math.isfinite(s.step_snr_db) and s.step_snr_db < WEAK_STEPS_DB:
+        return "steps are weak: put the microphone on the case, near the motor"
+    if s.sounds_heard == 0 and st.elapsed_s >= NOTHING_HEARD_S:
+        return (f"no sound has stood out of the noise in {st.elapsed_s:.0f} s: if the movement steps every "
+                "few seconds, put the microphone on the case, near the motor")
+    return None
+
+
 def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[RenderableType] | None = None,
                 mode: str = "listening") -> RenderableType:
     """The live screen; ``extra`` rows (the log's hourly rates) go under the counts."""
@@ -131,7 +162,7 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
         head.append(f"not a quartz stepping pattern (beat {s.measured_interval_s or 0:.4f} s)", style="yellow")
         parts.append(head)
     else:
-        head.append("listening for steps…" if s.steps_detected < 3 else "finding the step grid…", style="bold")
+        head.append(_waiting(s), style="bold")
         parts.append(head)
     counts = Text()
     beats = s.beats
@@ -161,10 +192,9 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
     if math.isfinite(s.step_snr_db):
         lv.append(f" · steps {s.step_snr_db:+.0f} dB over the noise")
     parts.append(lv)
-    if st.level_dbfs > -1:
-        parts.append(Text("  ! clipping: lower the input gain", style="red"))
-    elif s.steps_detected >= 3 and math.isfinite(s.step_snr_db) and s.step_snr_db < 15:
-        parts.append(Text("  ! steps are weak: put the microphone on the case, near the motor", style="yellow"))
+    hint = _placement_hint(s, st)
+    if hint:
+        parts.append(hanging("  ! ", hint, style="red" if hint.startswith("clipping") else "yellow"))
     mv = Text()
     for p in ("A", "B"):
         if p in s.ringdown:
@@ -178,7 +208,10 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
         mv.append(f"· bursts of {dg.bursts.steps_per_burst}: cell at end of life", style="red")
     if len(mv):
         parts.append(mv)
-    for w in s.warnings[:3 if width < 100 else 6]:
+    # while the step interval is still sought, the reason a finished recording would give for
+    # finding no pattern (too short, or "move the microphone") is not yet a finding
+    shown = [w for w in s.warnings if not (s.sound == "none" and w == s.sound_reason)]
+    for w in shown[:3 if width < 100 else 6]:
         if "uncalibrated" in w:
             w = "device clock uncalibrated (±4 s/day typical): pass --clock-ppm"
         parts.append(Text("! " + w, style="yellow", overflow="ellipsis", no_wrap=True))
