@@ -533,9 +533,9 @@ def test_ticking_that_stops_before_the_end_is_not_missed_in_the_hourly_lines(tmp
     assert hour_lines and not any("missed" in ln for ln in hour_lines), out
 
 
-def test_log_of_a_damaged_float_file_says_what_was_read_as_silence(tmp_path):
-    # a float WAV holding NaNs and infinities (a damaged file): they are read as silence, and the
-    # log says so -- in its JSON line, in its database and in the report's notes
+def test_log_of_a_damaged_float_file_says_what_was_lost(tmp_path):
+    # a float WAV holding NaNs and infinities (a damaged file): they are lost audio, gaps in the log
+    # (never missed steps), and the log says so -- in its JSON line, its database and the report
     x, _ = render_all(Scenario(duration_s=40, seed=12))
     x = x[:, 0].astype(np.float32)
     x[48000 * 20: 48000 * 20 + 300] = np.nan
@@ -549,5 +549,6 @@ def test_log_of_a_damaged_float_file_says_what_was_read_as_silence(tmp_path):
     assert d["nonfinite_samples"] == 305 and d["steps"] >= 38
     r = _cli("report", db, "--json")
     assert r.returncode == 0, r.stderr
-    notes = json.loads(r.stdout)["notes"]
-    assert any("305 samples" in n and "read as silence" in n for n in notes)
+    rep = json.loads(r.stdout)
+    assert any("305 samples" in n and "lost audio" in n for n in rep["notes"])
+    assert [g["kind"] for g in rep["gaps"]].count("unusable audio") == 2 and rep["missed_steps"] == 0

@@ -6,6 +6,7 @@ import pytest
 from tickscope.core.simulate import Scenario
 from tickscope.io.audiofile import blocks, probe
 from tickscope.io.simfile import write_simulation
+from tickscope.model import Block
 from tickscope.pipeline import Analyzer
 from conftest import analyze_scenario, true_step_times
 from tickscope.export import summary_to_dict
@@ -166,3 +167,80 @@ def test_low_bitrate_opus_voice_note_keeps_an_honest_interval(tmp_path):
     an2.finish()
     r2 = an2.rate()
     assert abs(r2.rate_s_per_day - exp) > r2.ci95_s_per_day
+
+
+def _with_passing_clock(path, *, other_db: float, other_first_s: float, gone_at_s: float = 25.0):
+    """The movement (a wall clock losing 5 s/day) for 100 s, and another clock (another voice, gaining
+    40 s/day, its first tick at ``other_first_s``) heard only until ``gone_at_s``."""
+    import soundfile as sf
+
+    from tickscope.core.simulate import render_all
+
+    x, truth = render_all(Scenario(duration_s=100, movement="wallclock", rate_s_per_day=-5.0, snr_db=30, seed=21))
+    y, _ = render_all(Scenario(duration_s=100, movement="alarmclock", rate_s_per_day=40.0, snr_db=60,
+                               level_dbfs=-12.0 + other_db, first_step_s=other_first_s, seed=22))
+    y[int(gone_at_s * 48000):] = 0.0
+    sf.write(path, (x[:, 0] + y[:, 0]).astype(np.float32), 48000, subtype="FLOAT")
+    return truth
+
+
+@pytest.mark.parametrize("other_db,other_first_s", [(6.0, 0.2), (0.0, 0.0), (0.0, 0.2), (-3.0, 0.5)])
+def test_a_clock_heard_only_at_the_start_does_not_take_the_grid(tmp_path, capsys, other_db, other_first_s):
+    # Another clock audible for the first 25 s only (louder, as loud, or on the movement's half
+    # second) once took the grid: the movement's real steps were filed as other sounds, 25 steps
+    # "missed" and "steps stopped 100 slots before the end".  The movement heard to the end is timed.
+    import json
+
+    from tickscope.cli import main
+
+    p = str(tmp_path / "passing.wav")
+    truth = _with_passing_clock(p, other_db=other_db, other_first_s=other_first_s)
+    assert main(["analyze", p, "--json", "--quiet", "--steps-csv", str(tmp_path / "s.csv")]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert d["sound"] == "stepping" and d["step_interval_s"] == 1.0
+    assert d["steps_detected"] == len(true_step_times(truth)) and d["missed_steps"] == 0
+    assert abs(d["rate_s_per_day"] + 5.0) <= d["rate_ci95_s_per_day"]
+    assert not any("stopped" in w and "slots before the end" in w for w in d["warnings"])
+
+
+def test_a_log_finds_the_grid_again_when_the_clock_it_followed_stops(tmp_path, capsys):
+    # a log cannot go back: once the clock it followed stops while the movement goes on, it must find
+    # the movement and time it from there (a device log once stayed on the wrong grid throughout)
+    import json
+
+    from tickscope.cli import main
+
+    p = str(tmp_path / "passing.wav")
+    _with_passing_clock(p, other_db=0.0, other_first_s=0.0)
+    db = str(tmp_path / "log.db")
+    assert main(["log", db, "--source", p, "--json", "--quiet"]) == 0
+    capsys.readouterr()
+    assert main(["report", db, "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    found = [g for g in d["gaps"] if g["kind"] == "grid found again"]
+    assert len(found) == 1 and 25.0 < found[0]["start_s"] < 45.0
+    assert d["missed_steps"] == 0 and d["steps_detected"] >= 100 - found[0]["start_s"] - 2
+    assert abs(d["rate_s_per_day"] + 5.0) <= d["rate_ci95_s_per_day"]
+
+
+def test_streaming_analysis_finds_the_grid_again_block_size_aside(tmp_path):
+    # live listening has no second pass: the summary says where the grid was found again, and the
+    # steps after it are the movement's, whatever the block sizes
+    import soundfile as sf
+
+    p = str(tmp_path / "passing.wav")
+    truth = _with_passing_clock(p, other_db=0.0, other_first_s=0.0)
+    x, fs = sf.read(p, dtype="float32")
+    found = []
+    for block in (4096, 48000 * 7 + 11):
+        an = Analyzer(fs)
+        for i in range(0, len(x), block):
+            an.feed(Block(x[i:i + block], i))
+        s = an.finish()
+        found.append(tuple(round(v, 6) for v in s.regrid_times_s))
+        assert s.sound == "stepping" and s.missed_steps == 0
+        assert abs(s.rate.rate_s_per_day + 5.0) <= s.rate.ci95_s_per_day
+        assert any("found the step grid again" in w for w in s.warnings)
+        after = true_step_times(truth)
+        assert s.steps_detected == int(np.count_nonzero(after > s.regrid_times_s[0] + 0.05))
+    assert found[0] == found[1] and len(found[0]) == 1

@@ -109,6 +109,13 @@ def notes(s, *, calibrated: bool, codec_shifts: tuple[int, float] | None, traili
     if dg is not None:
         first, later = _diagnosis_notes(dg)
         out = first + out + later
+    for t in s.regrid_times_s:
+        out.insert(0, f"the steps followed until {t:.0f} s stopped while another regular beat went on: tickscope "
+                      "found the step grid again there; the sounds followed before are counted as other sounds "
+                      "(another clock that stopped, or one the microphone was moved away from)")
+    if s.second_pass:
+        out.insert(0, "a first pass followed another clock that then stopped: the movement heard to the end was "
+                      "followed from the start in a second pass")
     if trailing_silence_slots:
         out.append(f"the steps stopped {trailing_silence_slots} slots before the end (not counted as missed)")
     if gaps:

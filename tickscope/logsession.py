@@ -137,7 +137,9 @@ class LogSession:
         an = self.an
         if block.gap_before > 0:
             g0 = an.duration_s
-            self.store.add_gap(self.seg, g0, g0 + block.gap_before / self.samplerate, "overflow")
+            # live: audio the capture lost; a file: samples that are not numbers
+            kind = "overflow" if block.host_time_s is not None else "unusable audio"
+            self.store.add_gap(self.seg, g0, g0 + block.gap_before / self.samplerate, kind)
             self.totals["gaps"] += 1
         evs = an.feed(block)
         self.position_s = an.duration_s
@@ -171,6 +173,14 @@ class LogSession:
         if position_s is not None:
             self.position_s = position_s
         for ev in events:
+            if ev.kind == "regrid":
+                # the clock followed so far was not the movement (it stopped while another beat went on)
+                gone = self.store.forget_steps(self.seg, ev.time_s)
+                for kind, n in gone.items():
+                    self.totals[_count_key(kind)] -= n
+                self.totals["rejected"] += gone["step"]
+                self.store.add_gap(self.seg, ev.time_s, ev.time_s, "grid found again")
+                continue
             if ev.kind == "secondary":
                 self.totals["secondary"] += 1
                 self._bucket_minute(ev).add(ev, False)

@@ -281,6 +281,8 @@ class Summary:
     alternation_us: float | None = None  # mean A->B minus B->A interval over all steps
     coherence: float = float("nan")  # how well the first impacts lined up on the grid (0..1)
     sounds_heard: int = 0  # impulsive sounds the detector found so far (steps or not)
+    regrid_times_s: tuple[float, ...] = ()  # where the step grid was found again (what was followed before: not steps)
+    second_pass: bool = False  # the steps were followed from the start on the grid a first pass ended on
     # set by the command that made the summary
     clock_calibrated: bool = False
     time_base: str | None = None

@@ -85,12 +85,15 @@ class Analyzer:
     lossy : bool
         The audio went through a lossy codec: abrupt shifts of the step times are looked for,
         and the rate is fitted within the stretches between them (see ``rate.level_shifts``).
+    prior : Grid or None
+        Track this step grid from the start (found by an earlier pass over the same audio:
+        ``analyzer.tracker.grid()``) instead of searching the first seconds for one.
     """
 
     def __init__(self, samplerate: float, *, channel: int = 0, clock_ppm: float | None = None,
                  clock_ppm_u95: float = 0.0, detector: DetectorConfig | None = None,
                  tracker: TrackerConfig | None = None, history_steps: int | None = None,
-                 lossy: bool = False):
+                 lossy: bool = False, prior=None):
         if not samplerate or samplerate <= 0:
             raise ParameterError(f"samplerate={samplerate!r}: expected > 0")
         self.samplerate = float(samplerate)
@@ -112,6 +115,10 @@ class Analyzer:
         self.n_clipped = 0
         self.gaps: list[tuple[float, float]] = []
         self._ringdown = AbnormalJudge()
+        self.regrid_times_s: list[float] = []  # where the grid was found again (the sounds before: not steps)
+        self.prior_used = prior is not None
+        if prior is not None:
+            self.tracker.start_from(prior)
         self._hum_buf: list[np.ndarray] = []
         self._hum_n = 0
         self._finished = False
@@ -213,10 +220,30 @@ class Analyzer:
                 self.n_secondary += 1
                 self.other_t.append(ev.time_s)
                 self.other_peak.append(ev.peak_dbfs)
+            elif ev.kind == "regrid":
+                self._forget_grid(ev.time_s)
             out.append(ev)
         if self.history_steps is not None:
             self._trim(self.history_steps)
         return out
+
+    def _forget_grid(self, t_s: float) -> None:
+        """The grid was found again: what was followed before were not this movement's steps (another
+        clock that stopped, one the microphone left).  Its steps become other sounds; its missed,
+        failed and corrected slots are forgotten."""
+        self.regrid_times_s.append(t_s)
+        t = np.concatenate([self.other_t.values, self.step_t.values])
+        pk = np.concatenate([self.other_peak.values, self.step_peak.values])
+        order = np.argsort(t, kind="stable")
+        for group in _COLUMNS:
+            for attr, _, _ in group:
+                getattr(self, attr).n = 0
+        for v, p in zip(t[order], pk[order]):
+            self.other_t.append(v)
+            self.other_peak.append(p)
+        self.n_clipped = 0
+        self.trailing_silence_slots = 0
+        self._ringdown = AbnormalJudge()
 
     def _trim(self, n: int) -> None:
         for group in _COLUMNS:  # the columns of a group stay aligned row by row
@@ -360,6 +387,8 @@ class Analyzer:
             alternation_us=alternation,
             coherence=tr.coherence,
             sounds_heard=self.sounds_heard,
+            regrid_times_s=tuple(self.regrid_times_s),
+            second_pass=self.prior_used,
         )
         return dataclasses.replace(s, warnings=advice.notes(
             s, calibrated=self.clock_ppm is not None, codec_shifts=self.shifts,

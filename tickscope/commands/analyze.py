@@ -10,8 +10,8 @@ from .common import DEMO_RECORDING, clock_from_args, console, recordings_dir, wr
 
 
 def run(args) -> int:
-    from ..export import StepsCsv, summary_to_dict
-    from ..io.audiofile import blocks, choose_channel, probe
+    from ..export import summary_to_dict
+    from ..io.audiofile import choose_channel, probe
     from ..pipeline import Analyzer
 
     path = args.path
@@ -37,14 +37,18 @@ def run(args) -> int:
         except OSError as e:
             raise ParameterError(f"cannot write {args.steps_csv}: {e.strerror}") from e
     try:
-        writer = StepsCsv(csv_fh) if csv_fh else None
         tally: dict = {}
-        run_file(an, blocks(path, info, channel, tally=tally, integers=True), info, writer,
-                 show_progress=not args.json and not args.quiet)
-        summary = an.finish()
-        if writer:
-            for ev in an.drain_final_events():
-                writer.write(ev)
+        summary = _one_pass(an, path, info, channel, csv_fh, tally, args)
+        if an.regrid_times_s and an.tracker.grid() is not None:
+            # A clock followed at first stopped and another went on (the movement, heard to the end):
+            # follow that one from the start, as if it had been found there (the CSV is written again).
+            an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                          lossy=info.lossy, prior=an.tracker.grid())
+            if csv_fh:
+                csv_fh.seek(0)
+                csv_fh.truncate()
+            tally = {}
+            summary = _one_pass(an, path, info, channel, csv_fh, tally, args)
     finally:
         if csv_fh:
             csv_fh.close()
@@ -77,6 +81,20 @@ def run(args) -> int:
         why = summary.sound_reason or (summary.warnings[-1] if summary.warnings else "no stepping pattern heard")
         raise NoStepsError(f"no steps could be found in {path}: {why}")
     return 0
+
+
+def _one_pass(an, path, info, channel, csv_fh, tally, args):
+    from ..export import StepsCsv
+    from ..io.audiofile import blocks
+
+    writer = StepsCsv(csv_fh) if csv_fh else None
+    run_file(an, blocks(path, info, channel, tally=tally, integers=True), info, writer,
+             show_progress=not args.json and not args.quiet)
+    summary = an.finish()
+    if writer:
+        for ev in an.drain_final_events():
+            writer.write(ev)
+    return summary
 
 
 def run_file(an, block_iter, info, writer, *, show_progress: bool) -> None:

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..model import Bursts, Event
-from .acquire import OpenImpact, find_grid
+from .acquire import Grid, OpenImpact, find_grid
 from .detect import Impact
 from .dsp import MovingLine, RollingWindow
 from .ringdown import measure_ringdown
@@ -49,6 +49,13 @@ class TrackerConfig:
     correction_min_s: float = 0.008  # a correction pulse follows a failed step after 8 ...
     correction_max_s: float = 0.085  # ... to 85 ms
     twitch_s: float = 0.005  # a failed step's twitch sounds within 5 ms of its slot
+    # the grid is looked for again when, over the last regrid_window_s of slots, at most this
+    # share held a well-matched step while other sounds went on (the clock followed stopped, or
+    # was not the movement: our own margins; a failing motor that misses 40 % of its steps keeps
+    # its grid, since no other grid is found among the sounds off it)
+    regrid_window_s: float = 8.0
+    regrid_matched_share: float = 0.6
+    regrid_coverage: float = 0.7  # a new grid must hold a matched step in this share of its slots
 
 
 class StepTracker:
@@ -86,6 +93,12 @@ class StepTracker:
         self.slots_heard = 0
         self.slots_matched = 0
         self._first_offset = {0: [0, 0.0, 0.0], 1: [0, 0.0, 0.0]}
+        # for looking again: the outcome of recent slots (1: a well-matched step) and the recent
+        # steps and sounds that were not steps, with their snippets (bounded)
+        self._outcomes: deque = deque(maxlen=max(8, int(math.ceil(self.cfg.regrid_window_s / 0.0625))))
+        self._recent: deque = deque(maxlen=600)
+        self._next_regrid_s = -math.inf
+        self.regrids: list[tuple[float, float, float]] = []  # (time, old interval, new interval)
 
     # -- public -------------------------------------------------------------------------
     def add_gap(self, start_s: float, end_s: float) -> None:
@@ -212,6 +225,25 @@ class StepTracker:
         cluster = self.cfg.cluster_s if self._b < 1.5 else self.cfg.burst_cluster_s
         return max(self.cfg.slot_tolerance_s, min(cluster, 0.6 * self._b))
 
+    def start_from(self, prior: "Grid") -> None:
+        """Track ``prior`` (a grid found earlier in this stream: its line in absolute times) from the
+        start, without searching (a second pass over a file, once the movement's grid is known)."""
+        self.measured_s, self.nominal_s, self.coherence = prior.measured_s, prior.nominal_s, prior.coherence
+        k0 = int(math.ceil((0.0 - prior.a) / prior.b))  # the first slot of the stream is number 0
+        self._a, self._b = prior.a + prior.b * k0, prior.b
+        swap = k0 % 2 == 1  # the polarities keep their sounds
+        self.templates = {p: prior.templates[(p + 1) % 2 if swap else p] for p in (0, 1)}
+        self.bursts = prior.bursts
+        self.acquired = True
+        self._next_slot = 0
+
+    def grid(self) -> "Grid | None":
+        """The grid tracked now (line in absolute times), for :meth:`start_from`."""
+        if not self.acquired:
+            return None
+        return Grid(self.measured_s, self.nominal_s, self.coherence, self._a, self._b, dict(self.templates), [], [],
+                    self.bursts)
+
     def _decide(self, position_s: float, final: bool = False) -> list[Event]:
         out: list[Event] = []
         # impacts are emitted ~post_s after their onset; allow for that delay
@@ -225,6 +257,8 @@ class StepTracker:
                     break
             out += self._decide_slot(k, pred)
             self._next_slot += 1
+            if not final:
+                out += self._maybe_regrid(pred)
         return out
 
     def _decide_slot(self, k: int, pred: float) -> list[Event]:
@@ -237,6 +271,7 @@ class StepTracker:
             self._note_heard(k, pred, in_slot, step, correction)
         later = self._burst_steps(step) if step is not None and self.bursts is not None else []
         out = self._sort_rest(k, pred, step or correction or failed, (step, failed, correction, *later))
+        self._outcomes.append(1 if step is not None and step.match >= self.cfg.good_match else 0)
         if failed is not None:
             out.insert(0, Event("failed", failed.t_s, step=k, polarity="AB"[k % 2], peak_dbfs=failed.imp.peak_dbfs,
                                 snr_db=failed.imp.frame_snr_db, match=failed.match, flags=("failed",)))
@@ -246,6 +281,7 @@ class StepTracker:
                                     match=correction.match, flags=("correction",)))
                 self._last_step_t = correction.t_s
         elif step is not None:
+            self._recent.append(step)
             for i, o in reversed(list(enumerate(later, start=1))):
                 if o is not None:
                     out.insert(0, self._step_event(o, k, out, burst_index=i))
@@ -319,6 +355,52 @@ class StepTracker:
                 failed = None  # as loud as the noise's own blips around it: no evidence of a twitch
         return step, failed, correction
 
+    def _maybe_regrid(self, now_s: float) -> list[Event]:
+        """After the slot at ``now_s``: look for the grid again when its steps have (mostly) vanished
+        while other sounds go on, and switch to a quartz grid found among the sounds decided in the
+        last seconds (a ``regrid`` event marks the switch).  Decided slot by slot, so the result does
+        not depend on how the audio was cut into blocks."""
+        cfg = self.cfg
+        w = max(8, int(math.ceil(cfg.regrid_window_s / self._b)))
+        recent = list(self._outcomes)[-w:]
+        if len(recent) < w or now_s < self._next_regrid_s or np.mean(recent) > cfg.regrid_matched_share:
+            return []
+        self._next_regrid_s = now_s + cfg.retry_s
+        horizon = now_s
+        # the sounds of the last acquire_s (as the first search): the clock followed may still be in
+        # an older stretch, and would be found again
+        ring = sorted((o for o in self._recent if o.t_s >= horizon - cfg.acquire_s), key=lambda o: o.t_s)
+        if len(ring) < 8:
+            return []
+        fresh = [OpenImpact(o.imp, o.imp.snippet_start / self.samplerate
+                            + onset_of(o.imp.snippet, self.samplerate, search_from=max(0, self.pre - int(0.004 * self.samplerate)),
+                                       search_to=self.pre + int(FIRST_IMPACT_PEAK_S * self.samplerate)) / self.samplerate)
+                 for o in ring]
+        g = find_grid(fresh, cfg, self.samplerate, self.pre)
+        if g is None or g.nominal_s is None:
+            return []
+        span_slots = (fresh[-1].t_s - fresh[0].t_s) / g.b
+        same = abs(g.b / self._b - 1) < 0.002 and abs(((g.a - self._a) / self._b + 0.5) % 1.0 - 0.5) * self._b < 0.02
+        if same or len(g.fine_k) < cfg.regrid_coverage * span_slots:
+            return []
+        # continue on the new grid from the first of its slots not yet decided
+        k_next = int(math.ceil((horizon - g.a) / g.b))
+        shift = self._next_slot - k_next  # the new grid's slot k_next is the tracker's next slot
+        old_b = self._b
+        self._a, self._b = g.a - g.b * shift, g.b
+        self.measured_s, self.nominal_s, self.coherence = g.measured_s, g.nominal_s, g.coherence
+        self.templates = {p: g.templates[(p + shift) % 2] for p in (0, 1)}  # polarity by the tracker's numbers
+        self.bursts = g.bursts
+        self._fit = MovingLine(cfg.track_steps)
+        self._fit.extend(((k + shift, t) for k, t in zip(g.fine_k, g.fine_t_s) if k >= k_next - cfg.track_steps))
+        self._pol_res = {0: RollingWindow(32), 1: RollingWindow(32)}
+        self._peaks = RollingWindow(64)
+        self._outcomes.clear()
+        self._recent.clear()
+        self._time_many(self._open)
+        self.regrids.append((horizon, old_b, g.b))
+        return [Event("regrid", horizon, step=self._next_slot, flags=("regrid",))]
+
     def _note_heard(self, k: int, pred: float, in_slot: list[OpenImpact], step, correction) -> None:
         """How well the sounds on the grid repeat (see ``slots_heard``, ``onset_scatter_s``)."""
         self.slots_heard += 1
@@ -346,6 +428,7 @@ class StepTracker:
                 else:
                     out.append(self._reject(o))
                     self._offgrid.append((o.t_s, o.imp.peak_dbfs))
+                    self._recent.append(o)
             else:
                 rest.append(o)
         self._open = rest

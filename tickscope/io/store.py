@@ -246,6 +246,25 @@ class LogStore:
         with self._guard():
             self.db.execute("INSERT INTO blocks VALUES (?, ?, ?, ?, ?)", (seg, int(start_sample), host_s, wall_s, adc_s))
 
+    def forget_steps(self, seg: int, before_s: float) -> dict[str, int]:
+        """The grid was found again at ``before_s``: what segment ``seg`` stored as steps before it
+        become rejected sounds (another clock's ticks), and its missed, failed and corrected slots
+        go.  (As the analyzer forgets them, see ``Analyzer._forget_grid``.)  Returns how many of each
+        kind were forgotten."""
+        self.commit()  # the batched rows first: then one query sees them all
+        step, rejected = KIND_CODES["step"], KIND_CODES["rejected"]
+        gone = (KIND_CODES["missed"], KIND_CODES["failed"], KIND_CODES["correction"])
+        names = {v: k for k, v in KIND_CODES.items()}
+        self._begin()
+        with self._guard():
+            counts = {names[int(k)]: int(n) for k, n in self.db.execute(
+                "SELECT kind, COUNT(*) FROM events WHERE seg=? AND time_s<? GROUP BY kind", (seg, before_s))}
+            self.db.execute("UPDATE events SET kind=?, step=NULL, pol=NULL WHERE seg=? AND time_s<? AND kind=?",
+                            (rejected, seg, before_s, step))
+            self.db.execute(f"DELETE FROM events WHERE seg=? AND time_s<? AND kind IN ({','.join('?' * len(gone))})",
+                            (seg, before_s, *gone))
+        return {k: counts.get(k, 0) for k in ("step", "missed", "failed", "correction")}
+
     def add_gap(self, seg: int, start_s: float, end_s: float, kind: str) -> None:
         self._begin()
         with self._guard():
