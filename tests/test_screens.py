@@ -6,6 +6,7 @@ matplotlib objects the PNG files are written from.
 """
 import io
 import os
+import re
 
 import numpy as np
 import pytest
@@ -121,3 +122,86 @@ def test_listen_says_what_it_waits_for_and_advises_placement_only_on_a_measured_
     assert s.sounds_heard == 0
     words = _squash(text)
     assert "heard no sound yet" in words and "microphone" in words
+
+
+# -- the report of a short log -------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def minute_log(tmp_path_factory):
+    """A one-minute log of a movement with two missed steps (58 steps)."""
+    d = tmp_path_factory.mktemp("minute")
+    wav = str(d / "bench-3-carriage-clock.wav")
+    write_simulation(wav, Scenario(samplerate_hz=16000, duration_s=60, missed_steps=(20, 40), snr_db=30, seed=2))
+    db = str(d / "minute.db")
+    assert main(["log", db, "--source", wav, "--quiet"]) == 0
+    return db
+
+
+def _report(db: str, monkeypatch, *args) -> str:
+    from tickscope.commands import report as report_cmd
+
+    buf = io.StringIO()
+    monkeypatch.setattr(report_cmd, "console", lambda stderr=False: Console(file=buf, width=WIDTH, color_system=None))
+    assert main(["report", db, *args]) == 0
+    return buf.getvalue()
+
+
+def test_report_of_a_one_minute_log_reads_its_times_in_seconds(minute_log, monkeypatch):
+    # the header said "0 h 01 min", the timeline ran "0 h … 0.0 h", the time error "0 h … 0 h", the
+    # best stretch "0 h 00 min … from 0.00 h"
+    text = _report(minute_log, monkeypatch)
+    assert not re.search(r"\b0(\.0+)? h\b", text), text
+    lines = _inner_lines(text)
+    strip = next(i for i, ln in enumerate(lines) if ln.startswith("▕"))
+    assert re.fullmatch(r"0 s +(59|60) s", lines[strip + 1].strip()), lines[strip + 1]
+    err_axis = [ln for ln in lines if re.fullmatch(r"[\d.]+ s +[\d.]+ s", ln.strip())]
+    assert len(err_axis) == 2, lines  # the timeline's and the time error's
+    assert re.search(r"best stretch: \d+ s without", _squash(text))
+
+
+def test_report_plots_of_a_one_minute_log_read_in_seconds_and_stay_inside_the_log(minute_log, monkeypatch,
+                                                                                   saved_figures, tmp_path):
+    # the axes ran 0.000-0.016 h and the ring-down's one point sat at 0.5 h, 29 minutes past the end
+    _report(minute_log, monkeypatch, "--out", str(tmp_path / "plots"))
+    assert {"rate.png", "tie.png", "adev.png", "ringdown.png"} <= set(saved_figures)
+    for name in ("rate.png", "tie.png", "ringdown.png"):
+        ax = saved_figures[name].axes[-1] if name == "tie.png" else saved_figures[name].axes[0]
+        assert "(s)" in ax.get_xlabel() and "(h)" not in ax.get_xlabel(), (name, ax.get_xlabel())
+        lo, hi = ax.get_xlim()
+        assert -1 <= lo and hi <= 61, (name, lo, hi)
+    for name in ("rate.png", "ringdown.png"):
+        x = _plotted_x(saved_figures[name].axes[0])
+        assert len(x) and x.min() >= 0 and x.max() <= 60, (name, x)
+
+
+def test_report_of_a_log_without_steps_draws_none_and_does_not_wait_for_the_hour(tmp_path, monkeypatch):
+    # an escapement logged by mistake: its report drew the whole timeline with the step glyph and
+    # said "the first hour is still filling" of a log that had ended
+    wav = str(tmp_path / "escapement.wav")
+    write_simulation(wav, Scenario(samplerate_hz=8000, duration_s=40, step_interval_s=0.2,
+                                   polarity_asymmetry_us=2000, snr_db=30, movement="wristwatch", seed=2))
+    db = str(tmp_path / "esc.db")
+    main(["log", db, "--source", wav, "--quiet"])
+    text = _report(db, monkeypatch)
+    strip = next(ln for ln in _inner_lines(text) if ln.startswith("▕"))
+    assert "━" not in strip, strip
+    assert "still filling" not in text and "rate per hour: none" in _squash(text)
+
+
+def test_report_of_a_finished_short_log_does_not_wait_for_the_hour(tmp_path, monkeypatch):
+    wav = str(tmp_path / "five.wav")
+    write_simulation(wav, Scenario(samplerate_hz=16000, duration_s=5, snr_db=30, seed=1))
+    db = str(tmp_path / "five.db")
+    assert main(["log", db, "--source", wav, "--quiet"]) == 0
+    words = _squash(_report(db, monkeypatch))
+    assert "still filling" not in words and "rate per hour: none" in words, words
+
+
+def test_report_names_the_jitter_of_each_figure(minute_log, monkeypatch):
+    # the header said "jitter 0.0 µs" and the time-error section "rms 0.05 µs": two figures of one
+    # log, unnamed, that read as a contradiction
+    words = _squash(_report(minute_log, monkeypatch))
+    assert "jitter" not in words
+    fit = re.search(r"rate fit residual ([\d.]+) µs rms", words)
+    tie = re.search(r"time error after the rate line: rms ([\d.]+) µs", words)
+    assert fit and tie, words
+    assert float(fit.group(1)) > 0 and float(tie.group(1)) > 0  # both shown with enough digits to read

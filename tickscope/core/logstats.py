@@ -79,6 +79,11 @@ class LogFigures:
     event_t: np.ndarray = field(default_factory=lambda: np.zeros(0))
     event_k: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
     event_pol: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))  # 0 A, 1 B, -1 none
+    # for the report's screens (not in its JSON): where the log starts on its timeline, the time of
+    # every step heard, and whether its last segment recorded an end (False: still logging, or killed)
+    start_s: float = 0.0
+    step_times_s: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    ended: bool = True
 
 
 def _rate_allowing_unseen(k, t, nominal, **kw):
@@ -217,7 +222,8 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     nominal = next((s.step_interval_s for s in segments if s.step_interval_s), None)
     kinds = ev["kind"]
     if nominal is None or not len(kinds):
-        return _empty(segments, nominal, ev, gaps, minutes)
+        return _empty(segments, nominal, ev, gaps, minutes, note="no stepping pattern was heard in the log"
+                      if _ended(segments) else "no stepping pattern has been logged yet")
     T, K, G, notes = number_steps(segments, ev, nominal, override_ppm)
     P, renamed = polarity_on_log(segments, ev, K)
     for sid in renamed:
@@ -253,7 +259,12 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
         groups=int(G.max()) + 1 if len(G) else 1, gaps=gap_list, hourly=hourly, minutes=_merge_minutes(minutes),
         adev=adev, tie=tie, worst_hour=worst, best_stretch=best, missed_times_s=missed_t, failed_times_s=failed_t,
         rejected_times_s=rejected_t, notes=notes, step_t=step_t, step_x=step_x, step_k=step_k, ringdown_hourly=ring,
-        event_t=T, event_k=K, event_pol=P)
+        event_t=T, event_k=K, event_pol=P, start_s=t_lo, step_times_s=T[steps_all], ended=_ended(segments))
+
+
+def _ended(segments) -> bool:
+    """Whether the log's last segment recorded its end (a log still being written, or killed, has not)."""
+    return not segments or getattr(segments[-1], "end_reason", None) is not None
 
 
 def _clock_terms(segments, override_ppm, override_u95: float, notes: list[str]) -> tuple[bool, float, float | None]:
@@ -437,7 +448,7 @@ def _best_stretch(spans, gaps, anomalies_t, K, T, G, good, nominal, u95, calibra
             "rate_ci95_s_per_day": None if r is None else r.ci95_s_per_day}
 
 
-def _empty(segments, nominal, ev, gaps, minutes, *, note: str = "no stepping pattern has been logged yet",
+def _empty(segments, nominal, ev, gaps, minutes, *, note: str,
            steps: int | None = None) -> LogFigures:
     z = np.zeros(0)
     dur = sum(s.duration_s for s in segments)
@@ -449,4 +460,5 @@ def _empty(segments, nominal, ev, gaps, minutes, *, note: str = "no stepping pat
                       groups=1, gaps=[], hourly=[], minutes=_merge_minutes(minutes), adev=None, tie=None,
                       worst_hour=None, best_stretch=None, missed_times_s=z, failed_times_s=z, rejected_times_s=z,
                       notes=[note], event_t=ev["time_s"], event_k=ev["step"],
-                      event_pol=ev["pol"])
+                      event_pol=ev["pol"], step_times_s=ev["time_s"][ev["kind"] == KIND_STEP] if steps else z,
+                      ended=_ended(segments))

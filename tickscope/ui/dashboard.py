@@ -81,14 +81,16 @@ def level_bar(level_dbfs: float, width: int = 24) -> Text:
     return t
 
 
-def hourly_lines(hours, width: int, *, max_rows: int = 8) -> list[Text]:
+def hourly_lines(hours, width: int, *, max_rows: int = 8,
+                 empty: str = "rate per hour: the first hour is still filling") -> list[Text]:
     """Rate per hour on one shared scale: each hour a row, its interval a bar, its estimate a mark.
 
-    ``hours``: records with ``hour, rate_s_per_day, ci95_s_per_day, steps, missed, complete``.
+    ``hours``: records with ``hour, rate_s_per_day, ci95_s_per_day, steps, missed, complete``;
+    ``empty``: the line shown while no hour has a rate (a finished log says why).
     """
     rows = [h for h in hours if math.isfinite(h.rate_s_per_day)][-max_rows:]
     if not rows:
-        return [Text("rate per hour: the first hour is still filling", style="dim")]
+        return [Text(empty, style="dim")]
     lo = min(h.rate_s_per_day - h.ci95_s_per_day for h in rows)
     hi = max(h.rate_s_per_day + h.ci95_s_per_day for h in rows)
     pad = max((hi - lo) * 0.1, 0.005)

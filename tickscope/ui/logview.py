@@ -22,24 +22,27 @@ from rich.text import Text
 from ..export import rate_words
 from ..units import SECONDS_PER_DAY
 from .dashboard import hourly_lines
+from .layout import axis_label, duration_words, hanging, phrase_lines, time_unit
 from .textreport import residual_strip
 
 
-def _hms(s: float) -> str:
-    s = max(0.0, s)
-    return f"{int(s // 3600)} h {int(s % 3600 // 60):02d} min"
-
-
 def timeline_strip(fig, width: int) -> Text:
-    """One character per stretch of the log: covered, gap, missed/failed step, other sounds."""
+    """One character per stretch of the log: steps heard, audio without steps, gaps, missed and
+    failed steps, other sounds; under it the ends of the log in a unit chosen from its span."""
     t = Text()
     if fig.span_s <= 0:
         return t
-    t0 = min([a for a, _, _ in fig.gaps] + [0.0])
+    t0 = fig.start_s
     w = max(10, width)
     edges = np.linspace(t0, t0 + fig.span_s, w + 1)
-    chars = ["━"] * w
-    styles = ["green"] * w
+    # a column holds steps when one was heard within a step interval of it (a column can be
+    # shorter than the interval between steps)
+    near = fig.nominal_s or 0.0
+    steps = np.sort(np.asarray(fig.step_times_s, dtype=np.float64))
+    n_lo = np.searchsorted(steps, edges[:-1] - near, side="left")
+    n_hi = np.searchsorted(steps, edges[1:] + near, side="right")
+    chars = ["━" if hi > lo else "┈" for lo, hi in zip(n_lo, n_hi)]
+    styles = ["green" if c == "━" else "dim" for c in chars]
 
     def cols(times):
         return np.clip(np.searchsorted(edges, times, side="right") - 1, 0, w - 1)
@@ -47,12 +50,13 @@ def timeline_strip(fig, width: int) -> Text:
     for c in cols(fig.rejected_times_s):
         chars[c], styles[c] = "┅", "yellow"
     for a, b, kind in fig.gaps:
+        c0, c1 = int(cols(np.array([a]))[0]), int(cols(np.array([b]))[0])
         if kind == "restart":
-            c = int(cols(np.array([a]))[0])
-            chars[c], styles[c] = "┃", "blue"
+            chars[c0], styles[c0] = "┃", "blue"
             continue
-        for c in range(int(cols(np.array([a]))[0]), int(cols(np.array([b]))[0]) + 1):
-            chars[c], styles[c] = " ", ""
+        silent = kind in ("no steps heard", "steps stopped")  # audio, but no steps in it
+        for c in range(c0, c1 + 1):
+            chars[c], styles[c] = ("┈", "dim") if silent else (" ", "")
     for c in cols(fig.missed_times_s):
         chars[c], styles[c] = "✕", "bold red"
     for c in cols(fig.failed_times_s):
@@ -61,41 +65,61 @@ def timeline_strip(fig, width: int) -> Text:
     for ch, st in zip(chars, styles):
         t.append(ch, style=st)
     t.append("▏\n")
-    t.append(" 0 h".ljust(w - 6) + f"{fig.span_s / 3600:.1f} h", style="dim")
-    t.append("\n ━ steps  ┅ other sounds  ✕ missed  ! failed  ┃ restart  (blank) no audio", style="dim")
+    unit, per = time_unit(fig.span_s)
+    left, right = " " + axis_label(0.0, unit), axis_label(fig.span_s / per, unit)
+    t.append(left.ljust(max(w + 1 - len(right), len(left) + 1)) + right, style="dim")
+    legend = [("━", "steps"), ("┈", "no steps heard"), ("┅", "other sounds"), ("✕", "missed"), ("!", "failed"),
+              ("┃", "restart"), (" ", "(blank) no audio")]
+    shown = [f"{g} {name}" if g != " " else name for g, name in legend if g == "━" or g in chars]
+    t.append("\n " + "  ".join(shown), style="dim")
     return t
+
+
+def _us(v_us: float) -> str:
+    """A time error given in µs, with the digits that matter: 0.05 µs, 0.4 µs, 42 µs, 279.14 ms."""
+    if v_us >= 1000:
+        return _dur(v_us * 1e-6)
+    return f"{v_us:.0f} µs" if v_us >= 10 else (f"{v_us:.1f} µs" if v_us >= 1 else f"{v_us:.2f} µs")
+
+
+def _no_hourly_rate(fig) -> str:
+    """Why the rate-per-hour lines are empty."""
+    if not fig.steps_detected:
+        return "rate per hour: none (no steps logged)"
+    if not fig.ended:
+        return "rate per hour: none yet (too few steps in any hour so far)"
+    return "rate per hour: none (too few steps in any hour for a rate)"
 
 
 def render_log(fig, *, db: str, label: str, time_base: str, width: int = 100,
                device_clock: list[dict] | None = None) -> RenderableType:
     parts: list[RenderableType] = []
-    head = Text()
-    head.append(f"{label or 'unlabelled movement'}", style="bold")
-    head.append(f" · {fig.segments} segment{'s' if fig.segments != 1 else ''} · {_hms(fig.span_s)} "
-                f"({_hms(fig.duration_s)} of audio) · "
-                + (f"step every {fig.nominal_s:g} s" if fig.nominal_s else "no step interval"))
-    parts.append(head)
-    parts.append(Text(f"time base: {time_base}", style="dim"))
+    inner = width - 4  # the panel's borders and padding
+    lasted = (f"{duration_words(fig.duration_s)} of audio" if abs(fig.span_s - fig.duration_s) < 1
+              else f"{duration_words(fig.span_s)} ({duration_words(fig.duration_s)} of audio)")
+    parts.append(phrase_lines([(label or "unlabelled movement", "bold"),
+                               (f"· {fig.segments} segment{'s' if fig.segments != 1 else ''}", ""),
+                               (f"· {lasted}", ""),
+                               ("· " + (f"step every {fig.nominal_s:g} s" if fig.nominal_s else "no step interval"), "")],
+                              inner, sep=" "))
+    parts.append(hanging("", f"time base: {time_base}", style="dim"))
     r = fig.rate
-    v = Text()
     if r is not None:
-        v.append(rate_words(r.rate_s_per_day), style="bold")
-        v.append(f"  ± {r.ci95_s_per_day:.3f} s/day (95 %) over the whole log")
+        parts.append(phrase_lines([(rate_words(r.rate_s_per_day), "bold"),
+                                   (f"± {r.ci95_s_per_day:.3f} s/day (95 %)", ""), ("over the whole log", "")], inner))
     else:
-        v.append("no rate: " + (fig.notes[0] if fig.notes else "no stepping pattern logged"), style="yellow")
-    parts.append(v)
-    c = Text()
-    c.append(f"steps {fig.steps_detected}")
-    c.append(f" · missed {fig.missed_steps}", style="red" if fig.missed_steps else "")
-    c.append(f" · failed {fig.failed_steps}", style="red" if fig.failed_steps else "")
-    if fig.correction_pulses:
-        c.append(f" · correction pulses {fig.correction_pulses}", style="yellow")
-    c.append(f" · other sounds {fig.rejected_events}")
+        parts.append(hanging("", "no rate: " + (fig.notes[0] if fig.notes else "no stepping pattern logged"),
+                             style="yellow"))
     lost = sum(b - a for a, b, k in fig.gaps if k != "restart")
-    c.append(f" · gaps {sum(1 for g in fig.gaps if g[2] != 'restart')} ({lost:.0f} s)", style="yellow" if lost else "")
+    counts = [(f"steps {fig.steps_detected}", ""), (f"missed {fig.missed_steps}", "red" if fig.missed_steps else ""),
+              (f"failed {fig.failed_steps}", "red" if fig.failed_steps else "")]
+    if fig.correction_pulses:
+        counts.append((f"correction pulses {fig.correction_pulses}", "yellow"))
+    counts += [(f"other sounds {fig.rejected_events}", ""),
+               (f"gaps {sum(1 for g in fig.gaps if g[2] != 'restart')} ({lost:.0f} s)", "yellow" if lost else "")]
     if r is not None:
-        c.append(f" · jitter {r.jitter_us:.1f} µs", style="dim")
-    parts.append(c)
+        counts.append((f"rate fit residual {_us(r.jitter_us)} rms", "dim"))
+    parts.append(phrase_lines(counts, inner, sep=" · ", indent=""))
     parts.append(Text(""))
     parts.append(Text("timeline", style="bold"))
     parts.append(timeline_strip(fig, width - 8))
@@ -103,23 +127,9 @@ def render_log(fig, *, db: str, label: str, time_base: str, width: int = 100,
                              else float("nan"), ci95_s_per_day=h["rate_ci95_s_per_day"] or 0.0, steps=h["steps"],
                              missed=h["missed"], complete=h["covered_s"] >= 3599) for h in fig.hourly]
     parts.append(Text(""))
-    parts.extend(hourly_lines(hours, width - 4, max_rows=24 if width >= 100 else 12))
+    parts.extend(hourly_lines(hours, width - 4, max_rows=24 if width >= 100 else 12, empty=_no_hourly_rate(fig)))
     if len(fig.step_x) >= 3:
-        parts.append(Text(""))
-        k = fig.step_k.astype(np.float64)
-        A = np.vstack([np.ones(len(k)), k - k.mean()]).T
-        coef, *_ = np.linalg.lstsq(A, fig.step_x, rcond=None)
-        res_ms = (fig.step_x - A @ coef) * 1e3
-        unit, scale = ("ms", 1.0) if np.ptp(res_ms) >= 2.0 else ("µs", 1e3)
-        parts.append(Text(f"time error left after the rate line ({unit}; a bow is a drifting rate, a step a jump)",
-                          style="bold"))
-        parts.append(residual_strip(fig.step_t / 3600.0, res_ms * scale, width=width - 14, height=6, time_unit="h",
-                                    caption=f"time error {unit}"))
-        if fig.tie is not None:
-            parts.append(Text(f"accumulated time error {_dur(fig.tie.final_s, sign=True)} "
-                              f"({'ahead' if fig.tie.final_s < 0 else 'behind'}); after the rate line: "
-                              f"rms {_dur(fig.tie.detrended_rms_s)}, peak to peak "
-                              f"{_dur(fig.tie.detrended_peak_to_peak_s)}", style="dim"))
+        parts += _time_error_part(fig, width)
     if fig.adev is not None:
         parts.append(Text(""))
         tb = Table(title="overlapping Allan deviation (95 % interval)", title_justify="left", box=box.SIMPLE_HEAD)
@@ -132,19 +142,58 @@ def render_log(fig, *, db: str, label: str, time_base: str, width: int = 100,
         parts.append(tb)
     if fig.worst_hour:
         w = fig.worst_hour
-        parts.append(Text(f"worst hour: h{w['hour']} ({w['why']})", style="yellow"))
+        parts.append(hanging("", f"worst hour: h{w['hour']} ({w['why']})", style="yellow"))
     if fig.best_stretch:
         b = fig.best_stretch
+        unit, per = time_unit(fig.span_s)
         rate = "" if b["rate_s_per_day"] is None else f", {rate_words(b['rate_s_per_day'])} ± {b['rate_ci95_s_per_day']:.3f}"
-        parts.append(Text(f"best stretch: {_hms(b['duration_s'])} without a missed or failed step or a gap, from "
-                          f"{b['start_s'] / 3600:.2f} h{rate}", style="green"))
+        parts.append(hanging("", f"best stretch: {duration_words(b['duration_s'])} without a missed or failed step or "
+                                 f"a gap, from {axis_label((b['start_s'] - fig.start_s) / per, unit)}{rate}",
+                             style="green"))
     for d in device_clock or []:
-        parts.append(Text(f"segment {d['segment']}: the device clock ran {d['ppm']:+.2f} ± {d['ci95_ppm']:.2f} ppm "
-                          f"against the host clock (host {d['host_sync']})", style="dim"))
+        parts.append(hanging("", f"segment {d['segment']}: the device clock ran {d['ppm']:+.2f} ± {d['ci95_ppm']:.2f} "
+                                 f"ppm against the host clock (host {d['host_sync']})", style="dim"))
     for n in fig.notes:
-        parts.append(Text("! " + n, style="yellow"))
+        parts.append(hanging("! ", n, style="yellow"))
     return Panel(Group(*parts), title=f"tickscope · log report · {db}", title_align="left", box=box.ROUNDED,
                  width=width)
+
+
+def _time_error_part(fig, width: int) -> list[RenderableType]:
+    """The time error the rate line leaves, drawn over the log, and its figures, each named (the
+    rate fit's residual in the counts above is another figure: see ``_tie_vs_fit``)."""
+    parts: list[RenderableType] = [Text("")]
+    k = fig.step_k.astype(np.float64)
+    A = np.vstack([np.ones(len(k)), k - k.mean()]).T
+    coef, *_ = np.linalg.lstsq(A, fig.step_x, rcond=None)
+    res_ms = (fig.step_x - A @ coef) * 1e3
+    unit, scale = ("ms", 1.0) if np.ptp(res_ms) >= 2.0 else ("µs", 1e3)
+    parts.append(phrase_lines([(f"time error after the rate line ({unit})", "bold"),
+                               ("a bow is a drifting rate, a step a jump", "dim")], width - 4))
+    t_unit, per = time_unit(fig.span_s)
+    parts.append(residual_strip(fig.step_t / per, res_ms * scale, width=width - 14, height=6, time_unit=t_unit,
+                                caption=f"time error {unit}"))
+    tie = fig.tie
+    if tie is not None and np.isfinite(tie.detrended_rms_s):
+        text = (f"accumulated time error {_dur(tie.final_s, sign=True)} ({'ahead' if tie.final_s < 0 else 'behind'}); "
+                f"time error after the rate line: rms {_dur(tie.detrended_rms_s)}, peak to peak "
+                f"{_dur(tie.detrended_peak_to_peak_s)}" + _tie_vs_fit(fig))
+        parts.append(hanging("", text, style="dim"))
+    return parts
+
+
+def _tie_vs_fit(fig) -> str:
+    """Why the time error's rms can be far above the rate fit's residual: they are of different steps
+    and different lines (said only when they differ enough to be read as a contradiction)."""
+    r = fig.rate
+    tie_us = fig.tie.detrended_rms_s * 1e6
+    if r is None or tie_us <= 1.5 * r.jitter_us + 0.05:
+        return ""
+    left_out = f", {r.n_outliers} left out as outliers" if r.n_outliers else ""
+    starts = " and each stretch's own start" if fig.groups > 1 else ""
+    return (f" — more than the rate fit residual ({_us(r.jitter_us)} rms), which is of the {r.n_steps} steps the fit "
+            f"kept{left_out}, with the offset between the two polarities{starts} fitted; the time error is of "
+            f"all {len(fig.step_x)} steps on one line")
 
 
 def _dur(v: float, sign: bool = False) -> str:
@@ -155,7 +204,9 @@ def _dur(v: float, sign: bool = False) -> str:
         return f"{v:{f}.2f} s"
     if a >= 1e-3:
         return f"{v * 1e3:{f}.2f} ms"
-    return f"{v * 1e6:{f}.2f} µs"
+    if a >= 1e-7 or a == 0:
+        return f"{v * 1e6:{f}.2f} µs"
+    return f"{v * 1e9:{f}.0f} ns"
 
 
 def _tau(s: float) -> str:

@@ -5,6 +5,7 @@ import numpy as np
 
 from ..errors import ParameterError
 from ..units import SECONDS_PER_DAY
+from .layout import time_unit
 
 
 def _plt():
@@ -46,7 +47,7 @@ def plot_analysis(summary, analyzer, path: str, *, title: str = "") -> None:
     _save(plt, fig, path)
 
 
-def _shade_gaps(ax, fig, scale: float = 1 / 3600) -> None:
+def _shade_gaps(ax, fig, scale: float) -> None:
     for a, b, kind in fig.gaps:
         if kind == "restart":
             ax.axvline(a * scale, color="tab:blue", lw=0.8, ls=":", alpha=0.7)
@@ -54,7 +55,7 @@ def _shade_gaps(ax, fig, scale: float = 1 / 3600) -> None:
             ax.axvspan(a * scale, b * scale, color="0.85", zorder=0, lw=0)
 
 
-def _mark_anomalies(ax, fig, scale: float = 1 / 3600) -> None:
+def _mark_anomalies(ax, fig, scale: float) -> None:
     for i, t in enumerate(fig.missed_times_s):
         ax.axvline(t * scale, color="tab:red", lw=0.6, alpha=0.5, label="missed step" if i == 0 else None)
     for i, t in enumerate(fig.failed_times_s):
@@ -71,9 +72,11 @@ def _save(plt, figure, path: str) -> None:
 
 
 def _finish_timeline(plt, f, ax, fig, path: str, *, ylabel: str, title: str, legend: bool = True) -> str:
-    """Gaps, axis labels, grid and legend of a plot against the log's timeline; saves it."""
-    _shade_gaps(ax, fig)
-    ax.set_xlabel("time since the log began (h) — grey: no audio · dotted: analysis restarted")
+    """Gaps, axis labels and extent, grid and legend of a plot against the log's timeline; saves it."""
+    unit, per = time_unit(fig.span_s)
+    _shade_gaps(ax, fig, 1 / per)
+    ax.set_xlim(fig.start_s / per, (fig.start_s + max(fig.span_s, 1e-3)) / per)
+    ax.set_xlabel(f"time since the log began ({unit}) — grey: no audio · dotted: analysis restarted")
     ax.set_ylabel(ylabel)
     ax.set_title(title)
     ax.grid(alpha=0.3)
@@ -90,15 +93,16 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
     plt = _plt()
     os.makedirs(out_dir, exist_ok=True)
     paths = []
+    _, per = time_unit(fig.span_s)
     # rate over time
     f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
     mins = [m for m in fig.minutes if m.get("rate_s_per_day") is not None]
-    if mins:
-        ax.plot([(m["minute"] + 0.5) / 60 for m in mins], [m["rate_s_per_day"] for m in mins], ".", ms=2,
-                color="0.6", label="per minute")
+    if mins:  # each at the middle of the part of its minute the log covers
+        ax.plot([_within(fig, m["minute"] * 60.0, 60.0) / per for m in mins], [m["rate_s_per_day"] for m in mins],
+                ".", ms=2, color="0.6", label="per minute")
     hrs = [h for h in fig.hourly if h["rate_s_per_day"] is not None]
     if hrs:
-        ax.errorbar([h["center_s"] / 3600 for h in hrs], [h["rate_s_per_day"] for h in hrs],
+        ax.errorbar([h["center_s"] / per for h in hrs], [h["rate_s_per_day"] for h in hrs],
                     yerr=[h["rate_ci95_s_per_day"] for h in hrs], fmt="o", ms=4, capsize=3, color="tab:blue",
                     label="per hour, 95 % interval")
     if fig.rate is not None:
@@ -110,25 +114,26 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
             hi = max(h["rate_s_per_day"] + h["rate_ci95_s_per_day"] for h in hrs)
             pad = max(hi - lo, 0.02) * 1.5
             ax.set_ylim(lo - pad, hi + pad)
-    _mark_anomalies(ax, fig)
+    _mark_anomalies(ax, fig, 1 / per)
     paths.append(_finish_timeline(plt, f, ax, fig, os.path.join(out_dir, "rate.png"), ylabel="rate (s/day, + gains)",
                                   title=f"{title}: rate over time"))
     # time interval error: as it accumulates, and what the rate line leaves
     f, (ax, ax2) = plt.subplots(2, 1, figsize=(10, 7), constrained_layout=True, sharex=True)
     if len(fig.step_x):
-        ax.plot(fig.step_t / 3600, fig.step_x * 1e3, "-", lw=1, color="tab:blue")
+        big = np.ptp(fig.step_x) >= 1e-3  # ms for a millisecond or more, else µs
+        ax.plot(fig.step_t / per, fig.step_x * (1e3 if big else 1e6), "-", lw=1, color="tab:blue")
         k = fig.step_k.astype(np.float64)
         A = np.vstack([np.ones(len(k)), k - k.mean()]).T
         coef, *_ = np.linalg.lstsq(A, fig.step_x, rcond=None)
-        ax2.plot(fig.step_t / 3600, (fig.step_x - A @ coef) * 1e6, ".", ms=1.5, color="tab:blue")
-    ax.set_ylabel("time interval error (ms, − = ahead)")
+        ax2.plot(fig.step_t / per, (fig.step_x - A @ coef) * 1e6, ".", ms=1.5, color="tab:blue")
+    ax.set_ylabel(f"time interval error ({'ms' if len(fig.step_x) and np.ptp(fig.step_x) >= 1e-3 else 'µs'}, − = ahead)")
     ax.set_title(f"{title}: time error against the audio clock" + (" (corrected)" if fig.clock_correction_ppm is not None else ""))
     ax.grid(alpha=0.3)
-    _shade_gaps(ax, fig)
-    _mark_anomalies(ax, fig)
+    _shade_gaps(ax, fig, 1 / per)
+    _mark_anomalies(ax, fig, 1 / per)
     if len(fig.missed_times_s) or len(fig.failed_times_s):
         ax.legend(loc="best", fontsize=8)
-    _mark_anomalies(ax2, fig)
+    _mark_anomalies(ax2, fig, 1 / per)
     paths.append(_finish_timeline(plt, f, ax2, fig, os.path.join(out_dir, "tie.png"),
                                   ylabel="after the rate line (µs)", title="what the rate line does not explain: "
                                   "a bow is a drifting rate, a sawtooth logic regulation", legend=False))
@@ -151,16 +156,29 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
     _save(plt, f, paths[-1])
     # ring-down over time
     f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
+    centre = {h["hour"]: h["center_s"] for h in fig.hourly}
     for name, c in (("A", "tab:green"), ("B", "tab:orange")):
         rows = [r for r in fig.ringdown_hourly if r.get(name)]
         if not rows:
             continue
-        x = np.array([r["hour"] + 0.5 for r in rows])
+        # each hour at the mean time of its steps, kept inside the part of the hour the log covers
+        x = np.array([_within(fig, r["hour"] * 3600.0, 3600.0, centre.get(r["hour"])) for r in rows]) / per
         med = np.array([r[name]["median_ms"] for r in rows])
+        q1, q3 = np.array([r[name]["q1_ms"] for r in rows]), np.array([r[name]["q3_ms"] for r in rows])
         ax.plot(x, med, "o-", ms=3, color=c, label=f"polarity {name}, hourly median")
-        ax.fill_between(x, [r[name]["q1_ms"] for r in rows], [r[name]["q3_ms"] for r in rows], color=c, alpha=0.2,
-                        lw=0, label=f"polarity {name}, quartiles")
+        if len(rows) > 1:
+            ax.fill_between(x, q1, q3, color=c, alpha=0.2, lw=0, label=f"polarity {name}, quartiles")
+        else:  # one hour: a band of one point would not show
+            ax.errorbar(x, med, yerr=[med - q1, q3 - med], fmt="none", capsize=4, color=c, alpha=0.6,
+                        label=f"polarity {name}, quartiles")
     paths.append(_finish_timeline(plt, f, ax, fig, os.path.join(out_dir, "ringdown.png"),
                                   ylabel="ring-down decay τ (ms)", title=f"{title}: ring-down over time",
                                   legend=bool(fig.ringdown_hourly)))
     return paths
+
+
+def _within(fig, start_s: float, length_s: float, at_s: float | None = None) -> float:
+    """``at_s`` (default: the middle) of the part of [start, start + length) the log covers."""
+    lo = max(start_s, fig.start_s)
+    hi = max(lo, min(start_s + length_s, fig.start_s + fig.span_s))
+    return 0.5 * (lo + hi) if at_s is None else min(max(at_s, lo), hi)
