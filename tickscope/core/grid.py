@@ -50,7 +50,7 @@ class TrackerConfig:
     correction_max_s: float = 0.085  # ... to 85 ms
     twitch_s: float = 0.005  # a failed step's twitch sounds within 5 ms of its slot
     # the grid is looked for again when, over the last regrid_window_s of slots, at most this
-    # share held a well-matched step while other sounds went on (the clock followed stopped, or
+    # share held any sound while other sounds went on (the clock followed stopped, or
     # was not the movement: our own margins; a failing motor that misses 40 % of its steps keeps
     # its grid, since no other grid is found among the sounds off it)
     regrid_window_s: float = 8.0
@@ -93,7 +93,7 @@ class StepTracker:
         self.slots_heard = 0
         self.slots_matched = 0
         self._first_offset = {0: [0, 0.0, 0.0], 1: [0, 0.0, 0.0]}
-        # for looking again: the outcome of recent slots (1: a well-matched step) and the recent
+        # for looking again: the outcome of recent slots (1: a sound in the slot) and the recent
         # steps and sounds that were not steps, with their snippets (bounded)
         self._outcomes: deque = deque(maxlen=max(8, int(math.ceil(self.cfg.regrid_window_s / 0.0625))))
         self._recent: deque = deque(maxlen=600)
@@ -271,7 +271,9 @@ class StepTracker:
             self._note_heard(k, pred, in_slot, step, correction)
         later = self._burst_steps(step) if step is not None and self.bursts is not None else []
         out = self._sort_rest(k, pred, step or correction or failed, (step, failed, correction, *later))
-        self._outcomes.append(1 if step is not None and step.match >= self.cfg.good_match else 0)
+        # a slot counts as heard when any sound lay in it: steps that vanish leave silent slots (a
+        # sound that does not repeat well, a rattle, still fills them and keeps its grid)
+        self._outcomes.append(1 if in_slot else 0)
         if failed is not None:
             out.insert(0, Event("failed", failed.t_s, step=k, polarity="AB"[k % 2], peak_dbfs=failed.imp.peak_dbfs,
                                 snr_db=failed.imp.frame_snr_db, match=failed.match, flags=("failed",)))
