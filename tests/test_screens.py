@@ -16,7 +16,7 @@ from conftest import analyze_scenario
 from tickscope.cli import main
 from tickscope.core.detect import DetectorConfig
 from tickscope.core.simulate import Scenario, render_all
-from tickscope.io.simfile import write_simulation
+from tickscope.simulation import write_simulation
 from tickscope.model import Block
 from tickscope.pipeline import Analyzer
 
@@ -205,3 +205,64 @@ def test_report_names_the_jitter_of_each_figure(minute_log, monkeypatch):
     tie = re.search(r"time error after the rate line: rms ([\d.]+) µs", words)
     assert fit and tie, words
     assert float(fit.group(1)) > 0 and float(tie.group(1)) > 0  # both shown with enough digits to read
+
+
+# -- the analysis report at 80 columns ------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def missed_analysis():
+    s, an, *_ = analyze_scenario(Scenario(duration_s=120, missed_steps=(10, 11, 60), gate_dbfs=-60, snr_db=25,
+                                          seed=10))
+    assert s.missed_steps == 3
+    return s, an
+
+
+def test_headline_breaks_between_phrases(missed_analysis):
+    # "… (95 %)  over 117 steps in 119" / "s": the headline wrapped inside its last phrase
+    from tickscope.ui.textreport import render_summary
+
+    s, _ = missed_analysis
+    lines = _inner_lines(_text(render_summary(s, source="gated.flac", width=WIDTH)))
+    r = s.rate
+    phrases = [f"± {r.ci95_s_per_day:.3f} s/day (95 %)", f"over {r.n_steps} steps in {r.span_s:.0f} s"]
+    for p in phrases:
+        assert any(p in ln for ln in lines[:3]), (p, lines[:3])
+
+
+def test_notes_and_reading_wrap_with_a_hanging_indent(missed_analysis):
+    from tickscope.ui.textreport import render_summary
+
+    s, _ = missed_analysis
+    lines = _inner_lines(_text(render_summary(s, source="gated.flac", width=WIDTH)))
+    i = lines.index("notes")
+    body = lines[i + 1:]
+    assert body and body[0].startswith("  ! ")
+    assert len(body) > len(s.warnings)  # some notes take more than one line at 80 columns
+    for ln in body:
+        assert ln.startswith("  ! ") or ln.startswith("    "), body
+    j = lines.index("the repairer's reading")
+    for ln in lines[j + 1:i]:
+        assert ln.startswith("  • ") or ln.startswith("    ") or not ln.strip(), lines[j + 1:i]
+
+
+def test_reading_says_what_the_missed_steps_mean(missed_analysis):
+    # three missed steps, nothing else to diagnose: the repairer's reading was left out
+    from tickscope.ui.textreport import render_summary
+
+    s, _ = missed_analysis
+    words = _squash(_text(render_summary(s, source="gated.flac", width=WIDTH)))
+    assert "the repairer's reading" in words
+    reading = words.split("the repairer's reading", 1)[1].split(" notes ", 1)[0]
+    assert "3 missed steps" in reading and "10.5" in reading and "60.5" in reading, reading
+    assert "rate" in reading  # what they do (not) to the rate
+
+
+def test_analysis_plot_names_its_missed_step_lines(missed_analysis, saved_figures, tmp_path):
+    from tickscope.ui.plots import plot_analysis
+
+    s, an = missed_analysis
+    plot_analysis(s, an, str(tmp_path / "gated.png"), title="gated")
+    ax = saved_figures["gated.png"].axes[0]
+    legend = ax.get_legend()
+    assert legend is not None and any("missed step" in t.get_text() for t in legend.get_texts())
+    marked = [ln for ln in ax.get_lines() if ln.get_label().startswith("missed step")]
+    assert len(marked) == 1  # one legend entry for the three lines

@@ -49,22 +49,23 @@ def duration_words(s: float) -> str:
 
 
 def phrase_lines(phrases, width: int, *, sep: str = "  ", indent: str = "  ") -> Text:
-    """Phrases (``(text, style)`` pairs) on as few lines as fit ``width``, broken only between
-    phrases; a continuation line starts with ``indent``.  A phrase longer than a line is left to
-    wrap by itself."""
+    """Phrases (``(text, style)`` pairs or rich Texts) on as few lines as fit ``width``, broken
+    only between phrases; a continuation line starts with ``indent``.  A phrase longer than a
+    line is left to wrap by itself."""
     out = Text()
     used = 0
-    for text, style in phrases:
-        if not text:
+    for ph in phrases:
+        ph = ph if isinstance(ph, Text) else Text(ph[0], style=ph[1])
+        if not ph.plain:
             continue
-        n = cell_len(text)
+        n = ph.cell_len
         if used and used + cell_len(sep) + n > width:
             out.append("\n" + indent)
             used = cell_len(indent)
         elif used:
             out.append(sep)
             used += cell_len(sep)
-        out.append(text, style=style)
+        out.append_text(ph)
         used += n
     return out
 

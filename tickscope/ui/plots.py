@@ -22,25 +22,32 @@ def _plt():
 def plot_analysis(summary, analyzer, path: str, *, title: str = "") -> None:
     """Timing residuals and ring-down per step of one analysis, as a PNG."""
     plt = _plt()
+    unit, per = time_unit(summary.duration_s)
     fig, axes = plt.subplots(2, 1, figsize=(9, 6.5), constrained_layout=True)
     ax = axes[0]
     if summary.residuals_us is not None and len(summary.residuals_us):
-        ax.plot(summary.residual_times_s, summary.residuals_us, ".", ms=3, color="tab:blue")
-        for t in summary.missed_step_times_s:
-            ax.axvline(t, color="tab:red", lw=0.8, alpha=0.6)
-    ax.set_xlabel("time in recording (s)")
+        ax.plot(np.asarray(summary.residual_times_s) / per, summary.residuals_us, ".", ms=3, color="tab:blue",
+                label="step, against the rate line")
+    for i, t in enumerate(summary.missed_step_times_s):
+        ax.axvline(t / per, color="tab:red", lw=0.8, alpha=0.6, label="missed step (where it was due)" if i == 0 else None)
+    dg = summary.diagnosis
+    for i, t in enumerate(dg.failed.times_s if dg is not None else ()):
+        ax.axvline(t / per, color="tab:purple", lw=0.8, alpha=0.6, label="failed step" if i == 0 else None)
+    ax.set_xlabel(f"time in recording ({unit})")
     ax.set_ylabel("timing residual (µs)")
     r = summary.rate
     ax.set_title(f"{title}: " + (f"rate {r.rate_s_per_day:+.4f} ± {r.ci95_s_per_day:.4f} s/day (95 %)" if r else "no rate"))
     ax.grid(alpha=0.3)
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(loc="upper right", fontsize=8)
     ax = axes[1]
     t = analyzer.step_t.values
     d = analyzer.step_decay.values
     pol = analyzer.step_pol.values
     for p, name, c in ((0, "A", "tab:green"), (1, "B", "tab:orange")):
         sel = (pol == p) & np.isfinite(d)
-        ax.plot(t[sel], d[sel], ".", ms=3, color=c, label=f"polarity {name}")
-    ax.set_xlabel("time in recording (s)")
+        ax.plot(t[sel] / per, d[sel], ".", ms=3, color=c, label=f"polarity {name}")
+    ax.set_xlabel(f"time in recording ({unit})")
     ax.set_ylabel("ring-down decay τ (ms)")
     ax.legend(loc="upper right")
     ax.grid(alpha=0.3)

@@ -16,9 +16,11 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
+from .. import advice
 from ..export import rate_words
 from ..model import Summary
 from ..units import s_per_day_to_ppm
+from .layout import hanging, phrase_lines
 
 
 def _tlabel(v: float) -> str:
@@ -80,44 +82,53 @@ def _fmt(v: float | None, fmt: str, unit: str = "") -> str:
 
 def render_summary(s: Summary, *, source: str = "", width: int = 80) -> RenderableType:
     """The whole report as one rich renderable."""
-    parts: list[RenderableType] = [_headline(s), _readings(s)]
+    inner = min(width, 120) - 4  # inside the panel's borders and padding
+    parts: list[RenderableType] = [_headline(s, inner), _readings(s)]
 
     if s.sound == "stepping" and s.residuals_us is not None and len(s.residuals_us) >= 3:
         parts.append(Panel(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, min(width - 20, 100))),
                            title="timing residuals", title_align="left", box=box.ROUNDED, expand=False))
     if s.ringdown:
         parts += _ringdown_part(s)
-    if s.reading:
+    reading = _reading(s)
+    if reading:
         parts.append(Text("the repairer's reading", style="bold"))
-        for line in s.reading:
-            parts.append(Text("  • " + line))
-        if any(w in " ".join(s.reading) for w in ("cell", "margin", "tooth")):
-            parts.append(Text("  Before opening the case or changing the cell: keep button cells away from children, "
-                              "expect to re-test a water-resistant case, unplug mains clocks, work antistatic.",
-                              style="dim"))
+        for line in reading:
+            parts.append(hanging("  • ", line))
+        if any(w in " ".join(reading) for w in ("cell", "margin", "tooth")):
+            parts.append(hanging("  ", "Before opening the case or changing the cell: keep button cells away from "
+                                 "children, expect to re-test a water-resistant case, unplug mains clocks, work "
+                                 "antistatic.", style="dim"))
     if s.warnings:
         parts.append(Text("notes", style="bold"))
         for w in s.warnings:
-            parts.append(Text("  ! " + w, style="yellow"))
+            parts.append(hanging("  ! ", w, style="yellow"))
     title = f"tickscope · {source}" if source else "tickscope"
     sub = f"{s.duration_s:.1f} s · {s.samplerate:g} Hz · channel {s.channel}"
     return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.HEAVY_HEAD, width=min(width, 120))
 
 
-def _headline(s: Summary) -> Text:
+def _reading(s: Summary) -> tuple[str, ...]:
+    """The repairer's reading; with missed steps, what they mean is part of it."""
+    if s.diagnosis is not None and s.missed_steps:
+        return advice.reading(s.diagnosis, missed_step_times_s=tuple(s.missed_step_times_s))
+    return s.reading
+
+
+def _headline(s: Summary, width: int) -> Text:
+    """One line in words, broken between its phrases when it does not fit ``width``."""
     r = s.rate
-    head = Text()
     if s.sound == "stepping" and r is not None:
-        head.append("The movement ", style="bold")
-        head.append(rate_words(r.rate_s_per_day), style="bold green" if abs(r.rate_s_per_day) < 0.5 else "bold yellow")
-        head.append(f"  ± {r.ci95_s_per_day:.3f} s/day (95 %)", style="bold")
-        head.append(f"  over {r.n_steps} steps in {r.span_s:.0f} s")
-    elif s.sound == "not-stepping":
-        head.append("Not a quartz stepping pattern", style="bold yellow")
-        head.append(f" — beat interval heard {_fmt(s.measured_interval_s, '.5f', ' s')}; no rate claimed")
-    else:
-        head.append("No steps found", style="bold red")
-    return head
+        return phrase_lines([
+            Text.assemble(("The movement ", "bold"), (rate_words(r.rate_s_per_day),
+                          "bold green" if abs(r.rate_s_per_day) < 0.5 else "bold yellow")),
+            (f"± {r.ci95_s_per_day:.3f} s/day (95 %)", "bold"),
+            (f"over {r.n_steps} steps in {r.span_s:.0f} s", "")], width)
+    if s.sound == "not-stepping":
+        return phrase_lines([("Not a quartz stepping pattern", "bold yellow"),
+                             (f"— beat interval heard {_fmt(s.measured_interval_s, '.5f', ' s')};", ""),
+                             ("no rate claimed", "")], width, sep=" ")
+    return Text("No steps found", style="bold red")
 
 
 def _readings(s: Summary) -> Table:
