@@ -25,7 +25,7 @@ sys.path.insert(0, os.path.dirname(HERE))
 
 from tickscope.core.simulate import Scenario, _waveform, render_all, step_modes  # noqa: E402
 from tickscope.core.timing import crlb_s  # noqa: E402
-from tickscope.io.simfile import write_simulation  # noqa: E402
+from tickscope.simulation import write_simulation  # noqa: E402
 from tickscope.model import Block  # noqa: E402
 from tickscope.pipeline import Analyzer  # noqa: E402
 

@@ -11,7 +11,7 @@ import pytest
 from tickscope.cli import main
 from tickscope.core.clockfit import fit_device_clock
 from tickscope.core.simulate import Scenario
-from tickscope.io.simfile import write_simulation
+from tickscope.simulation import write_simulation
 
 
 def _readings(ppm, seconds, rng, *, block=480, fs=48000, jitter_ms=2.0, gaps=(), step=None):

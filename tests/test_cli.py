@@ -11,7 +11,7 @@ import soundfile as sf
 
 from tickscope.cli import build_parser, main
 from tickscope.core.simulate import Scenario, render_all
-from tickscope.io.simfile import write_simulation
+from tickscope.simulation import write_simulation
 
 JSON_KEYS = {"duration_s", "sample_rate_hz", "channel", "step_interval_s", "steps_detected", "missed_steps",
              "missed_step_times_s", "rejected_events", "rate_s_per_day", "rate_ci95_s_per_day",

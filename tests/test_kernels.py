@@ -118,7 +118,7 @@ def test_whole_analysis_without_the_compiled_loops_gives_the_same_result(tmp_pat
     import sys
 
     from tickscope.core.simulate import Scenario
-    from tickscope.io.simfile import write_simulation
+    from tickscope.simulation import write_simulation
 
     path = str(tmp_path / "pn.wav")
     write_simulation(path, Scenario(duration_s=40, rate_s_per_day=-3.3, snr_db=25, second_impact_ms=45,

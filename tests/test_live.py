@@ -22,7 +22,7 @@ if "PULSE_SERVER" not in os.environ and os.path.exists(f"{LOOPBACK_DIR}/native")
 
 from tickscope.core.simulate import Scenario  # noqa: E402
 from tickscope.io.capture import Capture  # noqa: E402
-from tickscope.io.simfile import write_simulation  # noqa: E402
+from tickscope.simulation import write_simulation  # noqa: E402
 from tickscope.export import summary_to_dict
 
 

@@ -20,7 +20,7 @@ from tickscope.core.logstats import log_figures
 from tickscope.core.simulate import Scenario, render_all
 from tickscope.errors import StoreError
 from tickscope.export import write_log_csv
-from tickscope.io.simfile import write_simulation
+from tickscope.simulation import write_simulation
 from tickscope.io.store import LogStore
 from tickscope.logsession import LogSession
 from tickscope.model import Block, Event

@@ -5,7 +5,7 @@ import pytest
 
 from tickscope.core.simulate import Scenario
 from tickscope.io.audiofile import blocks, probe
-from tickscope.io.simfile import write_simulation
+from tickscope.simulation import write_simulation
 from tickscope.model import Block
 from tickscope.pipeline import Analyzer
 from conftest import analyze_scenario, true_step_times

@@ -111,17 +111,20 @@ def build_parser() -> argparse.ArgumentParser:
                          "the log (the host clock must be NTP-disciplined)")
 
     s = sub.add_parser("simulate", help="write a simulated recording with its truth file",
-                       description="Write a recording of a simulated stepping-motor movement (WAV, FLAC, Ogg Vorbis, "
-                       "Opus or MP3 by extension) and NAME.truth.json beside it with every parameter and every true "
-                       "step time.")
+                       description="Write a recording of a simulated movement -- a quartz stepping motor "
+                       "(--movement wallclock, wristwatch or alarmclock) or a mechanical escapement (--movement lever "
+                       "or pendulum) -- as WAV, FLAC, Ogg Vorbis, Opus or MP3 by extension, and NAME.truth.json beside "
+                       "it with every parameter and the true time of every step or beat.")
     s.add_argument("out", help="output audio file (.wav, .flac, .ogg, .opus, .mp3)")
     s.add_argument("--description", help="a line describing the scenario, stored in the truth file")
     s.add_argument("--compression-level", type=float, metavar="C",
                    help="lossy formats: 0 (best quality, largest) .. 1 (smallest); e.g. 0.9 gives Opus at ~28 kbit/s, "
                         "like a messaging app's voice note")
     from .commands.simulate import add_options
+    from .commands.simulate_escapement import add_escapement_options
 
     add_options(s)
+    add_escapement_options(s)
     for name, sp in sub.choices.items():
         sp.set_defaults(command=name)
     return p

@@ -10,8 +10,14 @@ from .common import console
 
 def run(args) -> int:
     from ..core.simulate import Scenario
-    from ..io.simfile import truth_path_for, write_simulation
+    from ..simulation import truth_path_for, write_simulation
+    from . import simulate_escapement
 
+    if simulate_escapement.is_escapement(args):
+        return simulate_escapement.run(args)
+    given = simulate_escapement.escapement_options_given(args)
+    if given:
+        raise ParameterError(f"{given[0]} is for escapements: add --movement lever or --movement pendulum")
     changes = {}
     for f in dataclasses.fields(Scenario):
         v = getattr(args, f.name, None)
@@ -34,7 +40,8 @@ SIM_HELP = {
     "duration_s": "length of the recording, s",
     "channels": "number of channels",
     "step_channel": "channel that carries the movement (the others carry noise only)",
-    "movement": "the movement's voice: wallclock, wristwatch or alarmclock",
+    "movement": "the movement: a quartz movement's voice (wallclock, wristwatch, alarmclock) or an escapement "
+                "(lever, pendulum)",
     "step_interval_s": "nominal step interval, s (1 for most quartz movements)",
     "rate_s_per_day": "the movement's true daily rate, s/day (positive gains)",
     "rate_drift_s_per_day_per_h": "the rate changes by this much every hour, s/day per hour (a slow drift)",

@@ -11,6 +11,11 @@ clock in the room, and an audio-clock offset.
 Lossy encoding happens where the file is written (:mod:`tickscope.io.simfile`).
 
 Everything here is pure: a :class:`Scenario` in, arrays and a truth dict out.
+The pieces that are not about a stepping motor -- :class:`SoundEvent` and
+:func:`modal_waveform`, the room's knocks and voices (:func:`room_transients`), a
+second clock (:func:`second_clock_events`), :class:`EventMixer` and the room and
+recorder (:class:`RecordingChain`: reverberation, noise, hum, DC, gain control, gate,
+clipping) -- are shared with the escapement simulator (:mod:`.escapesim`).
 
 Definitions
 -----------
@@ -31,6 +36,10 @@ import numpy as np
 
 from ..errors import ParameterError
 from ..units import CRYSTAL_HZ, interval_from_rate
+from .soundscape import (EventMixer, RecordingChain, SoundEvent, band_limit, modal_waveform,
+                         room_impulse_response, room_transients, second_clock_events)
+
+_waveform = modal_waveform  # the name this module used first (the benchmarks import it)
 
 #: Resonances (frequency Hz, amplitude decay constant ms, relative amplitude) of the
 #: invented movements used by the demo, tests and benchmarks.
@@ -42,20 +51,11 @@ MOVEMENTS: dict[str, tuple[tuple[float, float, float], ...]] = {
     # a travel alarm clock: a middle voice with a hard case
     "alarmclock": ((1700.0, 6.0, 1.0), (3100.0, 3.0, 0.8), (5200.0, 1.2, 0.3)),
 }
-#: The voice of a second clock elsewhere in the room.
-SECOND_CLOCK_MODES = ((1400.0, 7.0, 1.0), (3300.0, 3.0, 0.5))
 #: The voice of a hand's bounce (second impact on each step).
 BOUNCE_MODES = ((3600.0, 1.5, 1.0), (5400.0, 0.8, 0.5))
-RISE_S = 0.08e-3  # attack time constant of the drive impulse (80 us)
 SNR_WINDOW_S = 0.010  # SNR is defined on the first 10 ms of a step
 
 
-
-def _signal():
-    """scipy.signal, imported on first use (it takes a second or two to import)."""
-    from scipy import signal
-
-    return signal
 
 @dataclass(frozen=True)
 class Scenario:
@@ -138,41 +138,12 @@ def _check(sc: Scenario) -> None:
         raise ParameterError(f"step_channel={sc.step_channel!r} with channels={sc.channels!r}")
 
 
-@dataclass
-class _Event:
-    t_true_s: float
-    kind: str  # step | failed | correction | bounce | rattle | knock | voice | other_clock
-    amp: float
-    modes: tuple[tuple[float, float, float], ...] = ()
-    duration_s: float = 0.2
-    noise_seed: int = 0
-
-
-def _waveform(modes, t_s: np.ndarray) -> np.ndarray:
-    """Sum of damped sinusoids with a soft attack, evaluated at times t_s (s, >= 0 only)."""
-    out = np.zeros_like(t_s)
-    pos = t_s >= 0
-    t = t_s[pos]
-    w = np.zeros_like(t)
-    for i, (f, tau_ms, a) in enumerate(modes):
-        w += a * np.exp(-t / (tau_ms * 1e-3)) * np.sin(2 * np.pi * f * t + 0.3 * i)
-    w *= 1.0 - np.exp(-t / RISE_S)
-    out[pos] = w
-    return out
-
-
-def _band_limit(modes, samplerate_hz: float):
-    """Drop resonances the recorder's anti-alias filter would remove (above 0.45 fs)."""
-    kept = tuple(m for m in modes if m[0] < 0.45 * samplerate_hz)
-    return kept or ((0.2 * samplerate_hz, modes[0][1], modes[0][2]),)
-
-
 def step_modes(sc: Scenario, polarity: int) -> tuple[tuple[float, float, float], ...]:
     """The resonances of a step of polarity 0 (A) or 1 (B), band-limited to the recording."""
     base = MOVEMENTS[sc.movement]
     if polarity:
         base = tuple((f * (1 + sc.polarity_b_freq_shift), tau, a) for f, tau, a in base)
-    return _band_limit(base, sc.samplerate_hz)
+    return band_limit(base, sc.samplerate_hz)
 
 
 def step_power(sc: Scenario) -> float:
@@ -218,14 +189,14 @@ def step_times_true(sc: Scenario) -> tuple[np.ndarray, np.ndarray]:
     return t, k
 
 
-def build_events(sc: Scenario) -> tuple[list[_Event], dict]:
+def build_events(sc: Scenario) -> tuple[list[SoundEvent], dict]:
     """Every sound of the recording with its true time, plus the truth record."""
     _check(sc)
     rng = np.random.default_rng(sc.seed)
     t_slots, k = step_times_true(sc)
     jitter = rng.normal(0.0, sc.jitter_us * 1e-6, len(t_slots)) if sc.jitter_us > 0 else np.zeros(len(t_slots))
     t_slots = t_slots + jitter
-    events: list[_Event] = []
+    events: list[SoundEvent] = []
     steps = []
     missed = set(sc.missed_steps)
     failed = set(sc.failed_steps)
@@ -249,43 +220,30 @@ def build_events(sc: Scenario) -> tuple[list[_Event], dict]:
         if sc.variation_freq_pct > 0:
             modes = tuple((f * (1 + rng.normal(0, sc.variation_freq_pct / 100)), tau, a) for f, tau, a in modes)
         if kind == "step":
-            events.append(_Event(t_sound, "step", amp, modes, 0.25))
+            events.append(SoundEvent(t_sound, "step", amp, modes, 0.25))
             if sc.second_impact_ms > 0:
                 d = sc.second_impact_ms * 1e-3 * (1 + rng.normal(0, 0.02))
-                events.append(_Event(t_sound + d, "bounce", amp * 10 ** (sc.second_impact_db / 20),
-                                     _band_limit(BOUNCE_MODES, sc.samplerate_hz), 0.05))
+                events.append(SoundEvent(t_sound + d, "bounce", amp * 10 ** (sc.second_impact_db / 20),
+                                     band_limit(BOUNCE_MODES, sc.samplerate_hz), 0.05))
             for _ in range(sc.rattle_impacts):
                 d = rng.uniform(0.002, max(0.003, sc.rattle_spread_ms * 1e-3))
-                m = _band_limit(tuple((f * rng.uniform(0.7, 1.4), tau, a) for f, tau, a in modes), sc.samplerate_hz)
-                events.append(_Event(t_sound + d, "rattle", amp * 10 ** (rng.uniform(-12.0, 0.0) / 20), m, 0.1))
+                m = band_limit(tuple((f * rng.uniform(0.7, 1.4), tau, a) for f, tau, a in modes), sc.samplerate_hz)
+                events.append(SoundEvent(t_sound + d, "rattle", amp * 10 ** (rng.uniform(-12.0, 0.0) / 20), m, 0.1))
         elif kind == "failed":
             # a twitch: weak, short, duller
             tw = tuple((f * 0.8, tau * 0.4, a) for f, tau, a in modes)
-            events.append(_Event(t_sound, "failed", amp * 0.25, tw, 0.05))
+            events.append(SoundEvent(t_sound, "failed", amp * 0.25, tw, 0.05))
             if sc.correction_delay_ms > 0:
-                events.append(_Event(t_sound + sc.correction_delay_ms * 1e-3, "correction", amp * 1.6,
+                events.append(SoundEvent(t_sound + sc.correction_delay_ms * 1e-3, "correction", amp * 1.6,
                                      step_modes(sc, pol), 0.25))
         steps.append({"step": int(kk), "polarity": "AB"[pol], "time_true_s": float(t_sound), "kind": kind})
-    # knocks and speech-like bursts at random times
-    n_tr = rng.poisson(sc.transients_per_min * sc.duration_s / 60.0) if sc.transients_per_min > 0 else 0
-    transients = []
-    for _ in range(n_tr):
-        t = float(rng.uniform(0.2, max(0.3, sc.duration_s - 0.5)))
-        if rng.random() < 0.6:
-            events.append(_Event(t, "knock", level * 10 ** (sc.transient_db / 20), (), 0.04, int(rng.integers(1 << 30))))
-            transients.append({"time_true_s": t, "kind": "knock"})
-        else:
-            dur = float(rng.uniform(0.25, 0.7))
-            events.append(_Event(t, "voice", level * 10 ** ((sc.transient_db - 12) / 20), (), dur, int(rng.integers(1 << 30))))
-            transients.append({"time_true_s": t, "kind": "voice", "duration_s": dur})
+    tr_events, transients = room_transients(rng, duration_s=sc.duration_s, per_min=sc.transients_per_min,
+                                            level=level, transient_db=sc.transient_db)
+    events += tr_events
     if sc.second_clock_rate_s_per_day is not None:
-        iv2 = interval_from_rate(1.0, sc.second_clock_rate_s_per_day)
-        amp2 = level * 10 ** (sc.second_clock_db / 20)
-        modes2 = _band_limit(SECOND_CLOCK_MODES, sc.samplerate_hz)
-        for j in range(int(sc.duration_s / iv2) + 1):
-            t = sc.second_clock_offset_s + j * iv2
-            if t < sc.duration_s:
-                events.append(_Event(t, "other_clock", amp2, modes2, 0.2))
+        events += second_clock_events(duration_s=sc.duration_s, rate_s_per_day=sc.second_clock_rate_s_per_day,
+                                      level=level, level_db=sc.second_clock_db, offset_s=sc.second_clock_offset_s,
+                                      samplerate_hz=sc.samplerate_hz)
     events.sort(key=lambda e: e.t_true_s)
     scale = 1.0 + sc.clock_ppm * 1e-6
     for s in steps:
@@ -318,20 +276,6 @@ def expected_results(sc: Scenario) -> dict:
     return exp
 
 
-def _rir(sc: Scenario, rng: np.random.Generator) -> np.ndarray:
-    """A room impulse response: the direct sound plus an exponentially decaying diffuse tail."""
-    fs = sc.samplerate_hz
-    n = int(1.2 * sc.reverb_rt60_ms * 1e-3 * fs) + 1
-    t = np.arange(n) / fs
-    tau = sc.reverb_rt60_ms * 1e-3 / 6.908  # amplitude e-folding time for this RT60
-    tail = rng.normal(0, 1, n) * np.exp(-t / tau)
-    pre = int(0.002 * fs)  # first reflections arrive after 2 ms
-    tail[:pre] = 0
-    h = 0.35 * tail / math.sqrt(np.sum(tail**2) + 1e-30)
-    h[0] = 1.0
-    return h
-
-
 class Renderer:
     """Renders a :class:`Scenario` chunk by chunk, in order, as float64 arrays [n, channels].
 
@@ -346,64 +290,22 @@ class Renderer:
         self.rng = np.random.default_rng(sc.seed + 7919)
         self.n_total = int(round(sc.duration_s * sc.samplerate_hz))
         self.pos = 0
-        self._ev_i = 0
-        self._active: list[_Event] = []
         fs = sc.samplerate_hz
+        self._mixer = EventMixer(self.events, fs, sc.clock_ppm)
         p_step = step_power(sc) * (10 ** (sc.level_dbfs / 20)) ** 2
         self.noise_sigma = math.sqrt(p_step / 10 ** (sc.snr_db / 10))
-        self._pink_zi = None
-        if sc.noise == "pink":
-            # Pink (1/f) noise filter; coefficients of the widely used 3-pole/3-zero
-            # approximation (J. O. Smith, Spectral Audio Signal Processing, "Example:
-            # Synthesis of 1/F Noise"; coefficients from memory).
-            self._pink_b = np.array([0.049922035, -0.095993537, 0.050612699, -0.004408786])
-            self._pink_a = np.array([1, -2.494956002, 2.017265875, -0.522189400])
-            g = np.sqrt(np.mean(_signal().lfilter(self._pink_b, self._pink_a, self.rng.normal(0, 1, 1 << 16))[4096:] ** 2))
-            self._pink_b = self._pink_b / g
-            self._pink_zi = [_signal().lfilter_zi(self._pink_b, self._pink_a) * 0.0 for _ in range(sc.channels)]
-        self._rir = _rir(sc, np.random.default_rng(sc.seed + 31)) if sc.reverb_rt60_ms > 0 else None
-        self._rev_tail = np.zeros(0)
-        self._agc_level = 1e-3
-        self._gate_gain = 0.0
-        self._gate_hold = 0
+        self._chain = RecordingChain(
+            samplerate_hz=fs, channels=sc.channels, signal_channel=sc.step_channel, noise_sigma=self.noise_sigma,
+            noise=sc.noise, rng=self.rng, hum_hz=sc.hum_hz, hum_amp=10 ** ((sc.level_dbfs + sc.hum_db) / 20),
+            dc_offset=sc.dc_offset,
+            rir=(room_impulse_response(fs, sc.reverb_rt60_ms, np.random.default_rng(sc.seed + 31))
+                 if sc.reverb_rt60_ms > 0 else None),
+            agc=sc.agc, gate_dbfs=sc.gate_dbfs, clip_dbfs=sc.clip_dbfs)
         self._fs = fs
 
     def _dry(self, n0: int, n: int) -> np.ndarray:
         """The movement and the room's other sounds (before the room and microphone)."""
-        sc = self.sc
-        fs = self._fs
-        scale = 1.0 + sc.clock_ppm * 1e-6
-        out = np.zeros(n)
-        t_end_true = (n0 + n) / fs / scale
-        while self._ev_i < len(self.events) and self.events[self._ev_i].t_true_s < t_end_true:
-            self._active.append(self.events[self._ev_i])
-            self._ev_i += 1
-        keep = []
-        for ev in self._active:
-            # sample index range on the device clock
-            s0 = int(math.floor(ev.t_true_s * scale * fs)) + 1
-            s1 = int(math.ceil((ev.t_true_s + ev.duration_s) * scale * fs)) + 1
-            a, b = max(s0, n0), min(s1, n0 + n)
-            if a < b:
-                idx = np.arange(a, b)
-                t_rel = idx / fs / scale - ev.t_true_s  # true seconds since the onset
-                if ev.kind == "knock":
-                    r = np.random.default_rng(ev.noise_seed)
-                    w = r.normal(0, 1, s1 - s0)[a - s0: b - s0] * np.exp(-t_rel / 0.004)
-                    out[a - n0: b - n0] += ev.amp * 0.5 * w
-                elif ev.kind == "voice":
-                    r = np.random.default_rng(ev.noise_seed)
-                    w = r.normal(0, 1, s1 - s0)
-                    bb, aa = _signal().butter(2, [200 / (fs / 2), min(3000, 0.45 * fs) / (fs / 2)], "band")
-                    w = _signal().lfilter(bb, aa, w)[a - s0: b - s0]
-                    env = np.sin(np.pi * t_rel / ev.duration_s) * (0.6 + 0.4 * np.sin(2 * np.pi * 4.5 * t_rel))
-                    out[a - n0: b - n0] += ev.amp * w * env
-                else:
-                    out[a - n0: b - n0] += ev.amp * _waveform(ev.modes, t_rel) / _peak(ev.modes)
-            if s1 > n0 + n:
-                keep.append(ev)
-        self._active = keep
-        return out
+        return self._mixer.mix(n0, n)
 
     def render(self, n: int) -> np.ndarray:
         """The next ``n`` samples (fewer at the end), shape (n, channels), float64."""
@@ -412,98 +314,9 @@ class Renderer:
         if n <= 0:
             return np.zeros((0, sc.channels))
         n0 = self.pos
-        fs = self._fs
-        dry = self._dry(n0, n)
-        if self._rir is not None:
-            wet = _signal().oaconvolve(dry, self._rir)
-            wet[: len(self._rev_tail)] += self._rev_tail[: len(wet)]
-            if len(self._rev_tail) > len(wet):
-                rest = self._rev_tail[len(wet):]
-                self._rev_tail = np.concatenate([wet[n:], np.zeros(0)])
-                self._rev_tail[: len(rest)] += rest
-            else:
-                self._rev_tail = wet[n:].copy()
-            dry = wet[:n]
-        out = np.empty((n, sc.channels))
-        t = (n0 + np.arange(n)) / fs
-        hum = 0.0
-        if sc.hum_hz > 0:
-            a = 10 ** ((sc.level_dbfs + sc.hum_db) / 20)
-            hum = a * (np.sin(2 * np.pi * sc.hum_hz * t) + 0.5 * np.sin(2 * np.pi * 3 * sc.hum_hz * t + 1)
-                       + 0.25 * np.sin(2 * np.pi * 5 * sc.hum_hz * t + 2))
-        for c in range(sc.channels):
-            noise = self.rng.normal(0, self.noise_sigma, n)
-            if self._pink_zi is not None:
-                noise, self._pink_zi[c] = _signal().lfilter(self._pink_b, self._pink_a, noise, zi=self._pink_zi[c])
-            x = noise + hum + sc.dc_offset
-            if c == sc.step_channel:
-                x = x + dry
-            out[:, c] = x
-        if sc.agc:
-            out = self._apply_agc(out)
-        if sc.gate_dbfs is not None:
-            out = self._apply_gate(out)
-        if sc.clip_dbfs is not None:
-            lim = 10 ** (sc.clip_dbfs / 20)
-            np.clip(out, -lim, lim, out=out)
+        out = self._chain.process(self._dry(n0, n), n0)
         self.pos += n
         return out
-
-    @staticmethod
-    def _frames(x: np.ndarray, frame: int):
-        """RMS level of x [n, channels] over consecutive frames of `frame` samples."""
-        m = len(x) // frame
-        return m, np.sqrt(np.mean(x[: m * frame, :].reshape(m, frame, -1) ** 2, axis=(1, 2)))
-
-    def _apply_agc(self, x: np.ndarray) -> np.ndarray:
-        """A phone's AGC: fast attack (2 ms), slow release (0.4 s), towards -20 dBFS, at most +30 dB."""
-        frame = max(1, int(0.001 * self._fs))
-        m, lev = self._frames(x, frame)
-        gains = np.empty(m)
-        a_att, a_rel = math.exp(-1 / 2.0), math.exp(-1 / 400.0)
-        L = self._agc_level
-        for i in range(m):
-            v = lev[i]
-            L = a_att * L + (1 - a_att) * v if v > L else a_rel * L + (1 - a_rel) * v
-            gains[i] = min(0.1 / max(L, 1e-9), 10 ** 1.5)
-        self._agc_level = L
-        g = np.repeat(gains, frame)
-        g = np.concatenate([g, np.full(len(x) - len(g), gains[-1] if m else 1.0)])
-        return x * g[:, None]
-
-    def _apply_gate(self, x: np.ndarray) -> np.ndarray:
-        """A noise gate: opens within 1 ms when the level passes the threshold, holds 60 ms, closes over 20 ms."""
-        frame = max(1, int(0.0005 * self._fs))
-        m, lev = self._frames(x, frame)
-        thr = 10 ** (self.sc.gate_dbfs / 20)
-        gains = np.empty(m)
-        G, hold = self._gate_gain, self._gate_hold
-        hold_frames, closed = int(0.06 / 0.0005), 10 ** (-30 / 20)
-        for i in range(m):
-            if lev[i] > thr:
-                hold = hold_frames
-                G = min(1.0, G + 0.5)
-            elif hold > 0:
-                hold -= 1
-            else:
-                G = max(closed, G - 0.025)
-            gains[i] = max(G, closed)
-        self._gate_gain, self._gate_hold = G, hold
-        g = np.repeat(gains, frame)
-        g = np.concatenate([g, np.full(len(x) - len(g), gains[-1] if m else 1.0)])
-        return x * g[:, None]
-
-
-_PEAKS: dict = {}
-
-
-def _peak(modes) -> float:
-    """Peak magnitude of a unit waveform (cached), so that `amp` is the peak level."""
-    key = tuple(modes)
-    if key not in _PEAKS:
-        t = np.arange(0, 0.02, 1 / 192000.0)
-        _PEAKS[key] = float(np.max(np.abs(_waveform(modes, t)))) or 1.0
-    return _PEAKS[key]
 
 
 def render_all(sc: Scenario, chunk: int = 1 << 16) -> tuple[np.ndarray, dict]:

@@ -1,4 +1,8 @@
-"""Write simulated recordings and their truth files (streaming, any length)."""
+"""Write simulated recordings and their truth files (streaming, any length).
+
+The renderer is any object with ``render(n)`` (the next n samples, [n, channels]; empty at the
+end), ``pos``, ``n_total`` and ``truth`` (the core's simulators: see :mod:`tickscope.simulation`).
+"""
 from __future__ import annotations
 
 import json
@@ -8,7 +12,6 @@ from collections.abc import Callable
 import numpy as np
 import soundfile as sf
 
-from ..core.simulate import Renderer, Scenario
 from ..errors import InputError
 from .audiofile import WRITE_FRAMES, audio_format_for
 
@@ -21,23 +24,22 @@ def truth_path_for(audio_path: str) -> str:
     return root + ".truth.json"
 
 
-def write_simulation(path: str, sc: Scenario, *, subtype: str | None = None,
-                     progress: Callable[[float], None] | None = None, description: str = "",
-                     compression_level: float | None = None) -> dict:
-    """Render ``sc`` to ``path`` chunk by chunk and write the truth JSON beside it.
-
-    ``compression_level`` (0..1, lossy formats) is handed to libsndfile: higher is smaller.
-    """
+def write_rendered(path: str, r, samplerate_hz: int, channels: int, *, subtype: str | None,
+                    progress: Callable[[float], None] | None, description: str,
+                    compression_level: float | None) -> dict:
+    """Write what renderer ``r`` makes to ``path`` (format from the extension, lossy codecs included)
+    and NAME.truth.json beside it: the renderer's truth with ``description``, ``audio_file``,
+    ``peak_full_scale``, ``lossy`` and ``compression_level`` added.  ``compression_level`` (0..1,
+    lossy formats) is handed to libsndfile: higher is smaller."""
     ext = os.path.splitext(path)[1].lower()
     fmt, st = audio_format_for(path, subtype)
-    r = Renderer(sc)
     peak = 0.0
     try:
         extra = {} if compression_level is None else {"compression_level": float(compression_level)}
-        with sf.SoundFile(path, "w", samplerate=sc.samplerate_hz, channels=sc.channels, format=fmt, subtype=st,
+        with sf.SoundFile(path, "w", samplerate=samplerate_hz, channels=channels, format=fmt, subtype=st,
                           **extra) as f:
             while True:
-                x = r.render(int(CHUNK_S * sc.samplerate_hz))
+                x = r.render(int(CHUNK_S * samplerate_hz))
                 if not len(x):
                     break
                 peak = max(peak, float(np.max(np.abs(x))))
