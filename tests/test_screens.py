@@ -266,3 +266,17 @@ def test_analysis_plot_names_its_missed_step_lines(missed_analysis, saved_figure
     assert legend is not None and any("missed step" in t.get_text() for t in legend.get_texts())
     marked = [ln for ln in ax.get_lines() if ln.get_label().startswith("missed step")]
     assert len(marked) == 1  # one legend entry for the three lines
+
+
+def test_reading_with_missed_steps_keeps_every_other_statement():
+    # adding the missed steps to the reading once dropped the drive-level and position statements
+    from tickscope.ui.textreport import render_summary
+
+    s, *_ = analyze_scenario(Scenario(duration_s=150, drive_levels_db=(0, -4, -8), drive_level_period_s=40,
+                                      missed_steps=(30, 90), snr_db=30, seed=8))
+    assert s.missed_steps == 2 and any("drive levels" in line for line in s.reading)
+    words = _squash(_text(render_summary(s, source="drive.flac", width=WIDTH)))
+    reading = words.split("the repairer's reading", 1)[1].split(" notes ", 1)[0]
+    for line in s.reading:
+        assert " ".join(line.split()) in reading, (line, reading)
+    assert "2 missed steps" in reading and "between steps heard (30.5, 90.5 s)" in reading, reading

@@ -234,6 +234,15 @@ def reading(dg, *, missed_step_times_s: tuple[float, ...] = ()) -> tuple[str, ..
             out.append(f"{'a missed slot follows' if len(after_failed) == 1 else 'missed slots follow'} a failed step "
                        f"({listed([f'{t:.1f}' for t in after_failed])} s): the next pulse found the rotor aligned, "
                        "part of the seconds lost above")
+    if dg.drive_levels:
+        out.append(f"{len(dg.drive_levels)} drive levels heard "
+                   f"({', '.join(f'{lv.level_dbfs:.0f} dBFS' for lv in dg.drive_levels)}), "
+                   f"{dg.drive_level_changes} changes: an adaptive motor drive, not a fault by itself")
+    pl = dg.position_locked
+    if pl:
+        out.append(f"anomalies repeat at step {', '.join(map(str, pl.positions))} of every {pl.period_steps} "
+                   f"({pl.count} times, counted from the first step heard): look for a damaged tooth or a hand "
+                   "touching the dial, another hand or the glass there")
     pa = dg.asymmetry
     if pa is not None and pa.uneven:
         out.append(f"the two coil polarities step unevenly (A→B minus B→A {pa.value_us:+.0f} ± {pa.ci95_us:.0f} µs): "
