@@ -146,10 +146,11 @@ def render_log(fig, *, db: str, label: str, time_base: str, width: int = 100,
     if fig.best_stretch:
         b = fig.best_stretch
         unit, per = time_unit(fig.span_s)
-        rate = "" if b["rate_s_per_day"] is None else f", {rate_words(b['rate_s_per_day'])} ± {b['rate_ci95_s_per_day']:.3f}"
-        parts.append(hanging("", f"best stretch: {duration_words(b['duration_s'])} without a missed or failed step or "
-                                 f"a gap, from {axis_label((b['start_s'] - fig.start_s) / per, unit)}{rate}",
-                             style="green"))
+        rate = None if b["rate_s_per_day"] is None else f"{rate_words(b['rate_s_per_day'])} ± {b['rate_ci95_s_per_day']:.3f}"
+        parts.append(phrase_lines([(f"best stretch: {duration_words(b['duration_s'])} without a missed or failed step "
+                                    "or a gap,", "green"),
+                                   (f"from {axis_label((b['start_s'] - fig.start_s) / per, unit)}" + (
+                                       "," if rate else ""), "green"), (rate or "", "green")], inner, sep=" "))
     for d in device_clock or []:
         parts.append(hanging("", f"segment {d['segment']}: the device clock ran {d['ppm']:+.2f} ± {d['ci95_ppm']:.2f} "
                                  f"ppm against the host clock (host {d['host_sync']})", style="dim"))
