@@ -20,9 +20,17 @@ Crash safety: the writer commits at least every few seconds; SQLite's WAL journa
 ``synchronous=FULL`` makes every commit durable, and a crash, ``kill -9`` or power cut at any
 moment leaves the database as of the last commit (SQLite's atomic commit guarantees; see
 sqlite.org "Atomic Commit In SQLite" and "Write-Ahead Logging").
+
+One writer at a time: a writer holds an OS advisory lock (``flock``; ``msvcrt.locking`` on
+Windows) on ``DB.lock`` beside the database for as long as it is open.  SQLite's own locks
+cannot do this, because a writer commits in many small transactions and another writer would
+slip in between them (both would then write segment 1 at timeline 0).  The kernel drops the
+lock with the process, so a ``kill -9`` never leaves a log locked; a stale ``DB.lock`` file
+is harmless.  Readers (``report``) take no such lock.
 """
 from __future__ import annotations
 
+import errno
 import os
 import sqlite3
 import time
@@ -81,7 +89,8 @@ CREATE TABLE IF NOT EXISTS clips (
 
 
 def _store_error(path: str, e: Exception) -> StoreError:
-    msg = str(e)
+    # an OSError's own words, not str(e): that names the file, and a path may hold any word
+    msg = e.strerror if isinstance(e, OSError) and e.strerror else str(e)
     low = msg.lower()
     if "full" in low:
         why = "the disk is full"
@@ -98,6 +107,98 @@ def _store_error(path: str, e: Exception) -> StoreError:
     else:
         why = msg
     return StoreError(f"log {path}: {why}")
+
+
+class WriterLock:
+    """The one-writer lock of a log: an OS advisory lock on ``DB.lock``, held until :meth:`release`.
+
+    Raises :class:`StoreError` at once (never waits) when another process holds it.  The lock
+    file is named after the database's real path, so two names of one file (a symlink) share it.
+    """
+
+    def __init__(self, db_path: str):
+        self.path = os.path.realpath(db_path) + ".lock"
+        self.fd: int | None = None
+        for _ in range(20):
+            try:
+                fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+            except OSError as e:
+                raise _store_error(db_path, e) from e
+            if not _try_lock(fd):
+                holder = _read_pid(fd)
+                os.close(fd)
+                who = f"another tickscope log (process {holder})" if holder else "another tickscope log"
+                raise StoreError(f"log {db_path}: {who} is writing it; one writer at a time (wait for it to "
+                                 f"end or stop it; tickscope report {db_path} reads it meanwhile)")
+            # a writer that ended between our open and our lock removed the file (and another may
+            # have made a new one): a lock on the removed file guards nothing
+            try:
+                same = os.path.samestat(os.fstat(fd), os.stat(self.path))
+            except OSError:
+                same = False
+            if same:
+                self.fd = fd
+                try:
+                    os.ftruncate(fd, 0)
+                    os.write(fd, f"{os.getpid()}\n".encode())
+                except OSError:
+                    pass  # the pid is only for the message of a refused writer
+                return
+            os.close(fd)
+        raise StoreError(f"log {db_path}: cannot take the writer's lock {self.path} (it keeps being replaced)")
+
+    def __del__(self):  # a store dropped without close() still lets go of its log
+        try:
+            self.release()
+        except Exception:  # noqa: BLE001 - interpreter shutdown
+            pass
+
+    def release(self) -> None:
+        if getattr(self, "fd", None) is None:
+            return
+        fd, self.fd = self.fd, None
+        if os.name == "nt":  # an open file cannot be removed there; a writer that slips in keeps it
+            os.close(fd)
+            _unlink(self.path)
+        else:  # removed while still held, so that no one locks a file about to go
+            _unlink(self.path)
+            os.close(fd)
+
+
+def _try_lock(fd: int) -> bool:
+    try:
+        import fcntl
+    except ImportError:  # Windows
+        import msvcrt
+
+        try:
+            msvcrt.locking(fd, msvcrt.LK_NBLCK, 1)
+        except OSError:
+            return False
+        return True
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError as e:
+        if e.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+            return False
+        raise
+    return True
+
+
+def _read_pid(fd: int) -> str:
+    try:
+        os.lseek(fd, 0, os.SEEK_SET)
+        raw = os.read(fd, 32).decode("ascii", "replace").strip()
+    except OSError:
+        return ""
+    return raw if raw.isdigit() else ""
+
+
+def _unlink(path: str) -> None:
+    try:
+        os.unlink(path)
+    except OSError:
+        pass
 
 
 @dataclass(frozen=True)
@@ -142,6 +243,7 @@ class LogStore:
     def __init__(self, path: str, *, readonly: bool = False):
         self.path = path
         self.readonly = readonly
+        self._lock: WriterLock | None = None
         if readonly and not os.path.isfile(path):
             raise StoreError(f"log {path}: no such file")
         if not readonly:
@@ -150,6 +252,18 @@ class LogStore:
                 raise StoreError(f"log {path}: the folder {d} does not exist")
             if os.path.isdir(path):
                 raise StoreError(f"log {path}: is a directory")
+            self._lock = WriterLock(path)
+        try:
+            self._open()
+        except BaseException:
+            if self._lock is not None:
+                self._lock.release()
+            raise
+        self._in_tx = False
+        self._event_rows: list[tuple] = []
+
+    def _open(self) -> None:
+        path, readonly = self.path, self.readonly
         try:
             if readonly:
                 self.db = sqlite3.connect(f"file:{os.path.abspath(path)}?mode=ro", uri=True, timeout=10,
@@ -164,8 +278,6 @@ class LogStore:
             self._check_schema()
         except sqlite3.Error as e:
             raise _store_error(path, e) from e
-        self._in_tx = False
-        self._event_rows: list[tuple] = []
 
     # -- housekeeping ------------------------------------------------------------------------
     def _check_schema(self) -> None:
@@ -207,7 +319,11 @@ class LogStore:
             if self._in_tx and not self.readonly:
                 self.commit()
         finally:
-            self.db.close()
+            try:
+                self.db.close()
+            finally:
+                if self._lock is not None:  # after SQLite has let go of the file
+                    self._lock.release()
 
     def _guard(self):
         return _Guard(self)
