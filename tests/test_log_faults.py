@@ -155,3 +155,83 @@ def test_two_writers_in_one_process_and_a_second_name_for_the_file(tmp_path):
         first.close()
     LogStore(db).close()  # free again once the first writer has closed
     assert not os.path.exists(db + ".lock")
+
+
+@pytest.fixture(scope="module")
+def anomalies(tmp_path_factory):
+    """4 min at 16 kHz with a missed step every 35 s: six clips of ~27 kB."""
+    p = str(tmp_path_factory.mktemp("clips") / "bench-carriage-clock.wav")
+    write_simulation(p, Scenario(samplerate_hz=16000, duration_s=240, missed_steps=(25, 60, 95, 130, 165, 200),
+                                 snr_db=30, seed=8))
+    return p
+
+
+# -- a log that fails to start ----------------------------------------------------------------------------
+@pytest.mark.parametrize("case", ["missing source", "no such device", "bad channel", "bad rate", "not audio"])
+def test_a_log_that_fails_to_start_leaves_no_database(tmp_path, anomalies, capsys, case):
+    db = str(tmp_path / "log.db")
+    junk = tmp_path / "notes.wav"
+    junk.write_text("not audio\n")
+    args = {"missing source": ["--source", str(tmp_path / "missing.wav")],
+            "no such device": ["--device", "no device is called this"],
+            "bad channel": ["--source", anomalies, "--channel", "3"],
+            "bad rate": ["--device", "0", "--rate-hz", "1000"],
+            "not audio": ["--source", str(junk)]}[case]
+    assert main(["log", db, *args]) == 2
+    err = capsys.readouterr().err
+    assert len(_tickscope_lines(err)) == 1, err
+    assert _db_files(tmp_path) == [], _db_files(tmp_path)
+
+
+def test_a_failed_start_never_removes_a_log_that_holds_segments(tmp_path, anomalies, capsys):
+    db = str(tmp_path / "log.db")
+    assert main(["log", db, "--source", anomalies, "--quiet", "--label", "carriage clock", "--hours", "0.02"]) == 0
+    st = LogStore(db, readonly=True)
+    before = st.events()
+    st.db.close()
+    assert 0 < int(np.sum(before["kind"] == 0)) < 234  # part of the recording: a resume would add to it
+    for args in (["--source", anomalies, "--channel", "3"],  # bad option on resume
+                 ["--device", "no device is called this"],  # a device into a file's log
+                 ["--source", anomalies, "--label", "another clock"]):  # another movement
+        assert main(["log", db, *args]) == 2
+    capsys.readouterr()
+    st = LogStore(db, readonly=True)
+    assert len(st.segments()) == 1 and st.integrity() == "ok"
+    assert np.array_equal(st.events()["time_s"], before["time_s"])
+    st.db.close()
+
+
+# -- a device log through the virtual microphone ------------------------------------------------------------
+LOOPBACK_DIR = os.environ.get("TICKSCOPE_LOOPBACK_DIR", "/tmp/tickscope-loopback")
+SINK = os.environ.get("TICKSCOPE_LOOPBACK_SINK", "tsink")
+
+
+@pytest.fixture(scope="module")
+def loopback():
+    env = dict(os.environ)
+    if "PULSE_SERVER" not in env and os.path.exists(f"{LOOPBACK_DIR}/native"):
+        env["PULSE_SERVER"] = f"unix:{LOOPBACK_DIR}/native"
+        env.setdefault("PULSE_COOKIE", f"{LOOPBACK_DIR}/cookie")
+    reason = None
+    if shutil.which("pactl") is None or shutil.which("paplay") is None:
+        reason = "pactl/paplay not found (bash scripts/audio-loopback.sh install)"
+    else:
+        r = subprocess.run(["pactl", "list", "short", "sinks"], capture_output=True, text=True, timeout=10, env=env)
+        if r.returncode != 0 or SINK not in r.stdout.split():
+            reason = f"no PulseAudio null sink {SINK!r} (bash scripts/audio-loopback.sh start)"
+    if reason:
+        if os.environ.get("AUDIO_LOOPBACK_REQUIRED") == "1":
+            pytest.fail(f"audio loopback required but unavailable: {reason}", pytrace=False)
+        pytest.skip(f"audio loopback unavailable: {reason}")
+    return env
+
+
+def test_a_device_that_cannot_be_opened_leaves_no_database(loopback, tmp_path):
+    db = str(tmp_path / "log.db")
+    r = subprocess.run([*PY, "log", db, "--device", "pulse", "--channel", "40"], capture_output=True, text=True,
+                       timeout=60, env=loopback)
+    assert r.returncode == 2
+    lines = _tickscope_lines(r.stderr)
+    assert len(lines) == 1 and "cannot open the input device" in lines[0], r.stderr
+    assert "segment 1 ended" not in r.stdout
+    assert _db_files(tmp_path) == []

@@ -20,9 +20,13 @@ def run(args) -> int:
         raise ParameterError("give either --device or --source, not both")
     if args.hours is not None and not args.hours > 0:
         raise ParameterError(f"--hours {args.hours}: expected > 0")
-    store = LogStore(args.db)
+    store = LogStore(args.db)  # refused while another log writes this database
+    started: dict = {}
     try:
-        return _run(args, store)
+        return _run(args, store, started)
+    except BaseException:
+        _forget_failed_start(store, started.get("seg"))
+        raise
     finally:
         try:
             store.close()
@@ -30,7 +34,19 @@ def run(args) -> int:
             pass
 
 
-def _run(args, store) -> int:
+def _forget_failed_start(store, seg) -> None:
+    """A log that failed before any audio came (a missing source, no such device, bad options)
+    leaves nothing behind: its empty segment goes, and so does the database if this run made it.
+    Anything committed stays."""
+    try:
+        if seg is not None and not store.drop_empty_segment(seg):
+            return
+        store.discard()  # removes the file only if this run created it and it holds no segment
+    except StoreError:
+        pass
+
+
+def _run(args, store, started: dict) -> int:
     from ..core.detect import DetectorConfig
     from ..io.clips import ClipKeeper
     from ..io.profiles import host_sync_status
@@ -75,6 +91,7 @@ def _run(args, store) -> int:
                             channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
                             time_base=clock.time_base, host_sync=host_sync_status() if plan.kind == "device" else None,
                             version=__version__)
+    started["seg"] = seg
     an = Analyzer(samplerate, channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
                   detector=detector, history_steps=HISTORY_STEPS, lossy=info is not None and info.lossy)
     clips = None
@@ -98,6 +115,8 @@ def _run(args, store) -> int:
     except KeyboardInterrupt:
         reason = "stopped by Ctrl-C"
     except DeviceError as e:
+        if ls.position_s <= 0:
+            raise  # the device never gave audio (it cannot be opened): the log did not start
         reason = f"capture ended: {e}"
         err = e
     except StoreError:

@@ -244,6 +244,7 @@ class LogStore:
         self.path = path
         self.readonly = readonly
         self._lock: WriterLock | None = None
+        self.created = False  # the file did not exist before this writer opened it
         if readonly and not os.path.isfile(path):
             raise StoreError(f"log {path}: no such file")
         if not readonly:
@@ -253,6 +254,7 @@ class LogStore:
             if os.path.isdir(path):
                 raise StoreError(f"log {path}: is a directory")
             self._lock = WriterLock(path)
+            self.created = not os.path.exists(path)
         try:
             self._open()
         except BaseException:
@@ -324,6 +326,25 @@ class LogStore:
             finally:
                 if self._lock is not None:  # after SQLite has let go of the file
                     self._lock.release()
+
+    def discard(self) -> None:
+        """Close and remove the database (and its journal files): for a log this writer created
+        that never began (it holds no segment).  Refuses to remove one that holds segments."""
+        self.rollback()
+        try:
+            holds = self.readonly or not self.created or bool(self.segments())
+        except StoreError:
+            holds = True
+        if holds:
+            self.close()
+            return
+        try:
+            self.db.close()
+            for ext in ("", "-wal", "-shm", "-journal"):
+                _unlink(self.path + ext)
+        finally:
+            if self._lock is not None:
+                self._lock.release()
 
     def _guard(self):
         return _Guard(self)
@@ -425,6 +446,29 @@ class LogStore:
             except sqlite3.Error:
                 pass
             self._in_tx = False
+
+    def drop_empty_segment(self, seg: int) -> bool:
+        """Remove segment ``seg`` if nothing of it was committed (a run that failed before any audio
+        came); True if it is gone.  A segment holding audio or events is never removed."""
+        self.rollback()
+        with self._guard():
+            row = self.db.execute("SELECT duration_s FROM segments WHERE id=?", (seg,)).fetchone()
+            if row is None:
+                return True
+            n = self.db.execute("SELECT count(*) FROM events WHERE seg=?", (seg,)).fetchone()[0]
+            if n or row[0] > 0:
+                return False
+            self.db.execute("BEGIN IMMEDIATE")
+            try:
+                for table in ("gaps", "blocks", "minutes", "clips"):
+                    self.db.execute(f"DELETE FROM {table} WHERE seg=?", (seg,))
+                self.db.execute("DELETE FROM meta WHERE key LIKE ?", (f"segment {seg} %",))
+                self.db.execute("DELETE FROM segments WHERE id=?", (seg,))
+                self.db.execute("COMMIT")
+            except BaseException:
+                self.db.execute("ROLLBACK")
+                raise
+        return True
 
     # -- reading -----------------------------------------------------------------------------
     def segments(self) -> list[Segment]:
