@@ -201,6 +201,63 @@ def test_a_failed_start_never_removes_a_log_that_holds_segments(tmp_path, anomal
     st.db.close()
 
 
+# -- exit codes ---------------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def unusable(tmp_path_factory):
+    d = tmp_path_factory.mktemp("nosteps")
+    quiet = str(d / "quiet-room.wav")
+    sf.write(quiet, np.random.default_rng(0).normal(0, 1e-4, 8000 * 30).astype(np.float32), 8000)
+    nan = str(d / "damaged.wav")
+    sf.write(nan, np.full(8000 * 30, np.nan, dtype=np.float32), 8000, subtype="FLOAT")
+    return {"silence": quiet, "all not numbers": nan}
+
+
+@pytest.mark.parametrize("case", ["silence", "all not numbers"])
+def test_log_of_audio_without_steps_exits_3_as_analyze_does(unusable, tmp_path, capsys, case):
+    path = unusable[case]
+    assert main(["analyze", path, "--quiet"]) == 3
+    a_err = capsys.readouterr().err
+    db = str(tmp_path / "log.db")
+    assert main(["log", db, "--source", path, "--json", "--quiet"]) == 3
+    out, err = capsys.readouterr()
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("tickscope: no steps could be found"), err
+    # the same reason as analyze gives
+    why = {"silence": "no stepping-motor pattern was heard", "all not numbers": "are numbers"}[case]
+    assert why in a_err and why in err
+    d = json.loads(out)  # the segment's summary still comes first, and the segment is kept
+    assert d["steps"] == 0 and d["duration_s"] == pytest.approx(30.0, abs=0.1)
+    st = LogStore(db, readonly=True)
+    assert len(st.segments()) == 1
+    st.db.close()
+
+
+def test_ctrl_c_on_a_replay_exits_130_after_committing_and_summing_up(bench, tmp_path):
+    wav, _ = bench
+    db = str(tmp_path / "stopped.db")
+    p = subprocess.Popen([*PY, "log", db, "--source", wav, "--quiet", "--json"], stdout=subprocess.PIPE,
+                         stderr=subprocess.PIPE, text=True)
+    _wait_committed(p, db)
+    p.send_signal(signal.SIGINT)
+    out, err = p.communicate(timeout=120)
+    assert p.returncode == 130, (p.returncode, err)
+    assert "Traceback" not in err
+    d = json.loads(out)
+    assert d["ended"] == "stopped by Ctrl-C" and 0 < d["duration_s"] < 900
+    with sqlite3.connect(db) as con:
+        reason, decided = con.execute("SELECT end_reason, decided_s FROM segments").fetchone()
+        steps = con.execute("SELECT count(*) FROM events WHERE kind=0").fetchone()[0]
+    assert reason == "stopped by Ctrl-C" and decided == pytest.approx(d["duration_s"], abs=1e-3)
+    assert steps == d["steps"]  # everything it counted is committed
+
+
+def test_report_on_a_directory_says_it_is_one(tmp_path, capsys):
+    assert main(["report", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1
+    assert "is a directory, not a log database" in err and "no such file" not in err
+
+
 # -- a device log through the virtual microphone ------------------------------------------------------------
 LOOPBACK_DIR = os.environ.get("TICKSCOPE_LOOPBACK_DIR", "/tmp/tickscope-loopback")
 SINK = os.environ.get("TICKSCOPE_LOOPBACK_SINK", "tsink")
@@ -224,6 +281,47 @@ def loopback():
             pytest.fail(f"audio loopback required but unavailable: {reason}", pytrace=False)
         pytest.skip(f"audio loopback unavailable: {reason}")
     return env
+
+
+def test_device_log_refuses_a_second_writer_and_ctrl_c_exits_130(loopback, tmp_path):
+    env = loopback
+    sc = Scenario(duration_s=16, first_step_s=0.6, rate_s_per_day=2.0, snr_db=35, seed=73)
+    wav = str(tmp_path / "play.wav")
+    truth = write_simulation(wav, sc)
+    n_true = int(np.sum(true_step_times(truth) < sc.duration_s))
+    db = str(tmp_path / "bench.db")
+    cmd = [*PY, "log", db, "--device", "pulse", "--rate-hz", "48000", "--json"]
+    p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    second = None
+    try:
+        t0 = time.monotonic()
+        while time.monotonic() - t0 < 20 and not _segments(db):  # the row appears just before capture starts
+            time.sleep(0.1)
+        assert _segments(db), "the device log did not start"
+        time.sleep(1.0)
+        second = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+        try:
+            _, err2 = second.communicate(timeout=60)  # a second writer used to log on beside the first
+        except subprocess.TimeoutExpired:
+            second.kill()
+            second.communicate()
+            pytest.fail("a second device log ran beside the first")
+        subprocess.run(["paplay", f"--device={SINK}", wav], check=True, timeout=60, env=env)
+        time.sleep(2.5)  # the last steps are decided a few slots later
+        p.send_signal(signal.SIGINT)
+        out, err = p.communicate(timeout=30)
+    finally:
+        for q in (p, second):
+            if q is not None and q.poll() is None:
+                q.kill()
+    assert second.returncode == 2 and _tickscope_lines(err2) and "another tickscope log" in err2, err2
+    assert p.returncode == 130, (p.returncode, err)
+    d = json.loads(out)
+    assert d["ended"] == "stopped by Ctrl-C" and d["steps"] == n_true
+    r = _cli("report", db, "--json")
+    assert r.returncode == 0, r.stderr
+    rep = json.loads(r.stdout)
+    assert len(rep["segments"]) == 1 and rep["steps_detected"] == n_true
 
 
 def test_a_device_that_cannot_be_opened_leaves_no_database(loopback, tmp_path):

@@ -121,6 +121,7 @@ class LogSession:
         self._miss_run = 0  # missed steps since the last step heard
         self._miss_hours: list[_Bucket] = []  # the hour bucket of each of them
         self.sound: dict | None = None  # the segment's sound as analyze would call it (set by finish)
+        self.sound_reason = ""  # ... and why, when it holds no steps or no stepping motor
         if analyzer is not None and getattr(analyzer, "lossy", False):
             # the report searches such a segment's step times for a codec's abrupt shifts, as analyze does
             store.set_meta(f"segment {seg} lossy", "1")
@@ -292,6 +293,7 @@ class LogSession:
                           "beats": summary.beats.heard if summary.beats is not None else None,
                           "why": summary.sound_reason if summary.sound == "not-stepping" else None}
             self.store.set_meta(f"segment {self.seg} sound", json.dumps(self.sound))
+            self.sound_reason = summary.sound_reason or ""
         if self._win is not None:
             _, s0, h, wa, ad, _ = self._win
             self.store.add_block(self.seg, s0, h, wa, ad)

@@ -7,8 +7,10 @@ import sys
 import time
 
 from .. import __version__, advice
-from ..errors import DeviceError, ParameterError, StoreError
+from ..errors import DeviceError, NoStepsError, ParameterError, StoreError
 from .common import PeakMeter, Refit, clock_from_args, console, text, write_json
+
+INTERRUPTED = 130  # the exit code of a log ended by Ctrl-C (the shell's 128 + SIGINT)
 
 
 def run(args) -> int:
@@ -24,6 +26,8 @@ def run(args) -> int:
     started: dict = {}
     try:
         return _run(args, store, started)
+    except NoStepsError:
+        raise  # the log ran: its segment stays
     except BaseException:
         _forget_failed_start(store, started.get("seg"))
         raise
@@ -104,6 +108,7 @@ def _run(args, store, started: dict) -> int:
         console(stderr=True).print(plan.note)
     err = None
     reason = "end of source"
+    interrupted = False
     try:
         if cap is None:
             _log_file(ls, block_iter, info.duration_s - plan.timeline_s, limit_s,
@@ -113,7 +118,7 @@ def _run(args, store, started: dict) -> int:
         else:
             reason = _log_device(ls, cap, limit_s, args, len(segs) + 1, quiet=args.quiet or args.json)
     except KeyboardInterrupt:
-        reason = "stopped by Ctrl-C"
+        reason, interrupted = "stopped by Ctrl-C", True
     except DeviceError as e:
         if ls.position_s <= 0:
             raise  # the device never gave audio (it cannot be opened): the log did not start
@@ -129,7 +134,21 @@ def _run(args, store, started: dict) -> int:
     if err is not None:
         sys.stderr.write(f"tickscope: {reason}; everything up to then is kept in {args.db}\n")
         return 2
+    if interrupted:
+        return INTERRUPTED  # after everything is committed and the segment's end reported
+    _raise_if_no_steps(args, ls, plan, info, tally, len(segs) + 1)
     return 0
+
+
+def _raise_if_no_steps(args, ls, plan, info, tally: dict, number: int) -> None:
+    """Exit 3, as analyze does, when this run heard no steps (silence, or audio that was all unusable)."""
+    where = args.source if plan.kind == "file" else f"the input device {args.device}"
+    kept = f"segment {number} of {args.db} keeps its {ls.position_s:.0f} s of audio"
+    if info is not None and tally.get("nonfinite", 0) >= info.frames - plan.start_frame > 0:
+        raise NoStepsError(f"no steps could be found: {advice.unusable_reason(args.source)} ({kept})")
+    if (ls.sound or {}).get("sound") == "none" and ls.totals["steps"] == 0:
+        why = ls.sound_reason or "no stepping pattern heard"
+        raise NoStepsError(f"no steps could be found in {where}: {why} ({kept})")
 
 
 def _report_segment(args, ls, number: int, source: str, reason: str, time_base: str, tally: dict, clips) -> None:

@@ -245,14 +245,14 @@ class LogStore:
         self.readonly = readonly
         self._lock: WriterLock | None = None
         self.created = False  # the file did not exist before this writer opened it
+        if os.path.isdir(path):
+            raise StoreError(f"log {path}: is a directory, not a log database")
         if readonly and not os.path.isfile(path):
             raise StoreError(f"log {path}: no such file")
         if not readonly:
             d = os.path.dirname(os.path.abspath(path))
             if not os.path.isdir(d):
                 raise StoreError(f"log {path}: the folder {d} does not exist")
-            if os.path.isdir(path):
-                raise StoreError(f"log {path}: is a directory")
             self._lock = WriterLock(path)
             self.created = not os.path.exists(path)
         try:
