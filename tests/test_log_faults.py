@@ -157,6 +157,69 @@ def test_two_writers_in_one_process_and_a_second_name_for_the_file(tmp_path):
     assert not os.path.exists(db + ".lock")
 
 
+# -- a full disk with clips ---------------------------------------------------------------------------------
+def _can_mount_tmpfs(path):
+    if os.geteuid() != 0 or shutil.which("mount") is None:
+        return False
+    os.makedirs(path, exist_ok=True)
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=192k", "tmpfs", path], capture_output=True)
+    return r.returncode == 0
+
+
+def test_full_disk_with_clips_keeps_the_events_and_says_how_much(bench, tmp_path):
+    # with --keep-audio anomalies a full disk once kept no events at all (a clip went into the
+    # same transaction as the events and took it down)
+    mnt = str(tmp_path / "tiny")
+    if not _can_mount_tmpfs(mnt):
+        pytest.skip("needs root to mount a tiny tmpfs")
+    wav = bench[0]
+    kept = {}
+    try:
+        for keep in ("none", "anomalies"):
+            for f in os.listdir(mnt):
+                os.remove(os.path.join(mnt, f))
+            db = os.path.join(mnt, "log.db")
+            r = _cli("log", db, "--source", wav, "--keep-audio", keep, "--json")
+            assert r.returncode == 2 and "Traceback" not in r.stderr
+            assert len(r.stderr.strip().splitlines()) == 1 and "disk is full" in r.stderr
+            con = sqlite3.connect(db)
+            assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+            steps = con.execute("SELECT count(*) FROM events WHERE kind=0").fetchone()[0]
+            decided = con.execute("SELECT decided_s FROM segments").fetchone()[0]
+            con.close()
+            kept[keep] = steps
+            # what was kept is said: in the JSON and in the error line, as the database holds it
+            d = json.loads(r.stdout)
+            assert d["ended"] == "the disk is full" and d["steps"] == steps > 0
+            assert d["duration_s"] == pytest.approx(decided, abs=1e-3)
+            assert f"{steps} steps" in r.stderr and f"{decided:.1f} s of audio" in r.stderr
+            if keep == "anomalies":
+                assert d["clips_stopped"] and d["clips_kept"] == 0
+        assert kept["anomalies"] >= kept["none"] - 5, kept  # the events come first
+        # the end-of-segment line says it too
+        for f in os.listdir(mnt):
+            os.remove(os.path.join(mnt, f))
+        r = _cli("log", os.path.join(mnt, "log.db"), "--source", wav, "--keep-audio", "anomalies")
+        assert r.returncode == 2
+        words = " ".join(r.stdout.split())
+        assert "ended (the disk is full)" in words and "steps" in words and "no more clips" in words, words
+    finally:
+        subprocess.run(["umount", mnt], capture_output=True)
+
+
+def _limit_pages(monkeypatch, pages: int):
+    """SQLite's own "database or disk is full" (SQLITE_FULL) for the writer, at this many pages."""
+    real = sqlite3.connect
+
+    def connect(path, *a, **k):
+        con = real(path, *a, **k)
+        if not str(path).startswith("file:"):  # the writer (readers open a read-only URI)
+            con.execute(f"PRAGMA max_page_count={pages}")
+        return con
+
+    monkeypatch.setattr(sqlite3, "connect", connect)
+
+
 @pytest.fixture(scope="module")
 def anomalies(tmp_path_factory):
     """4 min at 16 kHz with a missed step every 35 s: six clips of ~27 kB."""
@@ -164,6 +227,43 @@ def anomalies(tmp_path_factory):
     write_simulation(p, Scenario(samplerate_hz=16000, duration_s=240, missed_steps=(25, 60, 95, 130, 165, 200),
                                  snr_db=30, seed=8))
     return p
+
+
+@pytest.mark.parametrize("pages", [14, 16, 24])
+def test_clips_that_do_not_fit_give_way_to_the_events(anomalies, tmp_path, monkeypatch, capsys, pages):
+    # the events of this log take 12 pages of 4 KiB, a clip about 7: at 14 pages no clip fits, at 16
+    # one fits but then leaves no room for the events, at 24 two fit; every event must be kept
+    db = str(tmp_path / "clips.db")
+    _limit_pages(monkeypatch, pages)
+    rc = main(["log", db, "--source", anomalies, "--keep-audio", "anomalies", "--json", "--quiet"])
+    monkeypatch.undo()
+    out, err = capsys.readouterr()
+    assert rc == 0, err
+    d = json.loads(out)
+    st = LogStore(db, readonly=True)
+    ev, clips = st.events(), st.clips()
+    st.db.close()
+    assert d["steps"] == int(np.sum(ev["kind"] == 0)) == 234 and int(np.sum(ev["kind"] == 1)) == 6
+    assert d["clips_kept"] == len(clips) < 6 and "the disk is full" in d["clips_stopped"]
+    assert d["clips_kept_bytes"] == sum(len(c[5]) for c in clips)
+    if pages == 16:
+        assert d["clips_removed"] == 1 and not clips  # stored, then removed for the events
+
+
+def test_a_full_database_without_clips_still_says_what_it_kept(anomalies, tmp_path, monkeypatch, capsys):
+    db = str(tmp_path / "full.db")
+    _limit_pages(monkeypatch, 11)
+    rc = main(["log", db, "--source", anomalies, "--json", "--quiet"])
+    monkeypatch.undo()
+    out, err = capsys.readouterr()
+    assert rc == 2 and len(err.strip().splitlines()) == 1 and "disk is full" in err
+    d = json.loads(out)
+    st = LogStore(db, readonly=True)
+    ev, seg = st.events(), st.segments()[0]
+    st.db.close()
+    assert d["ended"] == "the disk is full" and 0 < d["steps"] == int(np.sum(ev["kind"] == 0)) < 234
+    assert d["duration_s"] == pytest.approx(seg.decided_s, abs=1e-3) and d["lost_s"] > 0
+    assert f"{d['steps']} steps" in err
 
 
 # -- a log that fails to start ----------------------------------------------------------------------------

@@ -12,6 +12,8 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import os
+import shutil
 import time
 from dataclasses import dataclass
 
@@ -19,6 +21,7 @@ import numpy as np
 
 from .core.rate import fit_rate
 from .core.regulation import unseen_correction_ci95_s_per_day
+from .errors import StoreError
 from .io.clips import ClipKeeper
 from .io.store import BLOCK_WINDOW_S, LogStore
 from .model import Block, Event
@@ -28,6 +31,10 @@ COMMIT_EVERY_S = 2.0  # wall seconds between commits (at most this much is lost 
 COMMIT_AUDIO_S = 60.0  # ... and at most this much audio when replaying a file faster than real time
 HISTORY_STEPS = 3600  # steps the analyzer keeps for the live summary (the database keeps all)
 CLIP_KINDS = ("missed", "failed", "correction", "rejected")
+#: Clips are kept only while the disk keeps this much free for the events after them: a weekend of
+#: events (60 h x 0.14 MB) and SQLite's journal between its checkpoints (1000 pages of 4 KiB), with
+#: room to spare (our own choice).  The events come first.
+CLIP_FLOOR_BYTES = 16_000_000
 
 
 @dataclass(frozen=True)
@@ -122,6 +129,7 @@ class LogSession:
         self._miss_hours: list[_Bucket] = []  # the hour bucket of each of them
         self.sound: dict | None = None  # the segment's sound as analyze would call it (set by finish)
         self.sound_reason = ""  # ... and why, when it holds no steps or no stepping motor
+        self._clip_rows: list[tuple[str, float, float, bytes]] = []  # cut, stored after the next commit
         if analyzer is not None and getattr(analyzer, "lossy", False):
             # the report searches such a segment's step times for a codec's abrupt shifts, as analyze does
             store.set_meta(f"segment {seg} lossy", "1")
@@ -156,8 +164,58 @@ class LogSession:
         return evs
 
     def _store_clips(self) -> None:
-        for kind, t, a, data in self.clips.ready():
-            self.store.add_clip(self.seg, t, kind, int(round(self.samplerate)), a, data)
+        self._clip_rows.extend(self.clips.ready())
+
+    def _write_clips(self) -> None:
+        """The clips cut since the last commit, each in a transaction of its own after the events'
+        (a clip that does not fit costs only itself; from then on no clips are kept)."""
+        rows, self._clip_rows = self._clip_rows, []
+        for i, (kind, t, a, data) in enumerate(rows):
+            why = "" if self.clips.stopped else self._no_room_for_clip(len(data))
+            if not why:
+                try:
+                    self.store.add_clip(self.seg, t, kind, int(round(self.samplerate)), a, data)
+                    self.store.commit()
+                    continue
+                except StoreError as e:
+                    self.store.rollback()
+                    why = getattr(e, "why", str(e))
+            self.clips.stop(why, t)
+            for *_, d in rows[i:]:
+                self.clips.drop(len(d))
+            return
+
+    def _no_room_for_clip(self, nbytes: int) -> str:
+        try:
+            free = shutil.disk_usage(os.path.dirname(os.path.abspath(self.store.path))).free
+        except OSError:
+            return ""
+        if free - nbytes < CLIP_FLOOR_BYTES:
+            return f"less than {CLIP_FLOOR_BYTES / 1e6:.0f} MB free on the disk, kept for the events"
+        return ""
+
+    def _make_room(self) -> bool:
+        """The disk is full: the events come first, so this segment's clips go to make room for them
+        (True if any went: the commit is then tried once more)."""
+        if self.clips is None:
+            return False
+        self.drop_clips("the disk is full")
+        try:
+            n, nbytes = self.store.delete_clips(self.seg)
+        except StoreError:
+            self.store.rollback()
+            return False
+        self.clips.removed_from_store(n, nbytes)
+        return n > 0
+
+    def drop_clips(self, reason: str) -> None:
+        """No more clips, and those cut but not yet stored are dropped (the store cannot write)."""
+        if self.clips is None:
+            return
+        self.clips.stop(reason, self.position_s)
+        for *_, d in self._clip_rows:
+            self.clips.drop(len(d))
+        self._clip_rows = []
 
     def _block_reading(self, start: int, b: Block) -> None:
         w = int(start / self.samplerate // BLOCK_WINDOW_S)
@@ -276,10 +334,12 @@ class LogSession:
         decided = self.an.decided_until_s() if self.an is not None else self.position_s
         self.store.update_segment(self.seg, duration_s=self.position_s, decided_s=decided,
                                   step_interval_s=self.nominal_s)
-        self.store.commit()
+        self.store.commit(make_room=self._make_room)
         self._last_commit = self._clock()
         self._last_commit_audio = self.position_s
         self.commits += 1
+        if self._clip_rows:
+            self._write_clips()
 
     def finish(self, reason: str) -> None:
         """End of the segment: decide the last slots, write the last buckets, commit."""
@@ -314,7 +374,9 @@ class LogSession:
         if self.clips is not None:
             self.clips.post_s = 0.0  # the end of the audio: clip what there is
             self._store_clips()
-        self.store.commit()
+        self.store.commit(make_room=self._make_room)
+        if self._clip_rows:
+            self._write_clips()
 
 
 # -- where a new segment goes: the log's resume rules ------------------------------------------------

@@ -109,34 +109,42 @@ def _run(args, store, started: dict) -> int:
     err = None
     reason = "end of source"
     interrupted = False
+    number = len(segs) + 1
     try:
-        if cap is None:
-            _log_file(ls, block_iter, info.duration_s - plan.timeline_s, limit_s,
-                      show_progress=not args.quiet and not args.json)
-            if limit_s is not None and ls.position_s >= limit_s:
-                reason = "hours reached"
-        else:
-            reason = _log_device(ls, cap, limit_s, args, len(segs) + 1, quiet=args.quiet or args.json)
-    except KeyboardInterrupt:
-        reason, interrupted = "stopped by Ctrl-C", True
-    except DeviceError as e:
-        if ls.position_s <= 0:
-            raise  # the device never gave audio (it cannot be opened): the log did not start
-        reason = f"capture ended: {e}"
-        err = e
-    except StoreError:
-        store.rollback()  # a full disk: what was committed stays; nothing more can be written
-        raise
-    ls.finish(reason)
-    if tally.get("nonfinite"):
-        store.set_meta(f"segment {seg} nonfinite", str(tally["nonfinite"]))
-    _report_segment(args, ls, len(segs) + 1, plan.source, reason, clock.time_base, tally, clips)
+        try:
+            if cap is None:
+                _log_file(ls, block_iter, info.duration_s - plan.timeline_s, limit_s,
+                          show_progress=not args.quiet and not args.json)
+                if limit_s is not None and ls.position_s >= limit_s:
+                    reason = "hours reached"
+            else:
+                reason = _log_device(ls, cap, limit_s, args, number, quiet=args.quiet or args.json)
+        except KeyboardInterrupt:
+            reason, interrupted = "stopped by Ctrl-C", True
+        except DeviceError as e:
+            if ls.position_s <= 0:
+                raise  # the device never gave audio (it cannot be opened): the log did not start
+            reason = f"capture ended: {e}"
+            err = e
+        ls.finish(reason)
+        if tally.get("nonfinite"):
+            store.set_meta(f"segment {seg} nonfinite", str(tally["nonfinite"]))
+            store.commit()
+    except StoreError as e:
+        # the disk is full (or the log became unwritable): what was committed stays, nothing more
+        # can be written; the events come first, so the clips cut but not stored go
+        store.rollback()
+        ls.drop_clips(getattr(e, "why", str(e)))
+        kept = _report_kept(args, ls, store, number, plan.source, e, clock.time_base, tally, clips)
+        sys.stderr.write(f"tickscope: {e}; {kept}\n")
+        return 2
+    _report_segment(args, ls, number, plan.source, reason, clock.time_base, tally, clips)
     if err is not None:
         sys.stderr.write(f"tickscope: {reason}; everything up to then is kept in {args.db}\n")
         return 2
     if interrupted:
         return INTERRUPTED  # after everything is committed and the segment's end reported
-    _raise_if_no_steps(args, ls, plan, info, tally, len(segs) + 1)
+    _raise_if_no_steps(args, ls, plan, info, tally, number)
     return 0
 
 
@@ -151,6 +159,57 @@ def _raise_if_no_steps(args, ls, plan, info, tally: dict, number: int) -> None:
         raise NoStepsError(f"no steps could be found in {where}: {why} ({kept})")
 
 
+def _clip_fields(clips) -> dict:
+    if clips is None:
+        return {}
+    return {"clips_kept": clips.kept, "clips_kept_bytes": clips.used, "clips_skipped": clips.skipped,
+            "clips_removed": clips.removed, "clips_stopped": None if not clips.stopped else
+            f"{clips.stopped} (from {clips.stopped_at_s:.1f} s of the segment)"}
+
+
+def _report_kept(args, ls, store, number: int, source: str, e, time_base: str, tally: dict, clips) -> str:
+    """The segment's end when the store could no longer write: what is kept, from the database
+    itself (the counters of the analysis also hold what was lost); the words for the error line."""
+    why = getattr(e, "why", str(e))
+    try:
+        k = store.kept(ls.seg)
+    except StoreError:
+        k = None
+    if k is None:
+        return f"what was committed before is kept in {args.db}"
+    kinds = k["kinds"]
+    d = {"db": args.db, "segment": number, "source": source, "duration_s": round(k["decided_s"], 3),
+         "steps": kinds.get("step", 0), "missed": kinds.get("missed", 0), "failed": kinds.get("failed", 0),
+         "rejected": kinds.get("rejected", 0), "gaps": k["gaps"], "ended": why,
+         "lost_s": round(max(ls.position_s - k["decided_s"], 0.0), 3), "time_base": time_base}
+    if tally.get("nonfinite"):
+        d["nonfinite_samples"] = tally["nonfinite"]
+    if clips is not None:
+        d.update(_clip_fields(clips), clips_kept=k["clips"], clips_kept_bytes=k["clip_bytes"])
+    kept = (f"everything committed is kept: {k['decided_s']:.1f} s of audio, {d['steps']} steps, "
+            f"{d['missed']} missed, {d['failed']} failed")
+    if args.json:
+        write_json(d)
+    else:
+        con = console()
+        con.print(f"log {args.db}: segment {number} ended ({why}) after {ls.position_s / 3600:.2f} h of audio; "
+                  f"kept {k['decided_s'] / 3600:.2f} h: {d['steps']} steps, {d['missed']} missed, "
+                  f"{d['failed']} failed, {d['gaps']} gaps (the last {d['lost_s']:.0f} s could not be written)")
+        if clips is not None:
+            con.print(_clip_line(d))
+        con.print(f"[dim]see the whole log: tickscope report {args.db}[/dim]")
+    return kept
+
+
+def _clip_line(d: dict) -> str:
+    line = f"clips: {d['clips_kept']} kept ({d['clips_kept_bytes'] / 1e3:.0f} kB), {d['clips_skipped']} not kept"
+    if d.get("clips_removed"):
+        line += f", {d['clips_removed']} removed again to make room for the events"
+    if d.get("clips_stopped"):
+        line += f"; no more clips: {d['clips_stopped']}"
+    return line
+
+
 def _report_segment(args, ls, number: int, source: str, reason: str, time_base: str, tally: dict, clips) -> None:
     """The segment's totals at its end (JSON, or a few lines and the hourly rates)."""
     t = ls.totals
@@ -163,9 +222,7 @@ def _report_segment(args, ls, number: int, source: str, reason: str, time_base: 
     d["sound"] = snd.get("sound")
     if snd.get("sound") == "not-stepping":
         d["beat_interval_s"] = snd.get("beat_interval_s")
-    if clips is not None:
-        d["clips_kept_bytes"] = clips.used
-        d["clips_skipped"] = clips.skipped
+    d.update(_clip_fields(clips))
     if args.json:
         write_json(d)
         return
@@ -185,6 +242,8 @@ def _report_segment(args, ls, number: int, source: str, reason: str, time_base: 
             con.print(line)
     if tally.get("nonfinite"):
         con.print(f"[yellow]{advice.nonfinite_note(tally['nonfinite'])}[/yellow]")
+    if clips is not None and (clips.kept or clips.skipped or clips.removed):
+        con.print(_clip_line(d))
     con.print(f"[dim]see the whole log: tickscope report {args.db}[/dim]")
 
 

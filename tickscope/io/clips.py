@@ -29,6 +29,10 @@ class ClipKeeper:
         self._pending: list[tuple[str, float]] = []
         self._last: dict[str, float] = {}
         self.skipped = 0
+        self.kept = 0  # clips handed out by ready() and not dropped or removed since
+        self.removed = 0  # clips stored, then removed to make room for the events (a full disk)
+        self.stopped = ""  # why no more clips are kept (the disk filling up), once they are not
+        self.stopped_at_s: float | None = None
 
     def audio(self, block: Block, start_sample: int) -> None:
         x = np.asarray(block.samples, dtype=np.float32).reshape(-1)
@@ -50,7 +54,7 @@ class ClipKeeper:
         return len(self._pending)
 
     def request(self, kind: str, time_s: float) -> None:
-        if self.used >= self.budget:
+        if self.used >= self.budget or self.stopped:
             self.skipped += 1
             return
         if time_s - self._last.get(kind, -math.inf) < self.min_spacing_s or len(self._pending) >= 16:
@@ -84,6 +88,26 @@ class ClipKeeper:
                 self.skipped += 1
                 continue
             self.used += len(data)
+            self.kept += 1
             out.append((kind, t, a, data))
         self._pending = keep
         return out
+
+    def drop(self, nbytes: int) -> None:
+        """A clip from :meth:`ready` that could not be stored after all."""
+        self.used -= nbytes
+        self.kept -= 1
+        self.skipped += 1
+
+    def removed_from_store(self, n: int, nbytes: int) -> None:
+        """``n`` stored clips of ``nbytes`` were removed again (to make room for the events)."""
+        self.removed += n
+        self.kept -= n
+        self.used -= nbytes
+
+    def stop(self, reason: str, at_s: float) -> None:
+        """Keep no more clips (the events come first: e.g. the disk is filling up)."""
+        if not self.stopped:
+            self.stopped, self.stopped_at_s = reason, at_s
+        self.skipped += len(self._pending)
+        self._pending = []

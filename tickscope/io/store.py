@@ -106,7 +106,9 @@ def _store_error(path: str, e: Exception) -> StoreError:
         why = e.strerror
     else:
         why = msg
-    return StoreError(f"log {path}: {why}")
+    err = StoreError(f"log {path}: {why}")
+    err.why = why  # the reason alone, for a log's end-of-segment line
+    return err
 
 
 class WriterLock:
@@ -263,6 +265,7 @@ class LogStore:
             raise
         self._in_tx = False
         self._event_rows: list[tuple] = []
+        self._ops: list[tuple[str, tuple]] = []  # the open transaction's writes, to replay after a full disk
 
     def _open(self) -> None:
         path, readonly = self.path, self.readonly
@@ -312,9 +315,7 @@ class LogStore:
             return dict(self.db.execute("SELECT key, value FROM meta").fetchall())
 
     def set_meta(self, key: str, value: str) -> None:
-        self._begin()
-        with self._guard():
-            self.db.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, value))
+        self._write("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, value))
 
     def close(self) -> None:
         try:
@@ -355,23 +356,27 @@ class LogStore:
                 self.db.execute("BEGIN IMMEDIATE")
             self._in_tx = True
 
+    def _write(self, sql: str, params: tuple = ()):
+        """One write of the open transaction (begun if need be), noted so that it can be replayed."""
+        self._begin()
+        with self._guard():
+            cur = self.db.execute(sql, params)
+        self._ops.append((sql, params))
+        return cur
+
     # -- writing -----------------------------------------------------------------------------
     def new_segment(self, **f) -> int:
         """A new segment row (fields of :class:`Segment`; the id is returned)."""
         f = {_COLUMNS.get(k, k): v for k, v in f.items()}
         cols = ", ".join(f)
         q = ", ".join("?" for _ in f)
-        self._begin()
-        with self._guard():
-            cur = self.db.execute(f"INSERT INTO segments ({cols}) VALUES ({q})", tuple(f.values()))
+        cur = self._write(f"INSERT INTO segments ({cols}) VALUES ({q})", tuple(f.values()))
         self.commit()
         return int(cur.lastrowid)
 
     def update_segment(self, seg: int, **f) -> None:
-        self._begin()
         sets = ", ".join(f"{k}=?" for k in f)
-        with self._guard():
-            self.db.execute(f"UPDATE segments SET {sets} WHERE id=?", (*f.values(), seg))
+        self._write(f"UPDATE segments SET {sets} WHERE id=?", (*f.values(), seg))
 
     def add_event(self, seg: int, kind: str, step: int | None, time_s: float, pol: int | None,
                   peak_dbfs: float, snr_db: float, match: float, decay_ms: float, flags: tuple[str, ...]) -> None:
@@ -379,9 +384,7 @@ class LogStore:
                                  _i(match, 1000), _i(decay_ms, 1000), flag_bits(flags)))
 
     def add_block(self, seg: int, start_sample: int, host_s, wall_s, adc_s) -> None:
-        self._begin()
-        with self._guard():
-            self.db.execute("INSERT INTO blocks VALUES (?, ?, ?, ?, ?)", (seg, int(start_sample), host_s, wall_s, adc_s))
+        self._write("INSERT INTO blocks VALUES (?, ?, ?, ?, ?)", (seg, int(start_sample), host_s, wall_s, adc_s))
 
     def forget_steps(self, seg: int, before_s: float) -> dict[str, int]:
         """The grid was found again at ``before_s``: what segment ``seg`` stored as steps before it
@@ -396,56 +399,90 @@ class LogStore:
         with self._guard():
             counts = {names[int(k)]: int(n) for k, n in self.db.execute(
                 "SELECT kind, COUNT(*) FROM events WHERE seg=? AND time_s<? GROUP BY kind", (seg, before_s))}
-            self.db.execute("UPDATE events SET kind=?, step=NULL, pol=NULL WHERE seg=? AND time_s<? AND kind=?",
-                            (rejected, seg, before_s, step))
-            self.db.execute(f"DELETE FROM events WHERE seg=? AND time_s<? AND kind IN ({','.join('?' * len(gone))})",
-                            (seg, before_s, *gone))
+        self._write("UPDATE events SET kind=?, step=NULL, pol=NULL WHERE seg=? AND time_s<? AND kind=?",
+                    (rejected, seg, before_s, step))
+        self._write(f"DELETE FROM events WHERE seg=? AND time_s<? AND kind IN ({','.join('?' * len(gone))})",
+                    (seg, before_s, *gone))
         return {k: counts.get(k, 0) for k in ("step", "missed", "failed", "correction")}
 
     def add_gap(self, seg: int, start_s: float, end_s: float, kind: str) -> None:
-        self._begin()
-        with self._guard():
-            self.db.execute("INSERT INTO gaps VALUES (?, ?, ?, ?)", (seg, start_s, end_s, kind))
+        self._write("INSERT INTO gaps VALUES (?, ?, ?, ?)", (seg, start_s, end_s, kind))
 
     def add_minute(self, seg: int, row: dict) -> None:
-        self._begin()
         cols = ", ".join(["seg", *row])
         q = ", ".join("?" for _ in range(len(row) + 1))
-        with self._guard():
-            self.db.execute(f"INSERT OR REPLACE INTO minutes ({cols}) VALUES ({q})", (seg, *row.values()))
+        self._write(f"INSERT OR REPLACE INTO minutes ({cols}) VALUES ({q})", (seg, *row.values()))
 
     def add_clip(self, seg: int, time_s: float, kind: str, samplerate: int, start_s: float, flac: bytes) -> None:
-        self._begin()
+        self._write("INSERT INTO clips VALUES (?, ?, ?, ?, ?, ?)",
+                    (seg, time_s, kind, samplerate, start_s, sqlite3.Binary(flac)))
+
+    def delete_clips(self, seg: int) -> tuple[int, int]:
+        """Remove segment ``seg``'s clips (committed at once); returns how many and their bytes."""
         with self._guard():
-            self.db.execute("INSERT INTO clips VALUES (?, ?, ?, ?, ?, ?)",
-                            (seg, time_s, kind, samplerate, start_s, sqlite3.Binary(flac)))
+            n, nbytes = self.db.execute("SELECT count(*), coalesce(sum(length(flac)), 0) FROM clips WHERE seg=?",
+                                        (seg,)).fetchone()
+        if n:
+            self._write("DELETE FROM clips WHERE seg=?", (seg,))
+            self.commit()
+        return int(n), int(nbytes)
 
     def clip_bytes(self) -> int:
         with self._guard():
             return int(self.db.execute("SELECT coalesce(sum(length(flac)), 0) FROM clips").fetchone()[0])
 
-    def commit(self) -> None:
-        """Write the batched rows and make everything durable."""
-        if self._event_rows:
-            self._begin()
-            with self._guard():
-                self.db.executemany("INSERT INTO events VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", self._event_rows)
-            self._event_rows = []
-        if self._in_tx:
-            try:
+    def commit(self, *, make_room=None) -> None:
+        """Write the batched rows and make everything durable.
+
+        When the disk is full and ``make_room`` is given, it is called (after the transaction is
+        rolled back) to free space, e.g. by removing clips; if it returns True the transaction's
+        writes are made again and committed once more.  A commit that fails raises StoreError and
+        leaves the writes pending until :meth:`rollback`.
+        """
+        try:
+            self._commit_once()
+        except StoreError as e:
+            if make_room is None or getattr(e, "why", "") != "the disk is full":
+                raise
+            ops, rows = self._ops, self._event_rows
+            self.rollback()
+            if not make_room():
+                raise
+            self._event_rows = rows
+            for sql, params in ops:
+                self._write(sql, params)
+            self._commit_once()
+
+    def _commit_once(self) -> None:
+        try:
+            if self._event_rows:
+                self._begin()
+                with self._guard():
+                    self.db.executemany("INSERT INTO events VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                                        self._event_rows)
+            if self._in_tx:
                 with self._guard():
                     self.db.execute("COMMIT")
-            finally:
-                self._in_tx = False
-
-    def rollback(self) -> None:
+        except BaseException:
+            self._end_tx()  # nothing of it is written; the pending writes stay for a retry or rollback()
+            raise
+        self._in_tx = False
         self._event_rows = []
-        if self._in_tx:
+        self._ops = []
+
+    def _end_tx(self) -> None:
+        if self.db.in_transaction:  # a failed COMMIT (a full disk) may leave it open, or SQLite ends it
             try:
                 self.db.execute("ROLLBACK")
             except sqlite3.Error:
                 pass
-            self._in_tx = False
+        self._in_tx = False
+
+    def rollback(self) -> None:
+        """Forget everything not committed."""
+        self._event_rows = []
+        self._ops = []
+        self._end_tx()
 
     def drop_empty_segment(self, seg: int) -> bool:
         """Remove segment ``seg`` if nothing of it was committed (a run that failed before any audio
@@ -469,6 +506,19 @@ class LogStore:
                 self.db.execute("ROLLBACK")
                 raise
         return True
+
+    def kept(self, seg: int) -> dict:
+        """What of segment ``seg`` is committed: audio seconds decided, events by kind, gaps and clips."""
+        names = {v: k for k, v in KIND_CODES.items()}
+        with self._guard():
+            row = self.db.execute("SELECT decided_s FROM segments WHERE id=?", (seg,)).fetchone()
+            kinds = {names.get(int(k), str(k)): int(n) for k, n in
+                     self.db.execute("SELECT kind, count(*) FROM events WHERE seg=? GROUP BY kind", (seg,))}
+            gaps = self.db.execute("SELECT count(*) FROM gaps WHERE seg=?", (seg,)).fetchone()[0]
+            clips, clip_bytes = self.db.execute("SELECT count(*), coalesce(sum(length(flac)), 0) FROM clips "
+                                                "WHERE seg=?", (seg,)).fetchone()
+        return {"decided_s": float(row[0]) if row else 0.0, "kinds": kinds, "gaps": int(gaps),
+                "clips": int(clips), "clip_bytes": int(clip_bytes)}
 
     # -- reading -----------------------------------------------------------------------------
     def segments(self) -> list[Segment]:
