@@ -27,10 +27,13 @@ def _readings(ppm, seconds, rng, *, block=480, fs=48000, jitter_ms=2.0, gaps=(),
     return start, host
 
 
+# These readings tie each block's host time to its own samples with no wait for the rest of a
+# device chunk: a reader that takes what has arrived (block_frames=0).  Told nothing, the fit takes
+# equal blocks for a reader of fixed blocks and bounds their wait at its worst (a block).
 @pytest.mark.parametrize("ppm", [23.0, -41.0])
 def test_recovers_simulated_offsets(rng, ppm):
     start, host = _readings(ppm, 600, rng)
-    fit = fit_device_clock(start, host, 48000)
+    fit = fit_device_clock(start, host, 48000, block_frames=0)
     assert abs(fit.ppm - ppm) <= fit.ci95_ppm
     assert fit.ci95_ppm < 1.0
 
@@ -40,7 +43,7 @@ def test_interval_is_honest(rng):
     for i in range(60):
         ppm = rng.uniform(-100, 100)
         start, host = _readings(ppm, 120, rng, jitter_ms=rng.uniform(0.5, 4))
-        fit = fit_device_clock(start, host, 48000)
+        fit = fit_device_clock(start, host, 48000, block_frames=0)
         hits += abs(fit.ppm - ppm) <= fit.ci95_ppm
     assert hits >= 52  # about 95 % of 60 (binomial: 52 is 3 sigma below 57)
 
@@ -48,7 +51,7 @@ def test_interval_is_honest(rng):
 def test_jitter_gaps_and_host_steps_do_not_bias(rng):
     start, host = _readings(-41.0, 900, rng, jitter_ms=4.0, gaps=[(48000 * 100, 48000 * 3), (48000 * 500, 4800)],
                             step=(500.0, 0.35))
-    fit = fit_device_clock(start, host, 48000)
+    fit = fit_device_clock(start, host, 48000, block_frames=0)
     assert len(fit.steps) == 1 and fit.steps[0][1] == pytest.approx(0.35, abs=0.02)
     assert abs(fit.ppm + 41.0) <= fit.ci95_ppm
 
@@ -94,12 +97,15 @@ def test_reference_recording_and_profile_use(confdir, capsys):
 
 
 def test_from_saved_blocks(confdir, rng, capsys):
+    # a saved capture's blocks are of one size: the driver's capture times (adc_time_s, as listen
+    # --save writes them) show how little their wait drifted; without them the wait is taken at its worst
     start, host = _readings(57.0, 300, rng)
+    adc = 100.0 + start / (48000 * (1 + 57e-6)) + rng.normal(0, 2e-5, len(start))
     p = confdir / "cap.flac.blocks.csv"
     with open(p, "w") as f:
         f.write("start_sample,frames,host_time_s,wall_time_s,adc_time_s,gap_before\n")
-        for s0, h in zip(start, host):
-            f.write(f"{int(s0)},480,{float(h)!r},0,0,0\n")
+        for s0, h, a in zip(start, host, adc):
+            f.write(f"{int(s0)},480,{float(h)!r},0,{float(a)!r},0\n")
     assert main(["calibrate", "saved", "--from-blocks", str(p), "--json"]) == 0
     d = json.loads(capsys.readouterr().out)
     assert abs(d["ppm"] - 57.0) <= d["u95_ppm"] and d["method"] == "saved-capture"
@@ -114,7 +120,8 @@ def _calibrate(latency, seconds, confdir):
     r = subprocess.run([sys.executable, "-m", "tickscope", "calibrate", f"sink-{latency}", "--device", "pulse",
                         "--seconds", str(seconds), "--latency", latency, "--json"], capture_output=True, text=True,
                        env=env, timeout=seconds + 60)
-    assert r.returncode == 0, r.stderr
+    # a run this short may be too uncertain to be kept as a profile (exit 3): --json gives the figures
+    assert r.returncode in (0, 3), r.stderr
     return json.loads(r.stdout)
 
 

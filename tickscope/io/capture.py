@@ -195,20 +195,26 @@ class Capture:
             yield item
 
 
+#: ``calibrate`` reads the blocks as PortAudio delivers them (0 = any size): a block then ends where
+#: the device's own chunk ends, and its host time carries no wait for the rest of a chunk (blocks
+#: of a fixed size do: see core/clockfit.py).
+CALIBRATION_BLOCKSIZE = 0
+
+
 def clock_readings(device: int | None, samplerate: int, seconds: float, *, latency: float | str = "high",
-                   progress=None, clock=time.monotonic) -> tuple[list[tuple[float, float]], bool]:
-    """Capture for ``seconds`` and return each block's (first sample index, host monotonic time).
+                   progress=None, clock=time.monotonic) -> tuple[list[tuple[float, float, float]], bool]:
+    """Capture for ``seconds`` and return each block's (first sample index, frames, host monotonic time).
 
     No sound is needed: only when the blocks arrive matters (the method of ``calibrate``).
     ``progress(elapsed_s)`` is called after every block.  Ctrl-C ends the capture early and
     returns what was read, with True for "interrupted" (KeyboardInterrupt is not raised).
     """
-    rows: list[tuple[float, float]] = []
+    rows: list[tuple[float, float, float]] = []
     t0 = clock()
     try:
-        with Capture(device, samplerate, latency=latency, clock=clock) as cap:
+        with Capture(device, samplerate, latency=latency, blocksize=CALIBRATION_BLOCKSIZE, clock=clock) as cap:
             for b in cap.blocks():
-                rows.append((float(b.start_sample), float(b.host_time_s)))
+                rows.append((float(b.start_sample), float(len(b.samples)), float(b.host_time_s)))
                 el = clock() - t0
                 if progress is not None:
                     progress(min(el, seconds))

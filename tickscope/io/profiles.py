@@ -4,7 +4,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 import os
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, fields
 
 from ..errors import ParameterError, StoreError
 from ..units import SECONDS_PER_DAY
@@ -23,6 +23,7 @@ class ClockProfile:
     device: str = ""
     host_sync: str = "unknown"  # what the system said about its own clock at the time
     note: str = ""
+    setup: str = ""  # how the device was opened (a virtual device's clock can depend on it)
 
     def age_days(self, now: dt.datetime | None = None) -> float:
         now = now or dt.datetime.now(dt.timezone.utc)
@@ -53,7 +54,8 @@ def load_all() -> dict[str, ClockProfile]:
     try:
         with open(p) as f:
             raw = json.load(f)
-        return {k: ClockProfile(**v) for k, v in raw.items()}
+        known = {f.name for f in fields(ClockProfile)}
+        return {k: ClockProfile(**{a: b for a, b in v.items() if a in known}) for k, v in raw.items()}
     except (OSError, ValueError, TypeError) as e:
         raise StoreError(f"cannot read the clock profiles in {p}: {e}") from e
 
