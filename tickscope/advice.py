@@ -22,11 +22,23 @@ _PROFILE_METHODS = {"host-clock": "against the host clock", "reference": "agains
 
 
 def profile_time_base(profile, *, auto: bool, stale_days: float) -> str:
-    """The time base of a rate corrected by a saved clock profile."""
-    stale = " — STALE, recalibrate" if profile.age_days() > stale_days else ""
-    how = _PROFILE_METHODS.get(profile.method, profile.method)
-    return (f"calibrated {how} on {profile.created[:10]} ({profile.ppm:+.2f} ± {profile.u95_ppm:.2f} ppm, "
-            f"profile {profile.name}{', used by default for this device' if auto else ''}){stale}")
+    """The time base of a rate corrected by a saved clock profile: which profile, its correction
+    with its 95 % interval, how it was measured and how long ago."""
+    how = {"host-clock": "host clock", "reference": "reference recording",
+           "saved-capture": "host clock, saved capture"}.get(profile.method, profile.method)
+    days = profile.age_days()
+    if not days < float("inf"):  # an unreadable date
+        age = "date unknown"
+    elif days < 1 / 24:
+        age = f"made {max(days * 1440, 0.0):.0f} min ago"
+    elif days < 2:
+        age = f"made {days * 24:.0f} h ago"
+    else:
+        age = f"made {days:.0f} days ago"
+    stale = "; STALE" if days > stale_days else ""
+    whose = " (named like this device)" if auto else ""
+    return (f"corrected by profile {profile.name!r}{whose}: {profile.ppm:+.2f} ± {profile.u95_ppm:.2f} ppm, "
+            f"{how}, {age}{stale}")
 
 
 def nonfinite_note(n: int) -> str:
