@@ -477,8 +477,9 @@ match_pick(PyObject *self, PyObject *args)
     PyObject *co, *Co, *xo, *po, *wo, *w1o, *w2o, *to, *vo, *ro;
     Py_ssize_t l0, L, nt, width, nfft, iters;
     double energy;
-    if (!PyArg_ParseTuple(args, "OOOnnnnOdOOOnnOOO", &co, &Co, &xo, &l0, &L, &nt, &width, &po, &energy, &wo, &w1o,
-                          &w2o, &nfft, &iters, &to, &vo, &ro))
+    double tie = 0.03, refine = 0.0;
+    if (!PyArg_ParseTuple(args, "OOOnnnnOdOOOnnOOO|dd", &co, &Co, &xo, &l0, &L, &nt, &width, &po, &energy, &wo, &w1o,
+                          &w2o, &nfft, &iters, &to, &vo, &ro, &tie, &refine))
         return NULL;
     Py_buffer cb, Cb, xb, pb, wb, w1b, w2b, tb, vb, rb;
     Py_buffer *held[10];
@@ -530,7 +531,11 @@ match_pick(PyObject *self, PyObject *args)
                     top = cl[i];
                     am = i;
                 }
-            const float bar = 0.75f * top;
+            /* the lobes refined: within `reach` of the top (a ring sampled only two or three times a
+               cycle can hide its true peak between samples: its best sample, and its parabola, then
+               read far lower than the peak) */
+            const double reach = fmax(tie, refine);
+            const float bar = (float)fmax(0.1, fmin(0.75, 1.0 - reach - 0.05)) * top;
             Py_ssize_t m = 0;
             int has_am = 0;
             for (Py_ssize_t i = 1; i + 1 < L; i++)
@@ -555,7 +560,7 @@ match_pick(PyObject *self, PyObject *args)
                 if (cpv[q] > top_p)
                     top_p = cpv[q];
             }
-            const double keep_bar = top_p - 0.03 * fabs(top_p);
+            const double keep_bar = top_p - reach * fabs(top_p);
             const float *Cr = Cf + 2 * nb * r;
             for (Py_ssize_t k = 0; k < 2 * nb; k++)
                 rowbuf[k] = (double)Cr[k];
@@ -576,11 +581,11 @@ match_pick(PyObject *self, PyObject *args)
                 if (v > row_best)
                     row_best = v;
             }
-            /* the best refined lobe: near-ties (within 3 %) nearest the preferred lag first, then
+            /* the best refined lobe: near-ties (within tie, 3 % by default) nearest the preferred lag first, then
                the highest; the first in candidate order among equals */
             const double p = pref ? pref[r] : NAN;
             const int use_pref = isfinite(p);
-            const double tie_bar = row_best - 0.03 * fabs(row_best);
+            const double tie_bar = row_best - tie * fabs(row_best);
             Py_ssize_t best = -1;
             int best_tied = 0;
             double best_score = 0.0;

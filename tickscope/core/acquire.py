@@ -22,7 +22,7 @@ import numpy as np
 
 from ..model import Bursts
 from .detect import Impact
-from .timing import Template, learn_template, match
+from .timing import COARSE_TIE, Template, coarse_lags, learn_template, match, match_many
 
 if TYPE_CHECKING:
     from .grid import TrackerConfig
@@ -336,7 +336,11 @@ def _fine_times(chosen: dict[int, OpenImpact], ks: np.ndarray, k0: int, template
     for k in ks:
         o = chosen[int(k)]
         kk = int(k) - k0
-        lag, rho = match(o.imp.wsnippet, templates[kk % 2], max_lag=int(0.002 * samplerate))
+        tm = templates[kk % 2]
+        max_lag = int(0.002 * samplerate)
+        coarse, _ = coarse_lags([o.imp.wsnippet], tm, samplerate, max_lag=max_lag)
+        lags, rhos = match_many(o.imp.wsnippet[None, :], tm, max_lag=max_lag, prefer=coarse, tie=COARSE_TIE)
+        lag, rho = float(lags[0]), float(rhos[0])
         if rho >= cfg.good_match:
             fine_k.append(kk)
             fine_t.append((o.imp.snippet_start + templates[kk % 2].onset_index + lag) / samplerate)

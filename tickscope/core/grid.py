@@ -23,7 +23,8 @@ from .acquire import Grid, OpenImpact, find_grid
 from .detect import Impact
 from .dsp import MovingLine, RollingWindow
 from .ringdown import measure_ringdown
-from .timing import FIRST_IMPACT_PEAK_S, Template, match, match_many, onset_of
+from .timing import (COARSE_TIE, FIRST_IMPACT_PEAK_S, Template, coarse_lags, dominant_period, match, match_many,
+                     onset_of, refine_reach)
 
 # A decay curve whose line misfit (RMS, dB) exceeds this share of the dB it spans bends away from one
 # exponential: a room's reverberation or noise some 10-15 dB under the peak (simulated clean ring-downs
@@ -56,6 +57,11 @@ class TrackerConfig:
     regrid_window_s: float = 8.0
     regrid_matched_share: float = 0.6
     regrid_coverage: float = 0.7  # a new grid must hold a matched step in this share of its slots
+
+
+#: the correlation margin by which the attack's lobe must beat the predicted one to be taken (the
+#: near-tie margin of earlier versions, which resolved near-tied lobes by the prediction alone)
+PREDICTION_TIE = 0.03
 
 
 class StepTracker:
@@ -192,17 +198,41 @@ class StepTracker:
         pols = [k % 2 if k >= 0 else 0 for k in slots]
         lag = np.zeros(len(opens))
         rho = np.zeros(len(opens))
-        # where the grid is well known, near-tied correlation lobes are settled by the predicted
-        # time of the slot (with this polarity's offset): a ring cycle must not slip
-        prefer = np.full(len(opens), np.nan)
-        if len(self._fit) >= 8:
-            for i, (o, k) in enumerate(zip(opens, slots)):
-                pr = self.predict(k) + self._pol_offset(k)
-                prefer[i] = pr * self.samplerate - o.imp.snippet_start - self.templates[pols[i]].onset_index
+        # Near-tied correlation lobes (a ring's carrier: one a cycle) are settled by where the step
+        # should be, from two witnesses: the step's own attack (timing.coarse_lags: coarse, but it
+        # sees the sound begin), and, once the grid is well known, the slot's predicted time (with
+        # this polarity's offset).  Where they point to different lobes, the prediction's wins unless
+        # the attack's matches clearly better (by PREDICTION_TIE): noise can lift a neighbouring cycle
+        # over the true one (the attack then still points right), a ring sampled two or three times
+        # a cycle can fool the attack (the prediction then still points right), and a logic-
+        # regulation correction moves a step by ms from its prediction (its own lobe, which the
+        # attack finds, then matches clearly best).
+        tracked = len(self._fit) >= 8
+        max_lag = int(0.003 * self.samplerate)
         for pol in set(pols):
-            idx = [i for i, q in enumerate(pols) if q == pol]
-            lag[idx], rho[idx] = match_many([opens[i].imp.wsnippet for i in idx], self.templates[pol],
-                                            max_lag=int(0.003 * self.samplerate), prefer=prefer[idx])
+            idx = np.array([i for i, q in enumerate(pols) if q == pol])
+            rows = np.stack([opens[i].imp.wsnippet for i in idx])
+            tmpl = self.templates[pol]
+            coarse, _ = coarse_lags(rows, tmpl, self.samplerate, max_lag=max_lag)
+            reach = refine_reach(tmpl, self.samplerate)
+            lag[idx], rho[idx] = match_many(rows, tmpl, max_lag=max_lag, prefer=coarse, tie=COARSE_TIE, refine=reach)
+            if tracked:
+                pred = np.array([(self.predict(slots[i]) + self._pol_offset(slots[i])) * self.samplerate
+                                 - opens[i].imp.snippet_start - tmpl.onset_index for i in idx])
+                lag_p, rho_p = match_many(rows, tmpl, max_lag=max_lag, prefer=pred, tie=COARSE_TIE, refine=reach)
+                half = 0.5 * dominant_period(tmpl, self.samplerate)
+                # (and only where the prediction points at its lobe: within a third of a cycle)
+                take = ((np.abs(lag_p - lag[idx]) >= half) & (rho_p >= rho[idx] - PREDICTION_TIE)
+                        & (np.abs(lag_p - pred) < 2.0 * half / 3.0))
+                if reach > 0:
+                    # a ring sampled under five times a cycle: its attack cannot tell one cycle from the
+                    # next (the attack's own lobes are as ambiguous), so the prediction alone settles
+                    # near-ties, within PREDICTION_TIE (as before there was an attack to ask)
+                    lag_p, rho_p = match_many(rows, tmpl, max_lag=max_lag, prefer=pred, tie=PREDICTION_TIE,
+                                              refine=reach)
+                    take = np.ones(len(idx), dtype=bool)
+                lag[idx] = np.where(take, lag_p, lag[idx])
+                rho[idx] = np.where(take, rho_p, rho[idx])
         for i, o in enumerate(opens):
             k = slots[i]
             tmpl = self.templates[pols[i]]
@@ -212,9 +242,13 @@ class StepTracker:
                 # The frame-level onset can be several ms early (a faint sound just before the step
                 # started the frame) and the search around it then finds only a side lobe: search
                 # around the slot's predicted time as well and keep the better match.
-                lag2, rho2 = match(o.imp.wsnippet, tmpl, max_lag=int(0.002 * self.samplerate), center=expect)
-                if rho2 > rho_i + 0.05:
-                    lag_i, rho_i = lag2, rho2
+                row = o.imp.wsnippet[None, :]
+                ml2 = int(0.002 * self.samplerate)
+                pref2, _ = coarse_lags(row, tmpl, self.samplerate, max_lag=ml2, center=expect)
+                lag2, rho2 = match_many(row, tmpl, max_lag=ml2, center=expect, prefer=pref2, tie=COARSE_TIE,
+                                        refine=refine_reach(tmpl, self.samplerate))
+                if rho2[0] > rho_i + 0.05:
+                    lag_i, rho_i = float(lag2[0]), float(rho2[0])
             o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag_i) / self.samplerate
             o.match = rho_i
             o.slot = k

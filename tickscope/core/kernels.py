@@ -63,12 +63,13 @@ def frame_power(x: np.ndarray, head: np.ndarray, lag: int, hop: int, scale: floa
 
 def match_pick(c: np.ndarray, C: np.ndarray, xp: np.ndarray, l0: int, n_lags: int, nt: int, width: int,
                pref: np.ndarray | None, energy: float, w: np.ndarray, w1: np.ndarray, w2: np.ndarray, nfft: int,
-               iters: int, tau: np.ndarray, val: np.ndarray, rho: np.ndarray) -> None:
+               iters: int, tau: np.ndarray, val: np.ndarray, rho: np.ndarray, tie: float = 0.03,
+               refine: float = 0.0) -> None:
     """The compiled :func:`tickscope.core.timing._pick_numpy` (c float32 and C complex64 rows;
     tau, val and rho filled in place).  Only call when :func:`compiled` is true."""
     _c.match_pick(c, C, xp, int(l0), int(n_lags), int(nt), int(width),
                   None if pref is None else np.ascontiguousarray(pref, dtype=np.float64), float(energy),
-                  w, w1, w2, int(nfft), int(iters), tau, val, rho)
+                  w, w1, w2, int(nfft), int(iters), tau, val, rho, float(tie), float(refine))
 
 
 def onset_scan(now: np.ndarray, bg: np.ndarray, thr_b: np.ndarray, fl_b: np.ndarray, sub: int, rise: float,

@@ -9,12 +9,18 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-#: A stepping motor's A->B minus B->A interval carries the two templates' onset difference,
-#: which for ringing, varying sounds has reached 1.5 ms (a sweep of simulated phones and
-#: rooms): an escapement's tick-tock must exceed this (us) ...
+#: An alternation of the intervals (A->B minus B->A) beyond this share of the interval is an
+#: escapement's tick-tock whatever else is heard (20 ms at 1 s: a pendulum out of beat by 1 %;
+#: our own margin) ...
+TICK_TOCK_SHARE = 0.02
+#: ... and beyond this smaller share (5 ms at 1 s) when the beats also scatter by more than
+#: TICK_TOCK_JITTER_US.  A stepping motor's two polarities can begin their sounds a few ms apart (two
+#: real step sounds of one clock: 2.6 ms, so 5.2 ms of alternation) while it keeps time to
+#: microseconds; an escapement's beats scatter by tens of us and more (our own margins).
+TICK_TOCK_LOOSE_SHARE = 0.005
+TICK_TOCK_JITTER_US = 50.0
+#: never below this (us): the templates' own onsets can differ by this much
 TICK_TOCK_MIN_US = 1000.0
-#: ... and, at long intervals, this share of the interval (5 ms at 1 s; our own margin).
-TICK_TOCK_SHARE = 0.005
 #: Steps scattering more than this about their line (RMS, us) are no quartz motor's
 #: (the realistic sweep's stepping recordings never went over 460 us).
 MAX_STEP_JITTER_US = 2000.0
@@ -50,8 +56,10 @@ def classify_sound(*, grid_found: bool, nominal_s: float | None, steps: int, jit
     if nominal_s is None:
         return SoundVerdict("not-stepping", "off-interval")
     if jitter_us is not None:
-        tick_tock_us = max(TICK_TOCK_MIN_US, TICK_TOCK_SHARE * nominal_s * 1e6)
-        if alternation_us is not None and abs(alternation_us) > tick_tock_us:
+        firm_us = max(TICK_TOCK_MIN_US, TICK_TOCK_SHARE * nominal_s * 1e6)
+        loose_us = max(TICK_TOCK_MIN_US, TICK_TOCK_LOOSE_SHARE * nominal_s * 1e6)
+        if alternation_us is not None and (abs(alternation_us) > firm_us or (
+                abs(alternation_us) > loose_us and jitter_us > TICK_TOCK_JITTER_US)):
             return SoundVerdict("not-stepping", "tick-tock")
         if jitter_us > MAX_STEP_JITTER_US:
             return SoundVerdict("not-stepping", "scatter")

@@ -21,6 +21,9 @@ from . import dsp, kernels
 #: the first impact's envelope peaks this soon after its coarse onset (an attack of a few ms;
 #: our own choice, wide enough for the simulator's and typical movements' attacks)
 FIRST_IMPACT_PEAK_S = 0.010
+#: dips of a ring's envelope shorter than this (s) do not end the walk back to a sound's start
+#: (a ring of 1 kHz and up; our own choice)
+ONSET_BRIDGE_S = 0.001
 #: A sound's first peak: the first local maximum of its envelope after the sound begins that
 #: reaches this share of the loudest within ``FIRST_PEAK_S`` (a ripple of the lead-in is no peak) ...
 FIRST_PEAK_SHARE = 0.3
@@ -71,15 +74,32 @@ def onset_of(wave: np.ndarray, samplerate: float, *, fraction: float = 0.2,
 
     The search walks back from the envelope's maximum in ``search_from .. search_to``, so
     noise long before the sound cannot trigger it, and a later, louder impact of the same
-    step (a hand's bounce) cannot pass for its start.
+    step (a hand's bounce) cannot pass for its start.  It walks on across dips of the envelope
+    shorter than ``ONSET_BRIDGE_S`` between moments at half the peak or more: a ring whose
+    partials beat dips below the level every cycle, and the start of its sound lies before them
+    (the noise of a lead-in, a phone's lifted hiss, is not that loud).
     """
     env = _envelope(wave, samplerate)
     stop = len(env) if search_to is None else max(search_from + 1, min(len(env), search_to))
     p = search_from + int(np.argmax(env[search_from:stop]))
     level = fraction * env[p]
+    bridge = max(1, int(round(ONSET_BRIDGE_S * samplerate)))
     i = p
-    while i > search_from and env[i - 1] >= level:
-        i -= 1
+    while i > search_from:
+        if env[i - 1] >= level:
+            i -= 1
+            continue
+        # below the level: go on if the envelope was loud (half the peak: a ring's own ripple, not
+        # the noise of a lead-in) within the bridge before
+        j = i - 1
+        lo = max(search_from, i - 1 - bridge)
+        loud = max(level, 0.5 * env[p])
+        while j > lo and env[j] < loud:
+            j -= 1
+        if env[j] >= loud and j > search_from:
+            i = j
+            continue
+        break
     if i == search_from or env[i] == env[i - 1]:
         return float(i)
     # linear interpolation between i-1 (below) and i (at or above)
@@ -201,13 +221,15 @@ def match(snippet: np.ndarray, template: Template, *, max_lag: int, center: int 
 
 
 def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center: int = 0,
-               prefer: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+               prefer: np.ndarray | None = None, tie: float = 0.03, refine: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
     """:func:`match` for the rows of ``snippets`` (2-D, or a list of equal-length 1-D arrays) at
     once: the same numbers, with the FFTs, the lobe search and Newton's method run over all rows
     together.  Only the part of each row the search needs is copied.
 
-    ``prefer`` (a lag per row, nan for none): among lobes within 3 % of the best, take the one
-    nearest this lag rather than the highest.  A ringing sound whose pitch varies a little from
+    ``prefer`` (a lag per row, nan for none): among lobes within ``tie`` (a share: 3 %) of the
+    best, take the one nearest this lag rather than the highest.  ``refine`` (a share) widens the
+    lobes refined before that choice: a ring sampled only two or three times a cycle can hide its
+    true peak between samples, its best sample reading half as high (see :func:`refine_reach`).  A ringing sound whose pitch varies a little from
     tick to tick can make the next ring cycle's lobe read a hair higher; the step grid knows
     where the step is to far better than a cycle, so it settles such near-ties.
     """
@@ -236,14 +258,106 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
         w, w1, w2 = _newton_weights(C.shape[1], nfft)
         out_tau, out_val, rho = (np.empty(nrow) for _ in range(3))
         kernels.match_pick(c, C, xp, int(lags[0]), len(lags), nt, b - a, pref, template.energy, w, w1, w2, nfft,
-                           3, out_tau, out_val, rho)
+                           3, out_tau, out_val, rho, tie, refine)
     else:
-        out_tau, out_val, rho = _pick_numpy(c, C, x, lags, nt, nfft, pref, template.energy)
+        out_tau, out_val, rho = _pick_numpy(c, C, x, lags, nt, nfft, pref, template.energy, tie, refine)
     return a + out_tau - s0, rho
 
 
+#: Carrier lobes within this share of the best are told apart by the onset (coarse) timing: the
+#: nearest to it wins (our own margin, to be checked on recordings not made by our simulator).
+COARSE_TIE = 0.15
+#: The attack: the part of a template a step's coarse time is matched on, from its arrival (s; our
+#: own choice: a few cycles of a ring, where a one-cycle shift moves the attack off its place)
+ATTACK_S = 0.0015
+
+
+def dominant_period(template: Template, samplerate: float) -> float:
+    """The period (samples) of the strongest frequency of the template's matched part (cached)."""
+    got = template.__dict__.get("_period")
+    if got is None:
+        x = template.matched
+        n = dsp.fast_len(4 * len(x))
+        P = np.abs(np.fft.rfft(x, n))
+        P[0] = 0.0
+        f = (int(np.argmax(P)) or 1) * samplerate / n
+        got = template.__dict__["_period"] = samplerate / f
+    return got
+
+
+def attack_template(template: Template, samplerate: float) -> Template:
+    """The template cut to its attack: from a carrier period before its matching window (where a
+    sound one cycle early would show) to ``ATTACK_S`` or two periods after the sound's start,
+    whichever is longer.  Its
+    correlation lobes one carrier cycle apart differ clearly, where those of a long steady ring are
+    nearly equal; cached on the template."""
+    got = template.__dict__.get("_attack")
+    if got is None:
+        L = len(template.wave)
+        per = dominant_period(template, samplerate)
+        # from where its matching window begins (half a ms before the sound's start, as onset_of
+        # finds it), not from its arrival: the attack must hold the sound's first cycles whatever
+        # peak the arrival was taken at
+        s0, _ = _window_span(template)
+        a = max(0, int(np.floor(s0 - per)))
+        b = min(L, int(np.ceil(s0 + 0.0005 * samplerate + max(ATTACK_S * samplerate, 2 * per))))
+        w = np.zeros(L)
+        if b > a:
+            w[a:b] = dsp.tukey(b - a, 0.2)
+        got = template.__dict__["_attack"] = Template(template.wave, template.onset_index, w, template.n_used,
+                                                      float(np.sum((template.wave * w) ** 2)))
+    return got
+
+
+def refine_reach(template: Template, samplerate: float) -> float:
+    """How far below the top a correlation lobe may read and still be refined: every lobe (0.7) when
+    the template's ring is sampled under five times a cycle, whose true peaks can fall between
+    samples and read low until refined; none beyond the choice's own margin otherwise."""
+    return 0.7 if dominant_period(template, samplerate) < 5.0 else 0.0
+
+
+def coarse_lags(snippets, template: Template, samplerate: float, *, max_lag: int,
+                center: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """Each snippet's lag against ``template`` from its attack alone (:func:`attack_template`): coarse,
+    but meant to be on the right carrier cycle (domain notes 5.1: the carrier phase only after
+    coarse timing is unambiguous), in the units of :func:`match_many`; and how clearly that cycle
+    wins: one minus the normalised attack correlation one carrier period either side over its own
+    (0: the neighbouring cycles match as well, 1: they do not match at all)."""
+    rows = np.atleast_2d(np.asarray(snippets if not isinstance(snippets, list) else np.stack(snippets),
+                                    dtype=np.float64))
+    at = attack_template(template, samplerate)
+    a0, a1 = _window_span(at)
+    seg = at.matched[a0:a1]
+    per = dominant_period(template, samplerate)
+    lo = max(0, a0 + center - max_lag)
+    hi = min(rows.shape[1], a1 + center + max_lag)
+    nt = len(seg)
+    if hi - lo < nt + 2:  # the lags asked for lie (mostly) outside the snippets
+        return np.full(len(rows), np.nan), np.zeros(len(rows))
+    x = rows[:, lo:hi]
+    nfft = 1 << int(np.ceil(np.log2(max(hi - lo, 1) + nt)))
+    c = np.fft.irfft(np.fft.rfft(x, nfft, axis=1) * np.conj(np.fft.rfft(seg, nfft)), nfft, axis=1)
+    nlag = x.shape[1] - nt + 1
+    if nlag < 3:
+        return np.full(len(rows), np.nan), np.zeros(len(rows))
+    cs = np.concatenate([np.zeros((len(x), 1)), np.cumsum(x * x, axis=1)], axis=1)
+    e = cs[:, nt: nt + nlag] - cs[:, :nlag]
+    r = c[:, :nlag] / np.sqrt(np.maximum(e * float(seg @ seg), 1e-300))
+    j = np.argmax(r, axis=1)
+    ar = np.arange(len(r))
+    y0, y1, y2 = r[ar, np.clip(j - 1, 0, nlag - 1)], r[ar, j], r[ar, np.clip(j + 1, 0, nlag - 1)]
+    den = y0 - 2 * y1 + y2
+    frac = np.where(den < 0, 0.5 * (y0 - y2) / np.where(den < 0, den, -1.0), 0.0)
+    lag = lo + j + np.clip(frac, -0.5, 0.5) - a0
+    p = max(1, int(round(per)))
+    side = np.maximum(r[ar, np.clip(j - p, 0, nlag - 1)], r[ar, np.clip(j + p, 0, nlag - 1)])
+    clear = np.where(y1 > 0, 1.0 - np.maximum(side, 0.0) / np.where(y1 > 0, y1, 1.0), 0.0)
+    return lag, clear
+
+
 def _pick_numpy(c: np.ndarray, C: np.ndarray, x: np.ndarray, lags: np.ndarray, nt: int, nfft: int,
-                pref: np.ndarray | None, energy: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                pref: np.ndarray | None, energy: float, tie: float = 0.03,
+                refine: float = 0.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """match_many's choice for each row of the correlations c (spectra C, searched rows x, lag
     indices ``lags`` into c): the refined lag index and correlation there, and the correlation
     coefficient."""
@@ -254,7 +368,10 @@ def _pick_numpy(c: np.ndarray, C: np.ndarray, x: np.ndarray, lags: np.ndarray, n
     # (8 kHz, a 1.2 kHz ring: 6.5 samples a cycle) the true peak can fall between samples
     # and read lower than the next cycle's, so every lobe near the top is refined and the
     # best refined one wins (otherwise whole ring cycles slip: ~0.8 ms at 8 kHz).
-    inner = (cl[:, 1:-1] >= cl[:, :-2]) & (cl[:, 1:-1] >= cl[:, 2:]) & (cl[:, 1:-1] >= 0.75 * top[:, None])
+    # the lobes refined: within `reach` of the top (see match_many's refine)
+    reach = max(tie, refine)
+    bar = np.float32(max(0.1, min(0.75, 1.0 - reach - 0.05)))
+    inner = (cl[:, 1:-1] >= cl[:, :-2]) & (cl[:, 1:-1] >= cl[:, 2:]) & (cl[:, 1:-1] >= bar * top[:, None])
     am = np.argmax(cl, axis=1)
     # candidate lobes (row, lag index, order): the local maxima in lag order, then the
     # highest sample when it is not one of them
@@ -275,7 +392,7 @@ def _pick_numpy(c: np.ndarray, C: np.ndarray, x: np.ndarray, lags: np.ndarray, n
     start = np.where(conc, j + 0.5 * (y0 - y2) / safe, j.astype(np.float64))
     top_p = np.full(nrow, -np.inf)
     np.maximum.at(top_p, rows, pv)
-    keep = pv >= top_p[rows] - 0.03 * np.abs(top_p[rows])
+    keep = pv >= top_p[rows] - reach * np.abs(top_p[rows])
     rows, j, start, order = rows[keep], j[keep], start[keep], order[keep]
     # Newton from the parabola's peak: two or three steps then suffice
     tau, val = _newton_peaks(C[rows], nfft, start, iters=3)
@@ -289,7 +406,7 @@ def _pick_numpy(c: np.ndarray, C: np.ndarray, x: np.ndarray, lags: np.ndarray, n
         pref = pref[rows]
         row_best = np.full(nrow, -np.inf)
         np.maximum.at(row_best, rows, val)
-        near_tie = (val >= row_best[rows] - 0.03 * np.abs(row_best[rows])) & np.isfinite(pref)
+        near_tie = (val >= row_best[rows] - tie * np.abs(row_best[rows])) & np.isfinite(pref)
         # near-ties rank by distance to the preferred lag, ahead of every other lobe of the row
         # (a key of its own: folded into one number, an offset of -1e300 swallowed the distance)
         score = np.where(near_tie, np.abs(tau - np.where(np.isfinite(pref), pref, 0.0)), -val)
@@ -359,7 +476,10 @@ def learn_template(snippets: list[np.ndarray], samplerate: float, *, pre: int,
                       search_to=pre + first_s)
         win = _window(L, on, samplerate, window_s)
         t = Template(ref, on, win, 1, float(np.sum((ref * win) ** 2)))
-        lags, rhos = match_many(S, t, max_lag=max_lag)
+        # aligned by their onsets first (a ring's carrier cannot tell one cycle from the next), then
+        # to a fraction of a sample by the carrier lobe nearest that
+        coarse, _ = coarse_lags(S, t, samplerate, max_lag=max_lag)
+        lags, rhos = match_many(S, t, max_lag=max_lag, prefer=coarse, tie=COARSE_TIE)
         use = np.flatnonzero(rhos >= 0.3)  # the others are not this polarity's sound
         n = len(use)
         if n:

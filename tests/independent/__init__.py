@@ -1,0 +1,1 @@
+"""Independent test corpora (sox, an integrated Lavet motor): see README.md.  No tickscope imports."""
