@@ -144,8 +144,10 @@ class Inhibition:
     regulated_rate_s_per_day: float
     regulated_ci95_s_per_day: float
     periods_observed: int
-    z_score: float
+    z_score: float  # the normal deviate of the best hypothesis' own (uncorrected) p-value
     phase_step: int  # step number (mod period) whose interval carries the correction
+    p_value: float = float("nan")  # the search's p-value, corrected for every period and phase tried
+    hypotheses: int = 0  # (period, phase) pairs tried
 
 
 @dataclass(frozen=True)
