@@ -227,6 +227,7 @@ class Diagnosis:
     drive_level_changes: int
     position_locked: PositionLock | None
     asymmetry: PolarityAsymmetry | None
+    drive_level_p_value: float = float("nan")  # the largest level change's p-value (corrected)
 
 
 @dataclass(frozen=True)

@@ -16,7 +16,7 @@ import numpy as np
 
 from ..model import FLAG_BITS, Bursts, Diagnosis, FailedSteps, PolarityAsymmetry, RateEstimate, StepArrays
 from ..units import rate_from_interval, SECONDS_PER_DAY
-from .faults import burst_share, drive_levels, polarity_asymmetry, position_locked
+from .faults import burst_share, drive_level_test, polarity_asymmetry, position_locked
 from .otherclock import other_clock
 from .regulation import LONGEST_KNOWN_PERIOD_S, detect_inhibition, unseen_correction_ci95_s_per_day
 
@@ -71,13 +71,15 @@ def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: f
     if oc is not None:
         oc = dataclasses.replace(oc, rate_s_per_day=rate_from_interval(nominal_s * (1.0 + clock_ppm * 1e-6),
                                                                        oc.interval_s))
-    levels, changes = drive_levels(rec.peak_dbfs)
+    first = (rec.flags & FLAG_BITS["in-burst"]) == 0  # a burst's later steps share its slot's level
+    levels, changes, level_p = drive_level_test(rec.peak_dbfs[first], rec.pol[first], rec.snr_db[first])
     return Diagnosis(
         rate=shown, rate_provisional=provisional, rate_ci95_statistical_s_per_day=rate.ci95_s_per_day,
         record_more_s=max(0.0, 2 * LONGEST_KNOWN_PERIOD_S - rate.span_s) if provisional else 0.0,
         inhibition=inh, bursts=bursts, steps_in_bursts=int(len(rec.k)) if bursts else None,
         other_clock=oc, failed=_failed(rec, nominal_s, rate.span_s),
         drive_levels=tuple(levels) if len(levels) >= 2 else (), drive_level_changes=changes,
+        drive_level_p_value=level_p,
         position_locked=_position_locked(rec), asymmetry=_asymmetry(rec, k, t, 2e6 * reference_u_s))
 
 
