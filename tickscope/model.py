@@ -158,6 +158,8 @@ class Bursts:
     burst_period_s: float
     spacing_ms: float  # from a burst's first step to its second
     offsets_ms: tuple[float, ...] = ()  # from a burst's first step to each later one
+    share_full: float = float("nan")  # of the bursts heard at acquisition, the share that held every step
+    share_tracked: float = float("nan")  # of the bursts tracked, the share that held every step
 
 
 @dataclass(frozen=True)

@@ -29,6 +29,11 @@ ASYMMETRY_FLOOR_US = 50.0
 #: Above this half-width of the shared reference (us) the two polarities sound too different
 #: to put on one reference: no uneven stepping is claimed.
 ASYMMETRY_REFERENCE_MAX_US = 150.0
+#: End-of-life bursts recognised at acquisition are reported when at least this share of the
+#: bursts tracked held every one of their steps (a pattern seen by chance in the first slots
+#: would leave the later slots with a step alone; later steps of a burst can still be lost to
+#: noise, a polarity that sounds unlike the slot's: our own margin).
+BURST_CONFIRM_SHARE = 0.4
 
 
 def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: float, *,
@@ -54,7 +59,11 @@ def diagnose(rec: StepArrays, good: np.ndarray, rate: RateEstimate, nominal_s: f
         ``reference_u_s``); widens the polarity asymmetry's interval (twice: it moves one polarity).
     """
     k, t = rec.k[good], rec.t_s[good]
-    bursts = bursts if burst_share(rec, bursts) >= 0.7 else None
+    if bursts is not None:
+        # recognised at acquisition (every step of a burst in 70 % of the first slots, see
+        # acquire._burst_pattern); confirmed when the record's bursts still hold all their steps
+        share = burst_share(rec, bursts)
+        bursts = dataclasses.replace(bursts, share_tracked=share) if share >= BURST_CONFIRM_SHARE else None
     inh = None if bursts else detect_inhibition(k, t, nominal_s, clock_ppm=clock_ppm, clock_ppm_u95=clock_ppm_u95)
     if inh is not None and math.isfinite(inh.regulated_rate_s_per_day):
         shown = dataclasses.replace(rate, rate_s_per_day=inh.regulated_rate_s_per_day,
