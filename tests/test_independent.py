@@ -341,8 +341,6 @@ def test_analysis_short_clip_every_tick(sox, tmp_path, seed):
     assert js["steps_detected"] == 5 and js["failed_steps"] == 0 and js["missed_steps"] == 0
 
 
-@pytest.mark.xfail(strict=True, reason="end-of-life bursts of 4 steps every 4 s from the integrated motor are "
-                   "not recognised (39 of 156 steps, pattern regular; motor-faults 50003)")
 def test_analysis_eol_burst(sox, tmp_path):
     c = corpus.case("motor-faults", 50003)
     js, _ = _analyze(c, tmp_path)
@@ -350,8 +348,6 @@ def test_analysis_eol_burst(sox, tmp_path):
     assert js["steps_detected"] == len(c.truth["step_times_s"])
 
 
-@pytest.mark.xfail(strict=True, reason="logic regulation (10 s period, 3 pulses of 8192 Hz = 366 us) from the "
-                   "divider chain is not found (motor-faults 50006)")
 def test_analysis_inhibition(sox, tmp_path):
     c = corpus.case("motor-faults", 50006)
     js, _ = _analyze(c, tmp_path)
