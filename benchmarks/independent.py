@@ -17,7 +17,6 @@ from __future__ import annotations
 import argparse
 import csv
 import json
-import math
 import os
 import subprocess
 import sys
@@ -50,7 +49,7 @@ def _nice():
 def _sim_case(kind: str, seed: int):
     """A project-simulator case (the only place tickscope.core.simulate is used), truth mapped to
     the independent schema."""
-    from tickscope.core.simulate import Scenario, render_all
+    from tickscope.core.simulate import Scenario
 
     if kind == "sim-realistic":
         sys.path.insert(0, HERE)
@@ -75,6 +74,15 @@ def _sim_case(kind: str, seed: int):
         else:
             kw.update(duration_s=300.0, drive_levels_db=(0.0, 4.0), drive_level_period_s=90.0)
     sc = Scenario(**kw)
+    x, truth = sim_truth(sc, corpus=kind, seed=seed, notes="project simulator")
+    return x, sc.samplerate_hz, truth, None, ".wav"
+
+
+def sim_truth(sc, *, corpus: str, seed: int, notes: str, position_locked: bool = False):
+    """Render a project-simulator scenario: (the movement's channel, its truth in the independent
+    corpora's schema)."""
+    from tickscope.core.simulate import render_all
+
     x, tr = render_all(sc)
     x = x[:, sc.step_channel].astype(np.float32)
     end = sc.duration_s - 0.1
@@ -97,11 +105,11 @@ def _sim_case(kind: str, seed: int):
         inhibition=inh, drive_levels=(len(sc.drive_levels_db) if len(sc.drive_levels_db) > 1 else None),
         other_clock=(dict(rate_s_per_day=sc.second_clock_rate_s_per_day, level_db=sc.second_clock_db)
                      if sc.second_clock_rate_s_per_day is not None else None),
-        position_locked=None, decay_ms=None, snr_db=sc.snr_db, crlb_us=None, lossy=None,
-        room=({"rt60_s": sc.reverb_rt60_ms / 1e3} if sc.reverb_rt60_ms else None), drops=[],
-        timing_scored=not (sc.variation_db or sc.variation_freq_pct or sc.jitter_us or sc.drive_levels_db),
-        notes="project simulator", corpus=kind, seed=seed)
-    return x, sc.samplerate_hz, truth, None, ".wav"
+        position_locked=dict(period_steps=60) if position_locked else None, decay_ms=None, snr_db=sc.snr_db,
+        crlb_us=None, lossy=None, room=({"rt60_s": sc.reverb_rt60_ms / 1e3} if sc.reverb_rt60_ms else None),
+        drops=[], timing_scored=not (sc.variation_db or sc.variation_freq_pct or sc.jitter_us or sc.drive_levels_db),
+        notes=notes, corpus=corpus, seed=seed)
+    return x, truth
 
 
 def _independent_case(kind: str, seed: int):

@@ -173,7 +173,8 @@ def _diagnosis_notes(dg) -> tuple[list[str], list[str]]:
                 "or stop the other clock: a phone's gain control can make two clocks sound alike)")
         else:
             later.append(f"another clock ticks in the background ({oc.level_db:.0f} dB below the steps, "
-                         f"{oc.rate_s_per_day:+.1f} s/day): its ticks were left out")
+                         f"{oc.rate_s_per_day:+.1f} s/day; {oc.ticks} ticks on a grid of their own, "
+                         f"{_chance(oc.p_value)} that other sounds line up so): its ticks were left out")
     if dg.failed.correction_pulses:
         later.append(f"{dg.failed.correction_pulses} correction pulses: the movement is working at its margin")
     pa = dg.asymmetry
@@ -185,6 +186,13 @@ def _diagnosis_notes(dg) -> tuple[list[str], list[str]]:
 
 
 # -- the repairer's reading ------------------------------------------------------------------------
+def _chance(p: float) -> str:
+    """A p-value in words: 'a chance of 3e-08' (or under 1e-300)."""
+    if p != p:
+        return "a chance not known"
+    return "a chance under 1e-300" if p < 1e-300 else f"a chance of {p:.1g}"
+
+
 def reading(dg, *, missed_step_times_s: tuple[float, ...] = ()) -> tuple[str, ...]:
     """Plain-words statements, each built from a figure of the diagnosis; with the missed steps'
     times, what they mean."""
@@ -197,12 +205,14 @@ def reading(dg, *, missed_step_times_s: tuple[float, ...] = ()) -> tuple[str, ..
                    f"regulated {inh.regulated_rate_s_per_day:+.3f} s/day over {inh.periods_observed} whole periods")
     b = dg.bursts
     if b:
+        held = "" if b.share_tracked != b.share_tracked else f"; {b.share_tracked:.0%} of the bursts held every step"
         out.append(f"the cell is at end of life: the circuit steps in bursts of {b.steps_per_burst} every "
-                   f"{b.burst_period_s:g} s ({b.spacing_ms:.0f} ms apart); the rate above is burst to burst")
+                   f"{b.burst_period_s:g} s ({b.spacing_ms:.0f} ms apart{held}); the rate above is burst to burst")
     f = dg.failed
     if f.count:
-        out.append(f"the motor failed {f.count} steps ({f.correction_pulses} recovered by a correction pulse), losing "
-                   f"{f.seconds_lost:g} s — about {f.seconds_lost_per_day:.0f} s/day at this "
+        out.append(f"the motor failed {f.count} steps ({f.correction_pulses} recovered by a correction pulse; each a "
+                   "twitch on its slot well under the steps' usual level and louder than every other sound of the "
+                   f"2 s before it), losing {f.seconds_lost:g} s — about {f.seconds_lost_per_day:.0f} s/day at this "
                    "rate of failure: the motor works at its margin (worn or dirty train, thick oil, weak cell)")
     miss = sorted(float(t) for t in missed_step_times_s)
     if miss:
@@ -249,12 +259,14 @@ def reading(dg, *, missed_step_times_s: tuple[float, ...] = ()) -> tuple[str, ..
     if dg.drive_levels:
         out.append(f"{len(dg.drive_levels)} drive levels heard "
                    f"({', '.join(f'{lv.level_dbfs:.0f} dBFS' for lv in dg.drive_levels)}), "
-                   f"{dg.drive_level_changes} changes: an adaptive motor drive, not a fault by itself")
+                   f"{dg.drive_level_changes} changes, each abrupt and in both polarities "
+                   f"({_chance(dg.drive_level_p_value)} for the largest without any): an adaptive motor drive, "
+                   "not a fault by itself")
     pl = dg.position_locked
     if pl:
         out.append(f"anomalies repeat at step {', '.join(map(str, pl.positions))} of every {pl.period_steps} "
-                   f"({pl.count} times, counted from the first step heard): look for a damaged tooth or a hand "
-                   "touching the dial, another hand or the glass there")
+                   f"({pl.count} times, counted from the first step heard; {_chance(pl.p_value)} by coincidence): "
+                   "look for a damaged tooth or a hand touching the dial, another hand or the glass there")
     pa = dg.asymmetry
     if pa is not None and pa.uneven:
         out.append(f"the two coil polarities step unevenly (A→B minus B→A {pa.value_us:+.0f} ± {pa.ci95_us:.0f} µs): "

@@ -68,8 +68,41 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
     return d
 
 
+def escapement_to_dict(e) -> dict:
+    """The ``escapement`` object of the JSON (an :class:`~tickscope.model.EscapementFigures`)."""
+    r = e.rate
+    return {
+        "beats_per_hour": _num(e.beats_per_hour, 1), "beats_per_hour_heard": _num(e.beats_per_hour_heard, 3),
+        "nominal_source": e.nominal_source, "off_series_percent": _num(e.off_series_percent, 4),
+        "balance": e.balance, "beat_interval_s": _num(e.beat_interval_s, 9),
+        "rate_s_per_day": _num(r.rate_s_per_day, 4) if r else None,
+        "rate_ci95_s_per_day": _num(r.ci95_s_per_day, 4) if r else None,
+        "beat_asymmetry_ms": _num(e.beat_asymmetry_ms, 4), "beat_asymmetry_ci95_ms": _num(e.beat_asymmetry_ci95_ms, 4),
+        "beat_asymmetry_percent": _num(e.beat_asymmetry_percent, 3), "beat_reference": e.beat_reference,
+        "lift_time_ms": [_num(v, 4) for v in e.lift_time_ms],
+        "lift_time_ci95_ms": [_num(v, 4) for v in e.lift_time_ci95_ms],
+        "lifts_measured": list(e.lifts_measured),
+        "lift_angle_deg": _num(e.lift_angle_deg), "lift_angle_given": e.lift_angle_given,
+        "amplitude_deg": _num(e.amplitude_deg, 1), "amplitude_ci95_deg": _num(e.amplitude_ci95_deg, 1),
+        "amplitude_reason": e.amplitude_reason,
+        "beat_scatter_us": _num(e.beat_scatter_us, 1),
+        "knocking": None if e.knocking is None else {
+            "beats": e.knocking.beats, "of_beats": e.knocking.of_beats, "delay_ms": _num(e.knocking.delay_ms, 2),
+            "p_value": _num(e.knocking.p_value)},
+        "wheel_pattern": None if e.wheel is None else {
+            "period_beats": e.wheel.period_beats, "amplitude_us": _num(e.wheel.amplitude_us, 1),
+            "p_value": _num(e.wheel.p_value)},
+        "stops": [{"at_s": _num(st.at_s, 3), "for_s": _num(st.for_s, 3), "restarted": st.restarted} for st in e.stops],
+        "missed_beats": e.missed_beats,
+    }
+
+
 def diagnosis_to_dict(dg: Diagnosis) -> dict:
     """The quartz diagnostics' keys of the JSON object (schema in the README)."""
+
+    def _p(v: float):  # a p-value: three significant digits (0 when below what a float holds)
+        return None if v is None or not math.isfinite(v) else float(f"{v:.3g}")
+
     inh, b, oc, f, pa = dg.inhibition, dg.bursts, dg.other_clock, dg.failed, dg.asymmetry
     d = {
         "inhibition": None if inh is None else {
@@ -86,9 +119,10 @@ def diagnosis_to_dict(dg: Diagnosis) -> dict:
     }
     if b:
         d["steps_in_bursts"] = dg.steps_in_bursts
+        d["bursts_full_share"] = _num(b.share_tracked, 3)
     d["other_clock"] = None if oc is None else {
         "rate_s_per_day": _num(oc.rate_s_per_day, 3), "level_db": _num(oc.level_db, 1), "ticks": oc.ticks,
-        "drift_ms_per_min": _num(oc.drift_ms_per_min, 2)}
+        "drift_ms_per_min": _num(oc.drift_ms_per_min, 2), "p_value": _p(oc.p_value)}
     d.update({
         "failed_steps": f.count,
         "failed_step_times_s": [round(v, 6) for v in f.times_s],
@@ -97,10 +131,11 @@ def diagnosis_to_dict(dg: Diagnosis) -> dict:
         "correction_pulses": f.correction_pulses,
         "drive_levels": {"levels_dbfs": [round(lv.level_dbfs, 1) for lv in dg.drive_levels],
                          "shares": [round(lv.share, 3) for lv in dg.drive_levels],
-                         "changes": dg.drive_level_changes} if dg.drive_levels else None,
+                         "changes": dg.drive_level_changes, "p_value": _p(dg.drive_level_p_value)}
+        if dg.drive_levels else None,
         "position_locked": None if dg.position_locked is None else {
             "period_steps": dg.position_locked.period_steps, "positions": dg.position_locked.positions,
-            "count": dg.position_locked.count},
+            "count": dg.position_locked.count, "p_value": _p(dg.position_locked.p_value)},
     })
     if pa is not None:
         d["polarity_asymmetry_us"] = _num(pa.value_us, 2)

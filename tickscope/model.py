@@ -176,6 +176,7 @@ class PositionLock:
     period_steps: int
     positions: list[int]
     count: int
+    p_value: float = float("nan")  # chance of one position collecting this many (corrected for every position)
 
 
 @dataclass(frozen=True)
@@ -187,6 +188,7 @@ class OtherClock:
     level_db: float  # median level of its ticks minus that of the steps
     drift_ms_per_min: float  # how fast its ticks move against the steps
     rate_s_per_day: float = float("nan")  # on the same time base as the movement's rate
+    p_value: float = float("nan")  # chance of a vote this full among sounds at random phases (corrected)
 
 
 @dataclass(frozen=True)

@@ -250,8 +250,8 @@ def position_locked(anomaly_k: np.ndarray, span_steps: int, *, periods=(60,), mi
         c = int(cnt[top].sum())
         # probability that some position gets >= max count by chance
         pval = min(1.0, P * dsp.binom_sf(int(cnt.max()) - 1, len(a), 1.0 / P))
-        if pval < 1e-3 and (best is None or c > best.count):
-            best = PositionLock(P, [int(x) for x in top], c)
+        if pval < ALPHA and (best is None or c > best.count):
+            best = PositionLock(P, [int(x) for x in top], c, pval)
     return best
 
 

@@ -345,9 +345,31 @@ class StepTracker:
         return out
 
     def _slot_sounds(self, in_slot: list[OpenImpact], pred: float):
-        """(step, failed, correction) among the impacts of a slot (each may be None)."""
+        """(step, failed, correction) among the impacts of a slot (each may be None).
+
+        A failed step is a twitch: a weak sound on the slot (``weak_db`` under the steps' usual
+        level) that stands above the noise's own blips (:meth:`_stands_out`), with no step; some
+        circuits then send a stronger correction pulse 15-85 ms later, which steps the rotor (as
+        loud as a step).  A rotor that fell back can also sound like a step: then only a correction
+        pulse tells, a sound louder than any step 15-85 ms after it (the correction pulse is wider
+        than the drive).  A weak sound just before a step (within 15 ms) is part of that step: a
+        lossy codec's pre-echo, a first contact -- not a twitch.
+        """
         cfg = self.cfg
+        # A weak sound this close before a step is part of it (a lossy codec's pre-echo reaches back
+        # a frame, ~13 ms for MP3 at 44.1 kHz; a correction pulse comes later: 25-45 ms in the
+        # adaptive drives we know of; our own margin) (s) ...
+        PRECURSOR_S = 0.015
+        # ... and a correction pulse steps the rotor: its sound is this much louder than the twitch (dB),
+        # or, after a twitch as loud as a step, this much louder than the steps (our own margins)
+        CORRECTION_OVER_TWITCH_DB = 6.0
+        CORRECTION_OVER_STEP_DB = 6.0
         cands = [o for o in in_slot if o.match >= cfg.min_match]
+        typical = self._peaks.median() if len(self._peaks) >= 8 else None
+
+        def weak_sound(o) -> bool:
+            return typical is not None and o.imp.peak_dbfs < typical - cfg.weak_db
+
         step = None
         if cands:
             best = max(o.match for o in cands)
@@ -357,18 +379,21 @@ class StepTracker:
             good = [o for o in good if not any(abs(p.t_s - o.t_s) < 0.002 and (p.imp.peak_dbfs, p.match) >
                                                (o.imp.peak_dbfs, o.match) for p in good)]
             step = min(good, key=lambda o: o.t_s)
-        # A failed step: the rotor only twitches (a weak sound at the slot); some circuits
-        # then send a stronger correction pulse 10-80 ms later.  A hand's bounce on every
-        # step is not this: it follows a step that sounded normal.
+            # a weak sound that a step follows closely is that step's precursor (pre-echo)
+            later = [o for o in good if 0 < o.t_s - step.t_s <= PRECURSOR_S and not weak_sound(o)]
+            if weak_sound(step) and later:
+                step = min(later, key=lambda o: o.t_s)
         failed = correction = None
-        typical = self._peaks.median() if len(self._peaks) >= 8 else None
         # a twitching rotor sounds on the grid (the drive pulse is on time): within twitch_s
         # (our reasoning from how the circuit drives the motor; no published tolerance)
         twitch_s = cfg.twitch_s
-        weak = step is not None and typical is not None and step.imp.peak_dbfs < typical - cfg.weak_db
-        if step is not None and step.t_s - pred > cfg.correction_min_s:
-            early = [o for o in in_slot if o.t_s < step.t_s - 0.005 and abs(o.t_s - pred) <= twitch_s]
-            if early:
+        late_s = max(cfg.correction_min_s, PRECURSOR_S)
+        weak = step is not None and weak_sound(step)
+        if step is not None and step.t_s - pred > late_s:
+            # the step came late: a correction pulse after a twitch on the slot, if there was one
+            early = [o for o in in_slot if o.t_s < step.t_s - late_s and abs(o.t_s - pred) <= twitch_s
+                     and weak_sound(o)]
+            if early and not weak and step.match >= cfg.good_match:
                 failed, correction, step = min(early, key=lambda o: o.t_s), step, None
             elif weak:
                 step = None  # a faint sound off the grid (a quiet room's noise): no step here
@@ -377,18 +402,27 @@ class StepTracker:
                 failed, step = step, None
             else:
                 step = None
+        elif step is not None and typical is not None and abs(step.t_s - pred) <= twitch_s:
+            # a rotor that fell back can sound like a step; the correction pulse that then turns it is
+            # wider than the drive and sounds louder than any step (CORRECTION_OVER_STEP_DB)
+            cors = [o for o in self._open if step.t_s + late_s <= o.t_s <= step.t_s + cfg.correction_max_s
+                    and o.match >= cfg.good_match and o.imp.peak_dbfs >= typical + CORRECTION_OVER_STEP_DB
+                    and step.imp.peak_dbfs < typical + CORRECTION_OVER_STEP_DB / 2]
+            if cors:
+                failed, correction, step = step, min(cors, key=lambda o: o.t_s), None
         if step is None and typical is not None:
             if failed is None:
-                near = [o for o in in_slot if abs(o.t_s - pred) <= twitch_s]
+                near = [o for o in in_slot if abs(o.t_s - pred) <= twitch_s and weak_sound(o)]
                 if near:
                     failed = min(near, key=lambda o: o.t_s)
             if failed is not None and correction is None:
-                cors = [o for o in self._open if failed.t_s + cfg.correction_min_s <= o.t_s <= failed.t_s + cfg.correction_max_s
-                        and o.match >= cfg.good_match and o.imp.peak_dbfs > failed.imp.peak_dbfs + 3]
+                cors = [o for o in self._open if failed.t_s + late_s <= o.t_s <= failed.t_s + cfg.correction_max_s
+                        and o.match >= cfg.good_match and not weak_sound(o)
+                        and o.imp.peak_dbfs >= failed.imp.peak_dbfs + CORRECTION_OVER_TWITCH_DB]
                 if cors:
                     correction = min(cors, key=lambda o: o.t_s)
-            if failed is not None and correction is None and not self._stands_out(failed, pred):
-                failed = None  # as loud as the noise's own blips around it: no evidence of a twitch
+            if failed is not None and not self._stands_out(failed, pred):
+                failed = correction = None  # as loud as the noise's own blips around it: no evidence of a twitch
         return step, failed, correction
 
     def _maybe_regrid(self, now_s: float) -> list[Event]:
@@ -511,22 +545,24 @@ class StepTracker:
         return res.median() if len(res) >= 4 else 0.0
 
     def _stands_out(self, o: OpenImpact, pred: float) -> bool:
-        """Whether a weak sound at a slot stands above the off-grid sounds of the second around it.
+        """Whether a weak sound at a slot stands above the off-grid sounds of the seconds before it.
 
         Where a phone's gain control lifts the noise while the movement is silent, the noise
-        itself starts an impact every few tens of ms; a twitch must be clearly louder than
-        those heard in the second before it (6 dB over their median: our own margin, set from the
-        sweep of simulated phone recordings) to count as a failed step.
+        itself starts an impact every few tens of ms; a twitch must be louder than every one of
+        those heard in the two seconds before it, and 6 dB over their median (our own margin, set
+        from the sweep of simulated phone recordings): with n such sounds, a blip of the same
+        noise would be the loudest by chance once in n + 1.
         (Not those after it: the silence after a failed step lets the gain rise, whatever the
         twitch was.)  With fewer than three such sounds before it (a quiet room, or a gain that
-        had not yet risen) any weak sound on the slot counts.
+        had not yet risen) any weak sound on the slot that sounds like a step counts.
         """
-        lo, hi = pred - 1.0, pred - self.cfg.slot_tolerance_s
+        TWITCH_NOISE_S = 2.0  # the noise's blips a twitch must stand above: those of the seconds before (s)
+        lo, hi = pred - TWITCH_NOISE_S, pred - self.cfg.slot_tolerance_s
         levels = [p for t, p in self._offgrid if lo <= t < hi]  # rejected already
-        levels += [q.imp.peak_dbfs for q in self._open if lo <= q.t_s < hi]  # to be rejected with this slot
+        levels += [q.imp.peak_dbfs for q in self._open if lo <= q.t_s < hi and q is not o]  # to be rejected with this slot
         if len(levels) < 3:
             return True
-        return o.imp.peak_dbfs >= statistics.median(levels) + 6.0
+        return o.imp.peak_dbfs > max(levels) and o.imp.peak_dbfs >= statistics.median(levels) + 6.0
 
     def _in_gap(self, t: float) -> bool:
         return any(a - 0.03 <= t <= b + 0.03 for a, b in self._gaps)

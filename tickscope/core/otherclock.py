@@ -8,6 +8,10 @@ import numpy as np
 from . import dsp
 from ..model import OtherClock
 
+#: the false-alarm probability of the vote for another clock's grid (corrected for every trial
+#: period and phase cell)
+ALPHA = 1e-3
+
 
 def _loudest_after(t: np.ndarray, pk: np.ndarray, first: np.ndarray, span_s: float) -> np.ndarray:
     """For each sound ``first[i]``, the loudest peak among the sounds from it to ``span_s`` later: a
@@ -71,7 +75,7 @@ def other_clock(other_t: np.ndarray, other_peak_dbfs: np.ndarray, step_k: np.nda
     voted = _vote_grid(t - t[0], interval_s, span, nb, len(st))
     if voted is None:
         return None
-    best_p, best_bin = voted
+    best_p, best_bin, p_vote = voted
     tr = t - t[0]
     # the sounds on that grid (the earliest of each tick), and a line through them
     phase = (best_bin + 1.0) / nb * best_p  # the middle of the fullest two bins
@@ -93,7 +97,7 @@ def other_clock(other_t: np.ndarray, other_peak_dbfs: np.ndarray, step_k: np.nda
         return None
     return OtherClock(interval_s=float(b), ticks=int(len(idx)),
                       level_db=float(np.median(_loudest_after(tr, pk, idx, 0.06)) - np.median(spk)),
-                      drift_ms_per_min=float((b - interval_s) / interval_s * 60.0 * 1e3))
+                      drift_ms_per_min=float((b - interval_s) / interval_s * 60.0 * 1e3), p_value=p_vote)
 
 
 def _untied(t: np.ndarray, a0: float, interval_s: float, nb: int, n_steps: int) -> np.ndarray:
@@ -105,7 +109,15 @@ def _untied(t: np.ndarray, a0: float, interval_s: float, nb: int, n_steps: int) 
     return ~crowded[delay_bin]
 
 
-def _vote_grid(tr: np.ndarray, interval_s: float, span: float, nb: int, n_steps: int) -> tuple[float, int] | None:
+def vote_p_value(count: int, lam: float, cells: int) -> float:
+    """The chance that the fullest of ``cells`` cells holds ``count`` sounds or more when each holds
+    a Poisson number with mean ``lam`` (a union bound: cells times the one cell's tail)."""
+    from scipy.special import pdtrc
+
+    return float(min(1.0, cells * pdtrc(count - 1, lam)))
+
+
+def _vote_grid(tr: np.ndarray, interval_s: float, span: float, nb: int, n_steps: int) -> tuple[float, int, float] | None:
     """The trial period and 5 ms phase bin holding the most sounds (times ``tr`` from the first),
     when that count stands far above chance; else None.
 
@@ -127,11 +139,15 @@ def _vote_grid(tr: np.ndarray, interval_s: float, span: float, nb: int, n_steps:
         if pair[i, j] > best_n:
             best_n, best_p, best_bin = int(pair[i, j]), float(chunk[i]), int(j)
     # the fullest cell must stand far above what the same number of sounds at random phases
-    # would put in the fullest of this many cells (Poisson mean lam; 6 sigma and 3 more: our margin)
+    # would put in the fullest of this many cells (Poisson mean lam; 6 sigma and 3 more: our margin),
+    # and its chance, times the cells tried (Bonferroni), fall below ALPHA
     lam = len(tr) * 2.0 / nb
     if best_p is None or best_n < max(10, 0.3 * n_steps, lam + 6.0 * math.sqrt(lam) + 3.0):
         return None
-    return best_p, best_bin
+    p = vote_p_value(best_n, lam, len(trials) * nb)
+    if p >= ALPHA:
+        return None
+    return best_p, best_bin, p
 
 
 def _tight_line(n: np.ndarray, tr: np.ndarray, idx: np.ndarray, need: float):
