@@ -251,7 +251,7 @@ def _env(confdir):
 
 def test_loopback_calibration_covers_the_sinks_own_pacing(loopback, confdir):
     # The sink paced by the host clock reads fast, not 0: with the default latency its chunk of 416
-    # frames (8666.67 us) advances its clock by 8666 us, +76.92 ppm.  A profile named like the device
+    # frames (8666.67 us) advances its clock by 8666 us, +76.93 ppm.  A profile named like the device
     # is then right for that setup, and the interval must hold that figure.
     for _attempt in range(3):
         with _Watch() as w:
@@ -266,9 +266,11 @@ def test_loopback_calibration_covers_the_sinks_own_pacing(loopback, confdir):
     assert r.returncode in (0, 3), r.stderr
     d = json.loads(r.stdout)
     truth = _sink_pacing_ppm(conf)
-    assert abs(d["ppm"] - truth) <= d["u95_ppm"], (d["ppm"], d["u95_ppm"], conf, truth)
+    # a 95 % interval misses one run in twenty by design (CI saw 6.47 off for +-6.03): the test asks for
+    # 1.5 times it (2.9 sigma, missed about once in 270 runs of a Gaussian error)
+    assert abs(d["ppm"] - truth) <= 1.5 * d["u95_ppm"], (d["ppm"], d["u95_ppm"], conf, truth)
     if conf == 8687:  # PortAudio's default 'high' latency here
-        assert truth == pytest.approx(76.92, abs=0.01)
+        assert truth == pytest.approx(76.929, abs=0.001)
 
 
 def test_listen_capture_is_not_taken_for_a_calibration(loopback, confdir):
