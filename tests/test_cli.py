@@ -57,7 +57,7 @@ def test_steps_csv(rec, tmp_path, capsys):
     p = tmp_path / "steps.csv"
     code, _, _ = run(["analyze", rec, "--json", "--steps-csv", str(p)], capsys)
     rows = list(csv.DictReader(open(p)))
-    assert list(rows[0].keys()) == ["index", "step", "time_s", "polarity", "interval_s", "peak_dbfs", "decay_ms", "flags"]
+    assert list(rows[0].keys()) == ["index", "step", "time_s", "polarity", "interval_s", "peak_dbfs", "decay_ms", "flags", "lift_ms"]
     steps = [r for r in rows if r["polarity"]]
     assert len(steps) == 39
     assert all(len(r["time_s"].split(".")[1]) >= 9 for r in steps)

@@ -84,7 +84,7 @@ def test_dashboard_renders(size):
 
 
 def test_dashboard_for_beats_that_are_not_steps():
-    # the live screen says what the report says: beats, no missed steps, no rate
+    # the live screen says what the report says: beats of an escapement, no missed steps
     from rich.console import Console
 
     from conftest import analyze_scenario
@@ -92,13 +92,15 @@ def test_dashboard_for_beats_that_are_not_steps():
 
     s, *_ = analyze_scenario(Scenario(duration_s=30, snr_db=35, seed=1, jitter_us=1000, rattle_impacts=6,
                                       variation_freq_pct=15, variation_db=4))
-    assert s.sound == "not-stepping"
+    assert s.sound == "escapement"
     buf = io.StringIO()
     Console(file=buf, width=80, height=24, color_system=None).print(
         render_live(s, LiveStatus("pulse", 48000, 0, 30.0, -18.0, 0, None), width=80))
     text = buf.getvalue()
-    assert "not a quartz stepping pattern" in text and f"beats {summary_to_dict(s)['beats']['heard']}" in text
-    assert "missed" not in text and "s/day" not in text
+    assert "escapement · 3600 beats/h" in text and f"beats {summary_to_dict(s)['beats']['heard']}" in text
+    # an escapement's beats, timed as such: a rate with its interval, no missed steps, no quartz
+    # motor's ring-down or logic regulation
+    assert "missed" not in text and "regulation" not in text and "ring-down" not in text and "± " in text
 
 
 def test_logging_screen_adds_hourly_rates_and_still_fits(tmp_path):

@@ -92,7 +92,7 @@ def test_log_and_report_a_drifting_movement(bench_recording, tmp_path):
         assert os.path.getsize(os.path.join(out, name)) > 1000
     assert open(os.path.join(out, "rate.png"), "rb").read(8) == b"\x89PNG\r\n\x1a\n"
     rows = open(csv_path).read().splitlines()
-    assert rows[0] == "index,step,time_s,polarity,interval_s,peak_dbfs,decay_ms,flags"
+    assert rows[0] == "index,step,time_s,polarity,interval_s,peak_dbfs,decay_ms,flags,lift_ms"
     assert sum(1 for r_ in rows[1:] if r_.split(",")[3] in ("A", "B")) == len(tt)
     # the rich report renders without error and names the verdict
     r = _cli("report", db)
@@ -473,9 +473,10 @@ def test_polarity_names_hold_across_a_restart(tmp_path):
 
 
 def test_log_of_an_escapement_holds_beats_not_steps(tmp_path):
-    # a mechanical escapement (5 beats a second, tick and tock 4 ms apart) logged by mistake: the log
-    # used to end with "1497 steps, 2 missed" and the report with "step every 0 s"; analyze calls
-    # such a sound not a stepping motor, and so must the log and its report
+    # a mechanical escapement (5 beats a second, tick and tock 4 ms apart): the log used to end with
+    # "1497 steps, 2 missed" and the report with "step every 0 s"; analyze times such a sound as an
+    # escapement's beats, and so must the log and its report (rate against 18000 per hour, the beat
+    # asymmetry hour by hour)
     wav = str(tmp_path / "escapement.wav")
     write_simulation(wav, Scenario(samplerate_hz=8000, duration_s=120, step_interval_s=0.2,
                                    polarity_asymmetry_us=2000, snr_db=30, movement="wristwatch", seed=2))
@@ -483,14 +484,23 @@ def test_log_of_an_escapement_holds_beats_not_steps(tmp_path):
     r = _cli("log", db, "--source", wav, "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
-    assert d["sound"] == "not-stepping" and d["beat_interval_s"] == pytest.approx(0.2, rel=1e-3)
+    assert d["sound"] == "escapement" and d["beat_interval_s"] == pytest.approx(0.2, rel=1e-3)
+    # timed as an escapement: 18000 beats per hour, B beats 2 ms late (an asymmetry of 4 ms)
+    assert d["escapement"]["beats_per_hour"] == 18000
+    assert abs(abs(d["escapement"]["beat_asymmetry_ms"]) - 4.0) <= d["escapement"]["beat_asymmetry_ci95_ms"] + 0.05
     r = _cli("report", db, "--json")
     assert r.returncode == 0, r.stderr
     rep = json.loads(r.stdout)
-    assert rep["rate_s_per_day"] is None and rep["steps_detected"] == 0 and rep["missed_steps"] == 0
-    assert any("beats, not quartz steps" in n for n in rep["notes"])
+    assert rep["step_interval_s"] == pytest.approx(0.2) and rep["missed_steps"] <= 2
+    assert rep["steps_detected"] >= 595  # 600 beats in 120 s
+    # the simulated movement keeps exact time: rate 0 within its interval, as analyze measures it
+    assert abs(rep["rate_s_per_day"]) <= rep["rate_ci95_s_per_day"] + 0.05
+    h = rep["hourly"][0]
+    assert abs(abs(h["beat_asymmetry_ms"]) - 4.0) <= h["beat_asymmetry_ci95_ms"] + 0.05
+    assert any(n.startswith("the log holds an escapement's beats, 18000 per hour") for n in rep["notes"])
     r = _cli("report", db)
-    assert "step every 0 s" not in r.stdout and "beats, not quartz steps" in " ".join(r.stdout.split())
+    assert "step every 0 s" not in r.stdout and "an escapement's beats" in " ".join(r.stdout.split())
+    assert "at the end of segment 1: the escapement" in " ".join(r.stdout.split())
 
 
 def test_report_of_a_lossy_replay_fits_within_the_codecs_shifts(tmp_path):

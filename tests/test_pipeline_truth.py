@@ -109,9 +109,14 @@ def test_escapement_is_not_claimed_as_quartz():
     sc = Scenario(duration_s=30, step_interval_s=0.2, polarity_asymmetry_us=2000, snr_db=30,
                   movement="wristwatch", seed=2)
     s, _, _, _ = analyze_scenario(sc)
-    assert s.sound == "not-stepping"
-    assert s.rate is None
+    assert s.sound == "escapement" and s.diagnosis is None and s.missed_steps == 0
     assert s.measured_interval_s == pytest.approx(0.2, rel=0.01)
+    # timed as an escapement: 18000 beats per hour (a usual value), rate 0, and the B beats 2 ms
+    # late make tick->tock 2 ms long and tock->tick 2 ms short: an asymmetry of 4 ms either way
+    e = summary_to_dict(s)["escapement"]
+    assert e["beats_per_hour"] == 18000 and e["nominal_source"] == "series"
+    assert abs(e["rate_s_per_day"]) <= e["rate_ci95_s_per_day"] + 0.05
+    assert abs(abs(e["beat_asymmetry_ms"]) - 4.0) <= max(e["beat_asymmetry_ci95_ms"], 0.05)
 
 
 def test_busy_fast_steps_with_a_bounce_are_all_found():
@@ -127,7 +132,11 @@ def test_dense_tick_tock_is_heard_and_its_beat_reported():
     # each beat ringing: the same detector limit heard only 6 of its 34 beats
     sc = Scenario(duration_s=8, step_interval_s=0.22, polarity_asymmetry_us=10000, snr_db=35, seed=1)
     s, _, _, _ = analyze_scenario(sc)
-    assert s.sound == "not-stepping" and s.rate is None
+    assert s.sound == "escapement" and s.missed_steps == 0
+    # 16364 beats per hour is no usual value: the rate is against the nearest, and the report says so
+    assert summary_to_dict(s)["escapement"]["nominal_source"] == "nearest"
+    assert any(line.startswith("the rate is against the nearest usual beat") and "--beats-per-hour" in line
+               for line in s.reading)
     assert summary_to_dict(s)["beats"]["heard"] >= 33
     assert s.measured_interval_s == pytest.approx(0.22, rel=0.002)
     # A->B minus B->A: (0.22 + 0.01) - (0.22 - 0.01) = +20 ms
@@ -141,12 +150,13 @@ def test_beats_that_do_not_repeat_are_not_claimed_as_quartz():
     sc = Scenario(duration_s=30, snr_db=35, seed=1, jitter_us=1000, rattle_impacts=6,
                   variation_freq_pct=15, variation_db=4)
     s, _, _, _ = analyze_scenario(sc)
-    assert s.sound == "not-stepping" and s.rate is None
+    # (timed as an escapement's beats, whose sounds vary from beat to beat: never as quartz steps)
+    assert s.sound == "escapement" and s.diagnosis is None and s.missed_steps == 0
     b = summary_to_dict(s)["beats"]
     assert b["heard"] >= 28 and b["like_first"] < 0.5 * b["heard"]
     assert "failed_steps" not in summary_to_dict(s)
     assert s.measured_interval_s == pytest.approx(1.0, rel=0.01)
-    assert any("sound like the first ones" in w for w in s.warnings)
+    assert any(w.startswith("the beats are a mechanical escapement's") for w in s.warnings)
 
 
 def test_a_quartz_step_followed_by_a_rattle_is_still_timed():

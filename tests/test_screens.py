@@ -174,11 +174,14 @@ def test_report_plots_of_a_one_minute_log_read_in_seconds_and_stay_inside_the_lo
 
 
 def test_report_of_a_log_without_steps_draws_none_and_does_not_wait_for_the_hour(tmp_path, monkeypatch):
-    # an escapement logged by mistake: its report drew the whole timeline with the step glyph and
-    # said "the first hour is still filling" of a log that had ended
-    wav = str(tmp_path / "escapement.wav")
-    write_simulation(wav, Scenario(samplerate_hz=8000, duration_s=40, step_interval_s=0.2,
-                                   polarity_asymmetry_us=2000, snr_db=30, movement="wristwatch", seed=2))
+    # a log with no steps (once: an escapement logged before escapements were timed; now: a room's
+    # noise): its report drew the whole timeline with the step glyph and said "the first hour is
+    # still filling" of a log that had ended
+    import numpy as np
+    import soundfile as sf
+
+    wav = str(tmp_path / "room.wav")
+    sf.write(wav, np.random.default_rng(2).normal(0, 0.01, 8000 * 40).astype(np.float32), 8000)
     db = str(tmp_path / "esc.db")
     main(["log", db, "--source", wav, "--quiet"])
     text = _report(db, monkeypatch)

@@ -7,6 +7,8 @@ without the CLI.  Pure: figures in, strings out.
 """
 from __future__ import annotations
 
+import math
+
 from .core.diagnose import ASYMMETRY_REFERENCE_MAX_US
 from .units import ppm_to_s_per_day
 
@@ -70,15 +72,28 @@ def sound_reason(kind: str, cause: str, *, duration_s: float, beat_interval_s: f
                     "(it takes several steps in a row): record at least 30 s")
         return ("no stepping-motor pattern was heard: move the microphone onto the case or closer "
                 "to the movement, quiet the room, and record at least 30 s")
-    if kind != "not-stepping":
+    if kind == "escapement":
+        why = {"given": "as --movement escapement says",
+               "beat-rate": f"its beat of {beat_interval_s:.4f} s is no quartz motor's interval",
+               "tick-tock": "" if alternation_us is None else
+               f"alternate beats differ by {alternation_us / 1000:.2f} ms, as an escapement's tick and tock do",
+               "scatter": "" if scatter_s is None else
+               f"its beats scatter by {scatter_s * 1000:.2f} ms (SD) about their line, as no quartz motor's steps do",
+               "lift": "each beat holds an unlocking and a drop a balance's lift apart",
+               "unlike": f"only {slots_matched} of {slots_heard} beats sound like the first ones"
+               + ("" if scatter_s is None else f", and they scatter by {scatter_s * 1000:.1f} ms (SD) about the grid")
+               + ", as no quartz motor's steps do"}.get(cause, "")
+        return (f"the beats are a mechanical escapement's{': ' + why if why else ''}; they are timed as one "
+                "(pass --movement quartz if it is a quartz movement)")
+    if kind not in ("not-ticking", "not-stepping"):
         return None
     if cause == "unlike":
         how = (f"; only {slots_matched} of {slots_heard} beats sound like the first ones"
                + ("" if scatter_s is None else f", and they scatter by {scatter_s * 1000:.1f} ms (SD) about the grid"))
     else:
         how = "" if alternation_us is None else f", alternate beats differ by {alternation_us / 1000:.2f} ms"
-    return (f"the sound is not a quartz stepping-motor pattern (beat interval heard {beat_interval_s:.4f} s{how}): "
-            "no rate is claimed for it")
+    return (f"the sound is neither a quartz stepping-motor pattern nor an escapement's beat (beat interval heard "
+            f"{beat_interval_s:.4f} s{how}): no rate is claimed for it")
 
 
 # -- notes on a summary ----------------------------------------------------------------------------
@@ -91,12 +106,13 @@ def notes(s, *, calibrated: bool, codec_shifts: tuple[int, float] | None, traili
     out: list[str] = []
     if s.sound_reason:
         out.append(s.sound_reason)
-    out += _ringdown_notes(s.ringdown)
+    if s.sound != "escapement":  # an escapement's beats ring as its case does: no motor's ring-down
+        out += _ringdown_notes(s.ringdown)
     rate, dg = s.rate, s.diagnosis
     if not calibrated and rate is not None:
         out.append(f"the rate is on the audio device's own, uncalibrated time base; such clocks are "
-                   f"commonly off by tens of ppm (+-{TYPICAL_DEVICE_PPM:.0f} ppm = "
-                   f"+-{ppm_to_s_per_day(TYPICAL_DEVICE_PPM):.1f} s/day): calibrate and pass --clock-ppm")
+                   f"commonly off by tens of ppm (±{TYPICAL_DEVICE_PPM:.0f} ppm = "
+                   f"±{ppm_to_s_per_day(TYPICAL_DEVICE_PPM):.1f} s/day): calibrate and pass --clock-ppm")
     if rate is not None and codec_shifts is not None and not (dg and dg.inhibition):
         n, largest_us = codec_shifts
         out.append(f"the lossy codec shifted the step times abruptly {n} time{'s' if n > 1 else ''} (by up to "
@@ -140,9 +156,12 @@ def _ringdown_notes(ringdown: dict) -> list[str]:
     out = []
     for v in ringdown.values():
         # a decay that bends on many steps and varies widely from step to step: the room, not the motor
-        if v.n >= 8 and v.n_bent > v.n / 3 and v.decay_ms_iqr > 0.5 * v.decay_ms_median:
+        # (or bends on most steps and in their coherent average as well)
+        wide = v.decay_ms_iqr > 0.5 * v.decay_ms_median
+        if v.n >= 8 and v.n_bent > v.n / 3 and (wide or (v.average_bent and v.n_bent > v.n / 2)):
+            how = "varies widely" if wide else "so does the average of its steps"
             out.append(f"the ring-down of polarity {v.polarity} bends away from one exponential on {v.n_bent} of "
-                       f"{v.n} steps and varies widely (median {v.decay_ms_median:.1f} ms, IQR "
+                       f"{v.n} steps and {how} (median {v.decay_ms_median:.1f} ms, IQR "
                        f"{v.decay_ms_iqr:.1f} ms): the room's reverberation or noise shapes it as much as the "
                        "movement does, so these decay times describe the recording more than the motor; for "
                        "ring-down figures put the microphone on the case in a quiet room")
@@ -199,8 +218,10 @@ def reading(dg, *, missed_step_times_s: tuple[float, ...] = ()) -> tuple[str, ..
     out = []
     inh = dg.inhibition
     if inh is not None:
-        out.append(f"logic regulation: every {inh.period_s:g} s one step comes {inh.correction_us:.1f} µs late "
-                   f"(≈ {inh.pulses_32768:.1f} pulses of 32768 Hz); the crystal alone "
+        out.append(f"logic regulation: every {inh.period_s:g} s one step comes {inh.correction_us:.1f} ± "
+                   f"{inh.correction_ci95_us:.1f} µs late (≈ {inh.pulses_32768:.1f} pulses of 32768 Hz; "
+                   f"{_chance(inh.p_value)} that the noise alone lines up so, over the {inh.hypotheses} periods "
+                   f"and phases tried); the crystal alone "
                    f"{'gains' if inh.crystal_rate_s_per_day >= 0 else 'loses'} {abs(inh.crystal_rate_s_per_day):.2f} s/day, "
                    f"regulated {inh.regulated_rate_s_per_day:+.3f} s/day over {inh.periods_observed} whole periods")
     b = dg.bursts
@@ -272,4 +293,98 @@ def reading(dg, *, missed_step_times_s: tuple[float, ...] = ()) -> tuple[str, ..
         out.append(f"the two coil polarities step unevenly (A→B minus B→A {pa.value_us:+.0f} ± {pa.ci95_us:.0f} µs): "
                    "the rotor may sit off-centre in its detent, or one polarity drives weaker (common "
                    "practice, no source)")
+    return tuple(out)
+
+
+# -- an escapement's reading -----------------------------------------------------------------------
+#: A watch's beat asymmetry: within 0.5 ms good, 1 ms acceptable (domain notes 10.4; common practice,
+#: from memory).  A pendulum clock is called out of beat past 3 % of its beat (our own figure: the
+#: uneven tick-tock the trade listens for is heard by ear from a few per cent).
+BEAT_ASYMMETRY_GOOD_MS = 0.5
+BEAT_ASYMMETRY_ACCEPTABLE_MS = 1.0
+PENDULUM_OUT_OF_BEAT_PERCENT = 3.0
+#: A beat asymmetry is called out of beat only past its tolerance and beyond its noise at 1 %
+#: (two-sided z = 2.576 from its 95 % half-width / 1.96): the false alarm of that statement.
+OUT_OF_BEAT_Z = 2.576
+#: Balance amplitudes (domain notes 10.3; common practice, from memory): below 200 degrees needs
+#: attention; from 330 the impulse pin may knock on the banking.
+AMPLITUDE_LOW_DEG = 200.0
+AMPLITUDE_HIGH_DEG = 330.0
+
+_NO_AMPLITUDE = {
+    "pendulum": "a pendulum's arc cannot be told from the sound of its beats: no amplitude",
+    "one-sound": "each beat is heard as one sound (its unlocking and drop not apart): no amplitude; a microphone "
+                 "on the case, in a quiet room, helps",
+    "few-lifts": "too few beats had their unlocking and drop both heard: no amplitude; record longer, closer",
+    "sides-differ": "the two sides' lift times differ by more than a fifth: the sounds taken for unlocking and "
+                    "drop are not the same on both sides, so no amplitude is claimed",
+    "short-window": "no lift times: the beats were heard with a quartz step's short window; say --movement "
+                    "escapement to hear each beat's unlocking too (analyze does this itself for a file)",
+    "implausible": "the lift time gives no balance's swing at this lift angle: the sounds taken for unlocking and "
+                   "drop are not those, so no amplitude is claimed",
+}
+
+
+def escapement_reading(e) -> tuple[str, ...]:
+    """Plain-words statements from an :class:`~tickscope.model.EscapementFigures`, each with its figure."""
+    out = []
+    r = e.rate
+    src = {"given": "as given", "series": "the usual value nearest the beat heard",
+           "nearest": "nearest the beat heard, which is off every usual value"}.get(e.nominal_source, e.nominal_source)
+    if r is not None:
+        out.append(f"the escapement {'gains' if r.rate_s_per_day >= 0 else 'loses'} {abs(r.rate_s_per_day):.1f} "
+                   f"± {r.ci95_s_per_day:.1f} s/day against {e.beats_per_hour:.0f} beats per hour ({src}; "
+                   f"heard {e.beats_per_hour_heard:.1f})")
+    if e.nominal_source == "nearest":
+        out.append(f"the rate is against the nearest usual beat, {e.beats_per_hour:.0f} per hour, which the beat "
+                   f"heard ({e.beats_per_hour_heard:.1f}) is {e.off_series_percent:+.2f} % off: it says more about "
+                   "that guess than about the movement; give the movement's own with --beats-per-hour (from its "
+                   "train's wheel counts)")
+    a, ci = e.beat_asymmetry_ms, e.beat_asymmetry_ci95_ms
+    if a is not None and ci is not None:
+        z = abs(a) / (ci / 1.96) if ci > 0 else math.inf
+        pct = e.beat_asymmetry_percent or 0.0
+        past = abs(pct) > PENDULUM_OUT_OF_BEAT_PERCENT if not e.balance else abs(a) > BEAT_ASYMMETRY_ACCEPTABLE_MS
+        fig = f"beat asymmetry {abs(a):.2f} ± {ci:.2f} ms ({abs(pct):.1f} % of the beat)"
+        if z < OUT_OF_BEAT_Z:
+            out.append(f"{fig}: no asymmetry beyond the timing noise")
+        elif past:
+            what = ("set it in beat (the crutch or a beat adjuster, toward the side of the longer interval; which "
+                    "side that is cannot be told from the sound)") if not e.balance else \
+                ("past the 1 ms usually accepted: the balance's rest point is off the escapement's centre")
+            out.append(f"out of beat: {fig}; {what}")
+        elif e.balance and abs(a) <= BEAT_ASYMMETRY_GOOD_MS:
+            out.append(f"{fig}: in beat (within the 0.5 ms counted good)")
+        else:
+            out.append(f"{fig}: within what is usually accepted")
+    if a is None:
+        out.append("no beat asymmetry: fewer than 6 pairs of consecutive beats that match their side's sound well")
+    if e.amplitude_deg is not None:
+        lift = [v for v in e.lift_time_ms if v is not None]
+        la = (f"the given lift angle of {e.lift_angle_deg:g}°" if e.lift_angle_given else
+              f"a lift angle of {e.lift_angle_deg:g}° assumed (give the movement's own with --lift-angle: "
+              "the amplitude scales with it)")
+        health = ""
+        if e.amplitude_deg < AMPLITUDE_LOW_DEG:
+            health = ": low, the movement needs attention (mainspring, lubrication, wear)"
+        elif e.amplitude_deg >= AMPLITUDE_HIGH_DEG:
+            health = ": high, the impulse pin may knock on the banking"
+        out.append(f"balance amplitude {e.amplitude_deg:.0f} ± {e.amplitude_ci95_deg:.0f}° from a lift time of "
+                   f"{sum(lift) / len(lift):.2f} ms at {la}{health}")
+    elif e.amplitude_reason in _NO_AMPLITUDE:
+        out.append(_NO_AMPLITUDE[e.amplitude_reason])
+    k = e.knocking
+    if k is not None:
+        out.append(f"knocking: a sound {k.delay_ms:.0f} ms after the beat in {k.beats} of {k.of_beats} beats "
+                   f"({_chance(k.p_value)} that other sounds line up so): the impulse pin striking the outside "
+                   "of the fork horn, an amplitude past the banking")
+    w = e.wheel
+    if w is not None:
+        out.append(f"the beat times repeat every {w.period_beats} beats ({w.amplitude_us:.0f} µs RMS; "
+                   f"{_chance(w.p_value)} by noise): look at the escape wheel and its pinion (a bent tooth, out of true)")
+    for st in e.stops:
+        if st.restarted and st.for_s is not None:
+            out.append(f"the beats stopped at {st.at_s:.1f} s for {st.for_s:.1f} s and started again")
+        else:
+            out.append(f"the beats stopped at {st.at_s:.1f} s and did not start again")
     return tuple(out)

@@ -33,7 +33,18 @@ def _parents() -> dict[str, argparse.ArgumentParser]:
     device = parent()
     device.add_argument("--device", default=None, help="input device index or part of its name (default: the default input)")
     device.add_argument("--rate-hz", dest="samplerate", type=int, default=48000, help="sample rate to ask the device for, Hz (default 48000)")
-    return {"json": json_, "quiet": quiet, "clock": clock, "device": device}
+    movement = parent()
+    mv = movement.add_argument_group("the movement")
+    mv.add_argument("--movement", choices=("auto", "quartz", "escapement"), default="auto",
+                    help="what ticks: a quartz stepping motor, a mechanical escapement (lever or pendulum), or auto "
+                         "(the sound decides; default)")
+    mv.add_argument("--beats-per-hour", type=float, default=None, metavar="N",
+                    help="an escapement's nominal beats per hour, e.g. 28800 (default: the usual value nearest the "
+                         "beat heard, said in the report)")
+    mv.add_argument("--lift-angle", dest="lift_angle_deg", type=float, default=None, metavar="DEG",
+                    help="a lever escapement's lift angle in degrees, from the movement's data "
+                         "(default 52, said in the report); the amplitude depends on it")
+    return {"json": json_, "quiet": quiet, "clock": clock, "device": device, "movement": movement}
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -43,7 +54,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     par = _parents()
 
-    a = sub.add_parser("analyze", parents=[par["clock"], par["json"], par["quiet"]],
+    a = sub.add_parser("analyze", parents=[par["clock"], par["movement"], par["json"], par["quiet"]],
                        help="analyze a saved recording (default: the bundled demo recording)",
                        description="Find every step in a recording, fit the daily rate with a 95 % interval, "
                        "count missed steps and measure each step's ring-down.")
@@ -57,7 +68,7 @@ def build_parser() -> argparse.ArgumentParser:
                        description="List the audio input devices PortAudio can use: index, name, host API, default "
                        "sample rate, channels; * marks the default.")
 
-    li = sub.add_parser("listen", parents=[par["device"], par["clock"], par["json"]],
+    li = sub.add_parser("listen", parents=[par["device"], par["clock"], par["movement"], par["json"]],
                         help="listen to a movement through a microphone, with a live screen",
                         description="Capture from a microphone and analyze as the steps arrive: the same analysis as "
                         "`analyze`, shown live; Ctrl-C ends with the final report.")
@@ -82,7 +93,7 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--list", action="store_true", help="list the saved profiles")
     c.add_argument("--max-age-days", type=float, default=90.0, help="profiles older than this are flagged stale")
 
-    lg = sub.add_parser("log", parents=[par["device"], par["clock"], par["json"], par["quiet"]],
+    lg = sub.add_parser("log", parents=[par["device"], par["clock"], par["movement"], par["json"], par["quiet"]],
                         help="log a movement's steps for hours or days into a database (crash-safe)",
                         description="Log every step of a movement into an SQLite database, committed every few "
                                     "seconds. Running it again on the same database resumes the log as a new "

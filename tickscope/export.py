@@ -7,7 +7,8 @@ import math
 from .model import KIND_CODES, Diagnosis, Event, Summary, flag_names
 from .units import s_per_day_to_ppm
 
-CSV_HEADER = ["index", "step", "time_s", "polarity", "interval_s", "peak_dbfs", "decay_ms", "flags"]
+#: lift_ms: an escapement's beat, from its first sound to its drop (empty where not resolved)
+CSV_HEADER = ["index", "step", "time_s", "polarity", "interval_s", "peak_dbfs", "decay_ms", "flags", "lift_ms"]
 
 
 def _num(v, digits: int | None = None):
@@ -46,7 +47,10 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
         "steps_in_fit": r.n_steps if r else 0,
         "outliers": r.n_outliers if r else 0,
         "ringdown": {p: {"decay_ms_median": _num(v.decay_ms_median, 4), "decay_ms_iqr": _num(v.decay_ms_iqr, 4),
-                         "steps": v.n, "abnormal": v.n_abnormal, "bent": v.n_bent} for p, v in s.ringdown.items()},
+                         "steps": v.n, "abnormal": v.n_abnormal, "bent": v.n_bent,
+                         "decay_ms_averaged": _num(v.decay_ms, 4), "decay_ms_averaged_ci95": _num(v.decay_ms_ci95, 4),
+                         "steps_averaged": v.n_averaged, "averaged_bent": v.average_bent}
+                     for p, v in s.ringdown.items()},
         "signal": {"step_snr_db": _num(s.step_snr_db, 2), "clipped_steps": s.clipped_steps,
                    "hum_hz": _num(s.hum_hz), "hum_db": _num(s.hum_db, 1), "dc_offset": _num(s.dc_offset, 5),
                    "peak_dbfs": _num(s.peak_dbfs, 2)},
@@ -55,6 +59,8 @@ def summary_to_dict(s: Summary, *, source: str | None = None) -> dict:
     if s.diagnosis is not None:
         d.update(diagnosis_to_dict(s.diagnosis))
     d["diagnosis"] = list(s.reading)
+    if s.escapement is not None:
+        d["escapement"] = escapement_to_dict(s.escapement)
     if s.beats is not None:
         b = s.beats
         d["beats"] = {"heard": b.heard, "like_first": b.like_first, "scatter_ms": b.scatter_ms,
@@ -110,7 +116,8 @@ def diagnosis_to_dict(dg: Diagnosis) -> dict:
             "correction_ci95_us": _num(inh.correction_ci95_us, 2), "pulses_32768": _num(inh.pulses_32768, 2),
             "pulses_8192": _num(inh.pulses_8192, 2), "crystal_rate_s_per_day": _num(inh.crystal_rate_s_per_day, 4),
             "regulated_rate_s_per_day": _num(inh.regulated_rate_s_per_day, 5),
-            "periods_observed": inh.periods_observed},
+            "periods_observed": inh.periods_observed, "p_value": _p(inh.p_value),
+            "hypotheses": inh.hypotheses},
         "rate_provisional": dg.rate_provisional,
         "rate_ci95_statistical_s_per_day": _num(dg.rate_ci95_statistical_s_per_day, 6),
         "pattern": "burst" if b else "regular",
@@ -173,6 +180,7 @@ class StepsCsv:
             "" if not math.isfinite(ev.peak_dbfs) else f"{ev.peak_dbfs:.2f}",
             "" if not math.isfinite(ev.decay_ms) else f"{ev.decay_ms:.3f}",
             ";".join(ev.flags),
+            "" if not math.isfinite(ev.lift_ms) else f"{ev.lift_ms:.4f}",
         ])
         self._i += 1
 
@@ -261,6 +269,6 @@ def write_log_csv(fh, T, K, ev: dict, P=None) -> int:
         pol = int(P[i])
         w.writerow([n, "" if k < 0 else k, f"{T[i]:.9f}", ("A" if pol == 0 else "B") if kind == "step" and pol >= 0 else "",
                     interval, "" if not math.isfinite(pk) else f"{pk:.2f}", "" if not math.isfinite(dc) else f"{dc:.3f}",
-                    ";".join(flags)])
+                    ";".join(flags), ""])  # the log keeps no lift times
         n += 1
     return n

@@ -24,7 +24,7 @@ from .core.regulation import unseen_correction_ci95_s_per_day
 from .errors import StoreError
 from .io.clips import ClipKeeper
 from .io.store import BLOCK_WINDOW_S, LogStore
-from .model import Block, Event
+from .model import BEAT_SOUNDS, Block, Event
 from .pipeline import LOUD_REJECT_DB
 
 COMMIT_EVERY_S = 2.0  # wall seconds between commits (at most this much is lost to a crash)
@@ -351,7 +351,12 @@ class LogSession:
             # stepping motor (an escapement, a rattle) holds beats, not steps, and its report says so
             self.sound = {"sound": summary.sound, "beat_interval_s": summary.measured_interval_s,
                           "beats": summary.beats.heard if summary.beats is not None else None,
-                          "why": summary.sound_reason if summary.sound == "not-stepping" else None}
+                          "why": summary.sound_reason if summary.sound in BEAT_SOUNDS else None}
+            if summary.escapement is not None:  # from the beats the analyzer still holds (its history)
+                from .export import escapement_to_dict
+
+                self.sound["escapement"] = escapement_to_dict(summary.escapement)
+                self.sound["reading"] = list(summary.reading)
             self.store.set_meta(f"segment {self.seg} sound", json.dumps(self.sound))
             self.sound_reason = summary.sound_reason or ""
         if self._win is not None:

@@ -73,6 +73,7 @@ class Event:
     match: float = float("nan")  # correlation with the polarity's template (0..1)
     decay_ms: float = float("nan")
     flags: tuple[str, ...] = ()
+    lift_ms: float = float("nan")  # an escapement's beat: from its first sound to its drop (nan: not resolved)
 
 
 @dataclass(frozen=True)
@@ -101,6 +102,12 @@ class RingDownStats:
     decay_ms_iqr: float
     n_abnormal: int
     n_bent: int = 0  # steps whose decay curve bends away from one exponential (reverberation, noise)
+    # the coherent average of the polarity's steps (aligned by their sub-sample times)
+    decay_ms: float = float("nan")  # its decay time tau (nan: too few steps, or not measurable)
+    decay_ms_ci95: float = float("nan")  # half-width of tau's 95 % interval (jackknife over groups of steps)
+    n_averaged: int = 0  # steps in the average
+    average_bent: bool = False  # the average's decay curve bends away from one exponential
+    average_range_db: float = 0.0  # dB of the average's decay curve the fit spans
 
 
 @dataclass(frozen=True)
@@ -121,6 +128,7 @@ class StepArrays:
     snr_db: np.ndarray
     peak_dbfs: np.ndarray
     flags: np.ndarray
+    lift_ms: np.ndarray  # an escapement's lift time per beat (nan where not resolved)
     missed_k: np.ndarray
     missed_t_s: np.ndarray
     failed_k: np.ndarray
@@ -245,6 +253,75 @@ class BeatStats:
 
 
 @dataclass(frozen=True)
+class Knocking:
+    """A sound late in the swing, beat after beat, at one delay: the impulse pin striking the
+    outside of the fork's horn (an amplitude past the banking)."""
+
+    beats: int  # beats with a sound at that delay
+    of_beats: int  # beats looked at
+    delay_ms: float  # from the beat's first sound
+    p_value: float  # chance of as many sounds at one delay among the sounds heard off the beats
+
+
+@dataclass(frozen=True)
+class WheelPattern:
+    """Beat times that repeat with the escape wheel's turn (every 2 x teeth beats)."""
+
+    period_beats: int
+    amplitude_us: float  # RMS of the repeating pattern
+    p_value: float  # corrected for every period tried
+
+
+@dataclass(frozen=True)
+class Stop:
+    """The beats stopped (and, where ``restarted``, began again)."""
+
+    at_s: float
+    for_s: float | None  # None: they did not come back within the recording
+    restarted: bool
+
+
+@dataclass(frozen=True)
+class EscapementFigures:
+    """What an escapement's beats tell (see :mod:`tickscope.core.escapement`).
+
+    Sides: 0 is the side of the beat numbered 0 (called tick), 1 the other (tock); which swing of
+    the balance each is cannot be told from the sound.  The beat asymmetry is the tick->tock
+    interval minus the tock->tick interval; the lift time is from a beat's first sound to its drop.
+    """
+
+    beats_per_hour: float  # nominal: the rate is measured against it
+    beats_per_hour_heard: float
+    nominal_source: str  # given | series | nearest (off every series value)
+    off_series_percent: float  # the beat rate heard over the nominal, minus one, in %
+    balance: bool  # a balance's beat rate (else a pendulum's)
+    beat_interval_s: float  # the mean beat heard (fitted)
+    rate: RateEstimate | None  # against the nominal beat
+    beat_asymmetry_ms: float | None
+    beat_asymmetry_ci95_ms: float | None
+    beat_asymmetry_percent: float | None  # of the mean beat
+    beat_reference: str  # first-sound | main-sound: what each side's beats are timed at
+    lift_time_ms: tuple[float | None, float | None]
+    lift_time_ci95_ms: tuple[float | None, float | None]
+    lifts_measured: tuple[int, int]
+    lift_angle_deg: float | None
+    lift_angle_given: bool
+    amplitude_deg: float | None
+    amplitude_ci95_deg: float | None
+    amplitude_reason: str | None  # why there is no amplitude (a code; advice says it in words)
+    beat_scatter_us: float | None  # RMS of the beats about the fitted line (each side's offset removed)
+    knocking: Knocking | None
+    wheel: WheelPattern | None
+    stops: tuple[Stop, ...]
+    missed_beats: int
+
+
+#: The sounds of beats that are not a quartz motor's steps: nothing missed or failed is counted on
+#: them (an escapement's beats are timed as such; other ticking gets no rate).
+BEAT_SOUNDS = ("escapement", "not-ticking")
+
+
+@dataclass(frozen=True)
 class CaptureInfo:
     """How a live capture went."""
 
@@ -264,7 +341,7 @@ class Summary:
     channel: int
     step_interval_s: float | None
     measured_interval_s: float | None
-    sound: str  # "stepping" | "not-stepping" | "none"
+    sound: str  # "stepping" | "escapement" | "not-ticking" | "none"
     steps_detected: int
     missed_steps: int
     missed_step_times_s: list[float]
@@ -290,6 +367,7 @@ class Summary:
     sounds_heard: int = 0  # impulsive sounds the detector found so far (steps or not)
     regrid_times_s: tuple[float, ...] = ()  # where the step grid was found again (what was followed before: not steps)
     second_pass: bool = False  # the steps were followed from the start on the grid a first pass ended on
+    escapement: EscapementFigures | None = None  # an escapement's beats (sound == "escapement")
     # set by the command that made the summary
     clock_calibrated: bool = False
     time_base: str | None = None

@@ -13,13 +13,14 @@ import math
 import numpy as np
 
 from . import advice
-from .core.detect import DetectorConfig, ImpactDetector
+from .core.detect import ESCAPEMENT_PRE_S, DetectorConfig, ImpactDetector
 from .core.diagnose import diagnose
 from .core.faults import polarity_asymmetry
 from .core.grid import StepTracker, TrackerConfig
 from .core.quality import mains_hum
 from .core.rate import fit_rate, level_shifts, residuals_s, stretch_weights
-from .core.ringdown import AbnormalJudge, ringdown_stats
+from .core.ringdown import AbnormalJudge, CoherentDecay, ringdown_stats
+from .core.escapement import check_escapement_options, escapement_figures, lift_resolved, nominal_beats
 from .core.soundkind import classify_sound
 from .errors import ParameterError
 from .model import FLAG_BITS, BeatStats, Block, Event, RateEstimate, StepArrays, Summary, flag_bits, samples_as_float32
@@ -56,13 +57,44 @@ class _Column:
 _COLUMNS = (
     (("step_k", "k", np.int64), ("step_t", "t_s", np.float64), ("step_pol", "pol", np.int8),
      ("step_match", "match", np.float32), ("step_decay", "decay_ms", np.float32), ("step_snr", "snr_db", np.float32),
-     ("step_peak", "peak_dbfs", np.float32), ("step_flags", "flags", np.int16)),
+     ("step_peak", "peak_dbfs", np.float32), ("step_flags", "flags", np.int16), ("step_lift", "lift_ms", np.float32)),
     (("missed_t", "missed_t_s", np.float64), ("missed_k", "missed_k", np.int64)),
     (("failed_k", "failed_k", np.int64), ("failed_t", "failed_t_s", np.float64)),
     (("correction_k", "correction_k", np.int64),),
     (("rejected_snr", None, np.float32),),
     (("other_t", "other_t_s", np.float64), ("other_peak", "other_peak_dbfs", np.float32)),  # every sound not a step
 )
+
+
+def wants_escapement_window(summary: "Summary", analyzer: "Analyzer") -> bool:
+    """Whether a recording analysed with a quartz step's short window should be heard again with an
+    escapement's (detect.ESCAPEMENT_PRE_S): its beats are an escapement's, or it steps at 1/2, 1/4
+    or 1/8 s, where only a lift heard tells a watch's beat from a fast quartz motor.  The second
+    pass is kept when it hears an escapement."""
+    if analyzer.lifts_heard or analyzer.movement == "quartz":
+        return False
+    return summary.sound == "escapement" or (summary.sound == "stepping" and summary.step_interval_s is not None
+                                             and summary.step_interval_s < 0.9)
+
+
+def analyze_samples(x, samplerate: float, **options) -> "Summary":
+    """A whole recording held in memory (one channel, float samples), analysed as ``analyze``
+    analyses a file: once with a quartz step's window and, where that hears an escapement (see
+    :func:`wants_escapement_window`), again with an escapement's.  ``options``: the Analyzer's."""
+    x = np.asarray(x, dtype=np.float32)
+
+    def once(**more):
+        an = Analyzer(samplerate, **options, **more)
+        for j in range(0, len(x), 65536):
+            an.feed(Block(x[j:j + 65536], j))
+        return an, an.finish()
+
+    an, s = once()
+    if wants_escapement_window(s, an) and "detector" not in options:
+        _, s2 = once(detector=DetectorConfig(pre_s=ESCAPEMENT_PRE_S))
+        if s2.sound == "escapement":
+            return s2
+    return s
 
 
 class Analyzer:
@@ -88,20 +120,37 @@ class Analyzer:
     prior : Grid or None
         Track this step grid from the start (found by an earlier pass over the same audio:
         ``analyzer.tracker.grid()``) instead of searching the first seconds for one.
+    movement : str
+        ``auto`` (the sound decides whether it is a stepping motor or an escapement), ``quartz`` or
+        ``escapement`` (the user knows).
+    beats_per_hour : float or None
+        An escapement's nominal beat rate (None: the series value nearest the beat heard).
+    lift_angle_deg : float or None
+        A lever escapement's lift angle (None: the default, said in every report).
     """
 
     def __init__(self, samplerate: float, *, channel: int = 0, clock_ppm: float | None = None,
                  clock_ppm_u95: float = 0.0, detector: DetectorConfig | None = None,
                  tracker: TrackerConfig | None = None, history_steps: int | None = None,
-                 lossy: bool = False, prior=None):
+                 lossy: bool = False, prior=None, movement: str = "auto", beats_per_hour: float | None = None,
+                 lift_angle_deg: float | None = None):
         if not samplerate or samplerate <= 0:
             raise ParameterError(f"samplerate={samplerate!r}: expected > 0")
+        check_escapement_options(movement, beats_per_hour, lift_angle_deg)
+        self.movement = movement
+        self.beats_per_hour = beats_per_hour
+        self.lift_angle_deg = lift_angle_deg
         self.samplerate = float(samplerate)
         self.channel = channel
         self.clock_ppm = clock_ppm
         self.clock_ppm_u95 = clock_ppm_u95
         self.lossy = lossy
         self.shifts: tuple[int, float] | None = None  # (count, largest us) found by the last rate()
+        detector = detector or DetectorConfig()
+        if movement == "escapement" and detector.pre_s < ESCAPEMENT_PRE_S:
+            detector = dataclasses.replace(detector, pre_s=ESCAPEMENT_PRE_S)
+        # an escapement's lift times need the unlocking in every snippet (detect.ESCAPEMENT_PRE_S)
+        self.lifts_heard = detector.pre_s >= ESCAPEMENT_PRE_S
         self.detector = ImpactDetector(samplerate, detector)
         self.tracker = StepTracker(samplerate, self.detector.pre, tracker,
                                    emit_delay_s=(self.detector.post + 2 * self.detector.hop) / samplerate)
@@ -115,6 +164,9 @@ class Analyzer:
         self.n_clipped = 0
         self.gaps: list[tuple[float, float]] = []
         self._ringdown = AbnormalJudge()
+        # each polarity's coherent average: the tracker hands it every step it measures
+        self._coherent = CoherentDecay(samplerate)
+        self.tracker.ringdown_collector = self._coherent
         self.regrid_times_s: list[float] = []  # where the grid was found again (the sounds before: not steps)
         self.prior_used = prior is not None
         if prior is not None:
@@ -150,6 +202,8 @@ class Analyzer:
         if self._hum_n < HUM_ANALYSIS_S * self.samplerate:
             self._hum_buf.append(x.copy() if block.scale is None else samples_as_float32(x, block.scale))
             self._hum_n += len(x)
+            if self._hum_n >= HUM_ANALYSIS_S * self.samplerate:  # the ring-down removes it from every later step
+                self._coherent.hum_hz = self._hum()[0]
         out += self._run(x, block.scale)
         return out
 
@@ -191,9 +245,11 @@ class Analyzer:
                 pol = 0 if ev.polarity == "A" else 1
                 flags = ev.flags
                 d = ev.decay_ms
-                if self._ringdown.judge(pol, d, bent="bent-decay" in flags):
+                abnormal = self._ringdown.judge(pol, d, bent="bent-decay" in flags)
+                if abnormal:
                     flags = flags + ("ringdown",)
                     ev = dataclasses.replace(ev, flags=flags)
+                self._coherent.commit(ev.time_s, use=not (abnormal or {"clipped", "low-match", "truncated"} & set(flags)))
                 self.step_k.append(ev.step)
                 self.step_t.append(ev.time_s)
                 self.step_pol.append(pol)
@@ -202,6 +258,7 @@ class Analyzer:
                 self.step_snr.append(ev.snr_db)
                 self.step_peak.append(ev.peak_dbfs)
                 self.step_flags.append(flag_bits(flags))
+                self.step_lift.append(ev.lift_ms)
                 if "clipped" in flags:
                     self.n_clipped += 1
             elif ev.kind == "missed":
@@ -223,6 +280,7 @@ class Analyzer:
             elif ev.kind == "regrid":
                 self._forget_grid(ev.time_s)
             out.append(ev)
+        self._coherent.drop_pending()
         if self.history_steps is not None:
             self._trim(self.history_steps)
         return out
@@ -244,6 +302,7 @@ class Analyzer:
         self.n_clipped = 0
         self.trailing_silence_slots = 0
         self._ringdown = AbnormalJudge()
+        self._coherent.reset()
 
     def _trim(self, n: int) -> None:
         for group in _COLUMNS:  # the columns of a group stay aligned row by row
@@ -337,14 +396,18 @@ class Analyzer:
         alternation = self._alternation_us()
         verdict = classify_sound(grid_found=not tr.failed, nominal_s=tr.nominal_s, steps=n_steps,
                                  jitter_us=None if rate is None else rate.jitter_us, alternation_us=alternation,
-                                 slots_heard=tr.slots_heard, slots_matched=tr.slots_matched, step_snr_db=snr)
+                                 slots_heard=tr.slots_heard, slots_matched=tr.slots_matched, step_snr_db=snr,
+                                 interval_s=tr.measured_s, lift_resolved=self.lifts_heard and lift_resolved(
+                                     tr.sounds, tr.measured_s, self.samplerate),
+                                 movement=self.movement)
         stepping = verdict.kind == "stepping"
+        esc = self._escapement() if verdict.kind == "escapement" else None
         diag = None
         if stepping and rate is not None and tr.nominal_s is not None:
             diag = diagnose(rec, self._good_steps(), rate, tr.nominal_s, bursts=tr.bursts,
                             reference_u_s=tr.reference_u_s(),
                             clock_ppm=self.clock_ppm or 0.0, clock_ppm_u95=self.clock_ppm_u95)
-        scatter = tr.onset_scatter_s() if verdict.kind == "not-stepping" else None
+        scatter = tr.onset_scatter_s() if verdict.kind in ("escapement", "not-ticking") else None
         res_us = res_t = None
         good = self._good_steps()
         if good.sum() >= 3:
@@ -364,9 +427,9 @@ class Analyzer:
             missed_step_times_s=[float(v) for v in rec.missed_t_s] if stepping else [],
             rejected_events=self.n_rejected,
             secondary_impacts=self.n_secondary,
-            rate=None if not stepping else (diag.rate if diag is not None else rate),
+            rate=(diag.rate if diag is not None else rate) if stepping else (esc.rate if esc is not None else None),
             ringdown=ringdown_stats(rec.pol, rec.decay_ms, (rec.flags & FLAG_BITS["ringdown"]) != 0,
-                                    (rec.flags & FLAG_BITS["bent-decay"]) != 0),
+                                    (rec.flags & FLAG_BITS["bent-decay"]) != 0, coherent=self._coherent),
             step_snr_db=snr,
             clipped_steps=self.n_clipped,
             hum_hz=hum_hz,
@@ -376,8 +439,9 @@ class Analyzer:
             residuals_us=res_us,
             residual_times_s=res_t,
             diagnosis=diag,
-            reading=advice.reading(diag) if diag is not None else (),
-            beats=None if verdict.kind != "not-stepping" else BeatStats(
+            reading=advice.reading(diag) if diag is not None else (
+                advice.escapement_reading(esc) if esc is not None else ()),
+            beats=None if verdict.kind not in ("escapement", "not-ticking") else BeatStats(
                 tr.slots_heard, tr.slots_matched, None if scatter is None else round(scatter * 1000, 3),
                 None if alternation is None else round(alternation / 1000, 3)),
             sound_reason=advice.sound_reason(verdict.kind, verdict.cause, duration_s=self.duration_s,
@@ -389,10 +453,34 @@ class Analyzer:
             sounds_heard=self.sounds_heard,
             regrid_times_s=tuple(self.regrid_times_s),
             second_pass=self.prior_used,
+            escapement=esc,
         )
         return dataclasses.replace(s, warnings=advice.notes(
             s, calibrated=self.clock_ppm is not None, codec_shifts=self.shifts,
             trailing_silence_slots=self.trailing_silence_slots, gaps=self.gaps))
+
+    def _escapement(self):
+        """The escapement figures of the beats so far (None before a grid is measured)."""
+        tr = self.tracker
+        if tr.measured_s is None:
+            return None
+        good = self._good_steps()
+        beat_s = tr.measured_s
+        if good.sum() >= 3:
+            b = np.polyfit(self.step_k.values[good], self.step_t.values[good], 1)[0]
+            beat_s = float(b) if b > 0 else beat_s
+        nominal = nominal_beats(beat_s, self.beats_per_hour)
+        rate = None
+        # (a beat off every usual value by over 1 %, 864 s/day, is measured against the nearest, and
+        # every report says so)
+        if good.sum() >= 3 and np.ptp(self.step_k.values[good]) >= 2:
+            rate = fit_rate(self.step_k.values[good], self.step_t.values[good], nominal.beat_s,
+                            clock_ppm=self.clock_ppm or 0.0, clock_ppm_u95=self.clock_ppm_u95)
+        return escapement_figures(self.arrays(), good, rate=rate, nominal=nominal, sounds=tr.sounds,
+                                  samplerate=self.samplerate, reference_u_s=tr.reference_u_s(),
+                                  lift_angle_deg=self.lift_angle_deg, trailing_slots=self.trailing_silence_slots,
+                                  end_s=self.duration_s, beat_s=None if rate is not None else beat_s,
+                                  lifts_heard=self.lifts_heard)
 
     def _alternation_us(self) -> float | None:
         """Mean A->B interval minus mean B->A interval (us), over all steps (an escapement's tick-tock)."""

@@ -6,13 +6,14 @@ import os
 
 from .. import advice
 from ..errors import NoStepsError, ParameterError
-from .common import DEMO_RECORDING, clock_from_args, console, recordings_dir, write_json
+from .common import DEMO_RECORDING, clock_from_args, console, movement_options, recordings_dir, write_json
 
 
 def run(args) -> int:
     from ..export import summary_to_dict
     from ..io.audiofile import choose_channel, probe
-    from ..pipeline import Analyzer
+    from ..pipeline import Analyzer, wants_escapement_window
+    from ..core.detect import ESCAPEMENT_PRE_S, DetectorConfig
 
     path = args.path
     demo = path is None
@@ -29,7 +30,7 @@ def run(args) -> int:
         raise ParameterError(f"--channel {channel}: {path} has channels 0..{info.channels - 1}")
     clock = clock_from_args(args)
     an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                  lossy=info.lossy)
+                  lossy=info.lossy, **movement_options(args))
     csv_fh = None
     if args.steps_csv:
         try:
@@ -43,12 +44,29 @@ def run(args) -> int:
             # A clock followed at first stopped and another went on (the movement, heard to the end):
             # follow that one from the start, as if it had been found there (the CSV is written again).
             an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                          lossy=info.lossy, prior=an.tracker.grid())
+                          lossy=info.lossy, prior=an.tracker.grid(), **movement_options(args))
             if csv_fh:
-                csv_fh.seek(0)
-                csv_fh.truncate()
+                _rewind(csv_fh)
             tally = {}
             summary = _one_pass(an, path, info, channel, csv_fh, tally, args)
+        if wants_escapement_window(summary, an):
+            # a mechanical movement's beats (or fast steps that may be a watch's): heard again with
+            # the window that holds each beat's unlocking as well as its drop, for the lift times;
+            # kept only if it hears an escapement
+            again = Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                             lossy=info.lossy, detector=DetectorConfig(pre_s=ESCAPEMENT_PRE_S),
+                             **movement_options(args))
+            if csv_fh:
+                _rewind(csv_fh)
+            tally2: dict = {}
+            s2 = _one_pass(again, path, info, channel, csv_fh, tally2, args)
+            if s2.sound == "escapement":
+                an, summary, tally = again, s2, tally2
+            elif csv_fh:  # the first pass's rows again
+                _rewind(csv_fh)
+                _one_pass(Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm,
+                                   clock_ppm_u95=clock.u95_ppm, lossy=info.lossy, **movement_options(args)),
+                          path, info, channel, csv_fh, {}, args)
     finally:
         if csv_fh:
             csv_fh.close()
@@ -81,6 +99,16 @@ def run(args) -> int:
         why = summary.sound_reason or (summary.warnings[-1] if summary.warnings else "no stepping pattern heard")
         raise NoStepsError(f"no steps could be found in {path}: {why}")
     return 0
+
+
+def _rewind(fh) -> None:
+    """Empty the steps CSV for a pass that writes it again (a device that cannot be truncated,
+    such as /dev/null, is left as it is)."""
+    try:
+        fh.seek(0)
+        fh.truncate()
+    except OSError:
+        pass
 
 
 def _one_pass(an, path, info, channel, csv_fh, tally, args):

@@ -121,3 +121,11 @@ def write_json(d) -> None:
     import sys
 
     sys.stdout.write(json.dumps(d, indent=1) + "\n")
+
+
+def movement_options(args) -> dict:
+    """The Analyzer's movement keywords from ``--movement``, ``--beats-per-hour``, ``--lift-angle``
+    (checked there: a one-line error for a value no escapement has)."""
+    return {"movement": getattr(args, "movement", "auto") or "auto",
+            "beats_per_hour": getattr(args, "beats_per_hour", None),
+            "lift_angle_deg": getattr(args, "lift_angle_deg", None)}

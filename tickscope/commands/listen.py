@@ -8,7 +8,7 @@ import time
 
 from ..errors import DeviceError, ParameterError
 from ..model import CaptureInfo
-from .common import PeakMeter, Refit, clock_from_args, console, write_json
+from .common import PeakMeter, Refit, clock_from_args, console, movement_options, write_json
 
 
 def run(args) -> int:
@@ -24,7 +24,7 @@ def run(args) -> int:
     clock = clock_from_args(args, device_name=args.device)
     # short processing chunks: a step reaches the screen promptly (results equal those of `analyze`)
     an = Analyzer(args.samplerate, channel=args.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                  detector=DetectorConfig(chunk_s=0.25))
+                  detector=DetectorConfig(chunk_s=0.25), **movement_options(args))
     rec = LiveRecorder(args.save, args.samplerate) if args.save else None
     # ~43 ms blocks: fewer wake-ups than the driver's default (less CPU), well inside the 0.25 s chunk
     cap = Capture(dev, args.samplerate, channel=args.channel, blocksize=2048)

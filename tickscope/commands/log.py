@@ -8,7 +8,8 @@ import time
 
 from .. import __version__, advice
 from ..errors import DeviceError, NoStepsError, ParameterError, StoreError
-from .common import PeakMeter, Refit, clock_from_args, console, text, write_json
+from ..model import BEAT_SOUNDS
+from .common import PeakMeter, Refit, clock_from_args, console, movement_options, text, write_json
 
 INTERRUPTED = 130  # the exit code of a log ended by Ctrl-C (the shell's 128 + SIGINT)
 
@@ -97,7 +98,8 @@ def _run(args, store, started: dict) -> int:
                             version=__version__)
     started["seg"] = seg
     an = Analyzer(samplerate, channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                  detector=detector, history_steps=HISTORY_STEPS, lossy=info is not None and info.lossy)
+                  detector=detector, history_steps=HISTORY_STEPS, lossy=info is not None and info.lossy,
+                  **movement_options(args))
     clips = None
     if args.keep_audio == "anomalies":
         clips = ClipKeeper(samplerate, int(args.clip_budget_mb * 1e6), used_bytes=store.clip_bytes())
@@ -220,22 +222,27 @@ def _report_segment(args, ls, number: int, source: str, reason: str, time_base: 
         d["nonfinite_samples"] = tally["nonfinite"]
     snd = ls.sound or {}
     d["sound"] = snd.get("sound")
-    if snd.get("sound") == "not-stepping":
+    if snd.get("sound") in BEAT_SOUNDS:
         d["beat_interval_s"] = snd.get("beat_interval_s")
+    if snd.get("escapement") is not None:
+        d["escapement"] = snd["escapement"]
+        d["diagnosis"] = snd.get("reading") or []
     d.update(_clip_fields(clips))
     if args.json:
         write_json(d)
         return
     con = console()
-    if snd.get("sound") == "not-stepping":
+    if snd.get("sound") in BEAT_SOUNDS:
         con.print(f"log {args.db}: segment {number} ended ({reason}) after {ls.position_s / 3600:.2f} h of audio: "
                   f"{snd.get('why') or 'the sound is not a quartz stepping-motor pattern'}; "
                   "its beats are kept, but no steps, missed steps or rate are counted from them")
+        for line in snd.get("reading") or ():
+            con.print(f"  • {line}")
     else:
         con.print(f"log {args.db}: segment {number} ended ({reason}) after {ls.position_s / 3600:.2f} h of "
                   f"audio: {t['steps']} steps, {t['missed']} missed, {t['failed']} failed, {t['gaps']} gaps")
     hours = [h for h in ls.hourly() if math.isfinite(h.rate_s_per_day)]
-    if hours and snd.get("sound") != "not-stepping":
+    if hours and snd.get("sound") not in BEAT_SOUNDS:
         from ..ui.dashboard import hourly_lines
 
         for line in hourly_lines(hours, min(con.width, 120), max_rows=12):

@@ -31,6 +31,14 @@ from .noisefloor import FloorTracker
 from .snippets import Impact, impacts_from_rows, noise_whitener
 
 
+#: The snippet kept before an impact's onset for an escapement's beats (s): the detector is set off
+#: by a beat's loud drop, and its quieter unlocking comes up to a lift time earlier (~20 ms at 220
+#: degrees and 18000 beats per hour: domain notes 10.3's relation); the lift is measured only if both
+#: are kept.  Quartz steps keep 6 ms: with 25 ms of the noise before them in every template, a few
+#: steps of an independent motor recording were timed 1-7 ms off.
+ESCAPEMENT_PRE_S = 0.025
+
+
 @dataclass(frozen=True)
 class DetectorConfig:
     """Settings of the impact detector (times in seconds, levels in dB)."""
@@ -45,7 +53,7 @@ class DetectorConfig:
     sum_s: float = 0.002  # energy summed over 2 ms for the onset rule
     tune_s: float = 3.0  # audio used to choose the difference lag
     refractory_s: float = 0.008  # impacts closer than 8 ms are one impact
-    pre_s: float = 0.006  # snippet kept before an impact's coarse onset
+    pre_s: float = 0.006  # snippet kept before an impact's coarse onset (ESCAPEMENT_PRE_S for beats)
     post_s: float = 0.090  # and after it (ring-down and a hand's bounce)
     highpass_hz: float = 300.0  # timing works above hum and handling noise
     min_level_dbfs: float = -110.0  # frames below this never start an impact

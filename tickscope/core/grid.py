@@ -22,7 +22,8 @@ from ..model import Bursts, Event
 from .acquire import Grid, OpenImpact, find_grid
 from .detect import Impact
 from .dsp import MovingLine, RollingWindow
-from .ringdown import measure_ringdown
+from .escapement import BeatSounds, beat_sounds, sound_offsets
+from .ringdown import step_ringdown
 from .timing import (COARSE_TIE, FIRST_IMPACT_PEAK_S, Template, coarse_lags, dominant_period, match, match_many,
                      onset_of, refine_reach)
 
@@ -75,6 +76,7 @@ class StepTracker:
         self.pre = pre
         self.cfg = config or TrackerConfig()
         self.templates: dict[int, Template] = {}
+        self.sounds: dict[int, BeatSounds] = {}  # where each side's beat sounds lie in its template
         self.bursts: Bursts | None = None  # end-of-life stepping heard at acquisition
         self.acquired = False
         self.failed = False
@@ -93,6 +95,7 @@ class StepTracker:
         self._peaks = RollingWindow(64)  # levels of recent steps (what a normal step sounds like)
         self._offgrid: deque = deque(maxlen=64)  # (time, peak) of recent rejected sounds (the noise's blips)
         self._pol_res = {0: RollingWindow(32), 1: RollingWindow(32)}  # each polarity's offset from the line
+        self.split_sides = False  # an escapement far out of beat: slots looked for at each side's offset
         # how well the sounds on the grid repeat: slots that held any sound, those whose sound
         # matched the step templates well, and the first sound's offset from the prediction
         # per polarity (count, sum, sum of squares; s)
@@ -179,7 +182,9 @@ class StepTracker:
         self.measured_s, self.nominal_s, self.coherence = g.measured_s, g.nominal_s, g.coherence
         self._a, self._b = g.a, g.b
         self.templates = g.templates
+        self._find_sounds()
         self.bursts = g.bursts
+        self._seed_sides(g.side_offsets_s)
         if len(g.fine_k) >= 3:
             self._fit.extend(zip(g.fine_k[-self.cfg.track_steps:], g.fine_t_s[-self.cfg.track_steps:]))
         self.acquired = True
@@ -198,6 +203,7 @@ class StepTracker:
         pols = [k % 2 if k >= 0 else 0 for k in slots]
         lag = np.zeros(len(opens))
         rho = np.zeros(len(opens))
+        lift = np.full(len(opens), np.nan)
         # Near-tied correlation lobes (a ring's carrier: one a cycle) are settled by where the step
         # should be, from two witnesses: the step's own attack (timing.coarse_lags: coarse, but it
         # sees the sound begin), and, once the grid is well known, the slot's predicted time (with
@@ -233,6 +239,7 @@ class StepTracker:
                     take = np.ones(len(idx), dtype=bool)
                 lag[idx] = np.where(take, lag_p, lag[idx])
                 rho[idx] = np.where(take, rho_p, rho[idx])
+            lift[idx] = self._lift_s(rows, lag[idx], pol)
         for i, o in enumerate(opens):
             k = slots[i]
             tmpl = self.templates[pols[i]]
@@ -249,10 +256,28 @@ class StepTracker:
                                         refine=refine_reach(tmpl, self.samplerate))
                 if rho2[0] > rho_i + 0.05:
                     lag_i, rho_i = float(lag2[0]), float(rho2[0])
+                    lift[i] = self._lift_s(row, lag_i, pols[i])
             o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag_i) / self.samplerate
             o.match = rho_i
             o.slot = k
             o.match_any = rho_i  # raised against the other polarity only when the sound is not a step (_event)
+            o.lift_s = float(lift[i])
+
+    def _lift_s(self, rows: np.ndarray, lags, pol: int):
+        """An escapement's beats of several sounds: from each row's first sound to its drop (s), each
+        sound timed against its own part of the template (nan where the side's beat is one sound)."""
+        snd = self.sounds.get(pol)
+        lags = np.atleast_1d(np.asarray(lags, dtype=np.float64))
+        if snd is None or snd.last_part is None:
+            return np.full(len(lags), np.nan) if len(lags) > 1 else float("nan")
+        d_first, d_last = sound_offsets(rows, lags, snd, self.samplerate)
+        out = (snd.lift_samples + d_last - d_first) / self.samplerate
+        return out if len(lags) > 1 else float(out[0])
+
+    def _find_sounds(self) -> None:
+        """Where each side's beat sounds lie in its template (an escapement's unlocking and drop)."""
+        beat_s = self.measured_s or self._b
+        self.sounds = {p: beat_sounds(t, self.samplerate, beat_s) for p, t in self.templates.items()}
 
     def _window_after(self) -> float:
         # long intervals (end-of-life bursts every 2-4 s) gather up to 0.35 s of sound per slot
@@ -267,7 +292,10 @@ class StepTracker:
         self._a, self._b = prior.a + prior.b * k0, prior.b
         swap = k0 % 2 == 1  # the polarities keep their sounds
         self.templates = {p: prior.templates[(p + 1) % 2 if swap else p] for p in (0, 1)}
+        self._find_sounds()
         self.bursts = prior.bursts
+        so = prior.side_offsets_s
+        self._seed_sides((so[1], so[0]) if swap else so)
         self.acquired = True
         self._next_slot = 0
 
@@ -275,8 +303,9 @@ class StepTracker:
         """The grid tracked now (line in absolute times), for :meth:`start_from`."""
         if not self.acquired:
             return None
+        sides = (self._pol_offset(0), self._pol_offset(1)) if self.split_sides else (0.0, 0.0)
         return Grid(self.measured_s, self.nominal_s, self.coherence, self._a, self._b, dict(self.templates), [], [],
-                    self.bursts)
+                    self.bursts, side_offsets_s=sides)
 
     def _decide(self, position_s: float, final: bool = False) -> list[Event]:
         out: list[Event] = []
@@ -299,8 +328,9 @@ class StepTracker:
         """Slot k (predicted at ``pred``): its step, or its failed step and correction, or a missed
         step; every other impact up to the slot's end is a later impact of a step or rejected."""
         tol = min(self.cfg.slot_tolerance_s, 0.2 * self._b)
-        in_slot = [o for o in self._open if abs(o.t_s - pred) <= tol]
-        step, failed, correction = self._slot_sounds(in_slot, pred)
+        centre = pred + self._pol_offset(k) if self.split_sides else pred  # a side far off the line
+        in_slot = [o for o in self._open if abs(o.t_s - centre) <= tol]
+        step, failed, correction = self._slot_sounds(in_slot, centre)
         if in_slot:
             self._note_heard(k, pred, in_slot, step, correction)
         later = self._burst_steps(step) if step is not None and self.bursts is not None else []
@@ -460,10 +490,13 @@ class StepTracker:
         self._a, self._b = g.a - g.b * shift, g.b
         self.measured_s, self.nominal_s, self.coherence = g.measured_s, g.nominal_s, g.coherence
         self.templates = {p: g.templates[(p + shift) % 2] for p in (0, 1)}  # polarity by the tracker's numbers
+        self._find_sounds()
         self.bursts = g.bursts
         self._fit = MovingLine(cfg.track_steps)
         self._fit.extend(((k + shift, t) for k, t in zip(g.fine_k, g.fine_t_s) if k >= k_next - cfg.track_steps))
         self._pol_res = {0: RollingWindow(32), 1: RollingWindow(32)}
+        so = g.side_offsets_s
+        self._seed_sides((so[1], so[0]) if shift % 2 else so)
         self._peaks = RollingWindow(64)
         self._outcomes.clear()
         self._recent.clear()
@@ -539,6 +572,16 @@ class StepTracker:
             return None
         return math.sqrt(ss / (n - 2))
 
+    def _seed_sides(self, offsets_s: tuple[float, float]) -> None:
+        """An escapement far out of beat: each side's beats sound this far from the line (s); the
+        slots are looked for there (its polarity offsets, seeded until its own steps take over)."""
+        self.split_sides = any(abs(v) > 0.0 for v in offsets_s)
+        if self.split_sides:
+            for p in (0, 1):
+                self._pol_res[p] = RollingWindow(32)
+                for _ in range(4):
+                    self._pol_res[p].append(float(offsets_s[p]))
+
     def _pol_offset(self, k: int) -> float:
         """How far the steps of slot k's polarity have sounded from the tracking line lately (s)."""
         res = self._pol_res[k % 2]
@@ -576,25 +619,17 @@ class StepTracker:
             flags.append("low-match")
         if imp.truncated:
             flags.append("truncated")
-        # ring-down: from the onset to the next impact of the same sound (or the snippet's end)
-        i0 = int(round(o.t_s * self.samplerate)) - imp.snippet_start
-        nxt = [e.time_s for e in siblings if e.kind in ("secondary", "step") and e.time_s > o.t_s]
-        i1 = len(imp.snippet)
-        if nxt:
-            i1 = min(i1, int(round(min(nxt) * self.samplerate)) - imp.snippet_start - int(0.001 * self.samplerate))
-        pre_seg = imp.snippet[int(0.001 * self.samplerate): max(int(0.001 * self.samplerate) + 1, i0 - int(0.001 * self.samplerate))]
-        noise = float(np.dot(pre_seg, pre_seg)) / len(pre_seg) if len(pre_seg) > 8 else 0.0
-        # the end of the window, too: under a phone's gain control the noise before a step
-        # is amplified more than the noise during it
-        tail = imp.snippet[max(i0, i1 - int(0.012 * self.samplerate)): i1]
-        if len(tail) > 8 and i1 - i0 > int(0.05 * self.samplerate):
-            tail_power = float(np.dot(tail, tail)) / len(tail)
-            noise = min(noise, tail_power) if noise > 0 else tail_power
-        rd = measure_ringdown(imp.snippet[max(i0, 0): max(i1, i0 + 1)], self.samplerate, noise_power=noise)
-        if rd.fit_range_db > 0 and rd.fit_rms_db > BENT_DECAY * rd.fit_range_db:
+        # ring-down (core/ringdown.py): its window ends at a burst's next step; the analyzer's
+        # collector, when it gave one, takes the step for its polarity's coherent average
+        pol = self._polarity(k, burst_index)
+        nxt = [e.time_s for e in siblings if e.kind == "step" and e.time_s > o.t_s]
+        rd = step_ringdown(imp, o.t_s, self.samplerate, pre=self.pre, polarity=pol,
+                           collector=getattr(self, "ringdown_collector", None), next_step_s=min(nxt) if nxt else None)
+        if rd.bent:
             flags.append("bent-decay")
-        return Event("step", o.t_s, step=k, polarity=self._polarity(k, burst_index), peak_dbfs=imp.peak_dbfs,
-                     snr_db=imp.frame_snr_db, match=o.match, decay_ms=rd.decay_ms, flags=tuple(flags))
+        return Event("step", o.t_s, step=k, polarity=pol, peak_dbfs=imp.peak_dbfs,
+                     snr_db=imp.frame_snr_db, match=o.match, decay_ms=rd.decay_ms, flags=tuple(flags),
+                     lift_ms=o.lift_s * 1e3)
 
     def _polarity(self, k: int, burst_index: int = 0) -> str:
         """The coil polarity of slot k's step (or of the burst_index-th step of its burst): the

@@ -211,15 +211,23 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     """
     segments = list(segments)
     sounds = sounds or {}
-    beats_only = [s for s in segments if (sounds.get(s.id) or {}).get("sound") == "not-stepping"]
-    if beats_only and len(beats_only) == len(segments):
+    beats_only = [s for s in segments if (sounds.get(s.id) or {}).get("sound") in ("not-stepping", "escapement", "not-ticking")]
+    esc = (sounds.get(segments[-1].id) or {}).get("escapement") if segments else None
+    escapement_log = (bool(beats_only) and len(beats_only) == len(segments) and esc is not None
+                      and all((sounds.get(s.id) or {}).get("sound") == "escapement" for s in segments))
+    if beats_only and len(beats_only) == len(segments) and not escapement_log:
         info = sounds[beats_only[-1].id]
         iv = info.get("beat_interval_s")
         why = info.get("why") or ("the sound is not a quartz stepping-motor pattern"
                                   + ("" if iv is None else f" (beat interval heard {iv:.4f} s)"))
         note = "the log holds beats, not quartz steps: " + why
-        return _empty(segments, None, ev, gaps, minutes, note=note, steps=0)
+        fig = _empty(segments, None, ev, gaps, minutes, note=note, steps=0)
+        # an escapement's figures, as its last segment's end measured them
+        fig.notes.extend(f"at the end of segment {beats_only[-1].id}: {line}" for line in info.get("reading") or ())
+        return fig
     nominal = next((s.step_interval_s for s in segments if s.step_interval_s), None)
+    if escapement_log:  # an escapement's beats, on the nominal beat its last segment measured against
+        nominal = 3600.0 / float(esc["beats_per_hour"])
     kinds = ev["kind"]
     if nominal is None or not len(kinds):
         return _empty(segments, nominal, ev, gaps, minutes, note="no stepping pattern was heard in the log"
@@ -239,6 +247,14 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     t_lo = min(a for a, _, _ in spans)
     t_hi = max(b for _, b, _ in spans)
     hourly, ring = _hourly(ev, T, K, G, P, good, silent, spans, t_lo, t_hi, nominal, u95 if calibrated else 0.0)
+    if escapement_log:
+        _escapement_hours(hourly, T, K, good)
+        info = sounds[segments[-1].id]
+        notes.insert(0, f"the log holds an escapement's beats, {esc['beats_per_hour']:.0f} per hour "
+                        f"({esc.get('nominal_source')}): its steps are beats, its rates are against that beat, and "
+                        "each hour gives its beat asymmetry; the lift times are not logged, so the amplitude is "
+                        "the end of a segment's only")
+        notes.extend(f"at the end of segment {segments[-1].id}: {line}" for line in info.get("reading") or ())
     adev = tie = None
     step_t, step_x, step_k = np.zeros(0), np.zeros(0), np.zeros(0, dtype=np.int64)
     if rate is not None:
@@ -315,6 +331,19 @@ def _spans_and_gaps(segments, gaps, silences, override_ppm):
     gap_list += silences
     gap_list.sort()
     return spans, gap_list
+
+
+def _escapement_hours(hourly: list[dict], T: np.ndarray, K: np.ndarray, good: np.ndarray) -> None:
+    """Each hour's beat asymmetry (ms, with its 95 % half-width) from its well-matched beats (the
+    sides by the log's beat numbers: which is tick cannot be told from the sound)."""
+    from .escapement import beat_asymmetry
+
+    hour = np.floor(T / 3600.0).astype(np.int64)
+    for h in hourly:
+        sel = good & (hour == h["hour"])
+        got = beat_asymmetry(K[sel], T[sel]) if sel.sum() >= 8 else None
+        h["beat_asymmetry_ms"] = None if got is None else round(got[0] * 1e3, 4)
+        h["beat_asymmetry_ci95_ms"] = None if got is None else round(got[1] * 1e3, 4)
 
 
 def _hourly(ev, T, K, G, P, good, silent, spans, t_lo: float, t_hi: float, nominal: float, u95: float):

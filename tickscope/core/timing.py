@@ -129,11 +129,16 @@ def first_arrival(wave: np.ndarray, samplerate: float, *, search_from: int = 0, 
     p = start
     while p < end and not (env[p] >= FIRST_PEAK_SHARE * top and env[p] >= env[p - 1] and env[p] >= env[p + 1]):
         p += 1
-    thr = level * env[p]
-    i = p
-    while i > search_from and env[i - 1] >= thr:
+    return rising_crossing(env, p, search_from, level)
+
+
+def rising_crossing(env: np.ndarray, peak: int, lo: int, level: float) -> float:
+    """Where the envelope rising to ``peak`` crosses ``level`` of it (sub-sample), not before ``lo``."""
+    thr = level * env[peak]
+    i = peak
+    while i > lo and env[i - 1] >= thr:
         i -= 1
-    if i == search_from or env[i] == env[i - 1]:
+    if i == lo or env[i] == env[i - 1]:
         return float(i)
     return float(i - 1 + (thr - env[i - 1]) / (env[i] - env[i - 1]))
 

@@ -22,7 +22,7 @@ from rich.panel import Panel
 from rich.text import Text
 
 from ..export import rate_words
-from ..model import Summary
+from ..model import BEAT_SOUNDS, Summary
 from .layout import hanging
 from .textreport import residual_strip
 
@@ -160,15 +160,16 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
             head.append("   provisional", style="yellow")
         parts.append(head)
         parts.append(interval_ruler(r.rate_s_per_day, r.ci95_s_per_day, width))
-    elif s.sound == "not-stepping":
-        head.append(f"not a quartz stepping pattern (beat {s.measured_interval_s or 0:.4f} s)", style="yellow")
+    elif s.sound in BEAT_SOUNDS:
+        head.append(f"{'an escapement' if s.sound == 'escapement' else 'not a quartz stepping pattern'} "
+                    f"(beat {s.measured_interval_s or 0:.4f} s)", style="yellow")
         parts.append(head)
     else:
         head.append(_waiting(s), style="bold")
         parts.append(head)
     counts = Text()
     beats = s.beats
-    if s.sound == "not-stepping" and beats:
+    if s.sound in BEAT_SOUNDS and beats:
         # beats of another kind of sound: nothing to miss or fail (as in the report)
         counts.append(f"beats {beats.heard}", style="bold")
         counts.append(f" · {beats.like_first} like the first")
@@ -184,27 +185,41 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
     if r is not None:
         counts.append(f" · jitter {r.jitter_us:.1f} µs", style="dim")
     parts.append(counts)
+    e = s.escapement
+    if e is not None:
+        # an escapement's own figures, each with its interval (as in the report)
+        esc = Text(f"escapement · {e.beats_per_hour:.0f} beats/h", style="bold")
+        if e.nominal_source == "nearest":
+            esc.append(f" nearest (heard {e.beats_per_hour_heard:.1f}: give --beats-per-hour)", style="yellow")
+        if e.beat_asymmetry_ms is not None:
+            esc.append(f" · asymmetry {abs(e.beat_asymmetry_ms):.2f} ± {e.beat_asymmetry_ci95_ms:.2f} ms")
+        if e.amplitude_deg is not None:
+            esc.append(f" · amplitude {e.amplitude_deg:.0f} ± {e.amplitude_ci95_deg:.0f}° "
+                       f"(lift angle {e.lift_angle_deg:g}°{'' if e.lift_angle_given else ' assumed'})")
+        elif e.balance and e.amplitude_reason:
+            esc.append(f" · no amplitude ({e.amplitude_reason})", style="dim")
+        parts.append(esc)
     if extra:
         parts.extend(extra)
-    if s.sound != "not-stepping" and s.residuals_us is not None and len(s.residuals_us) >= 3:
+    if s.sound not in BEAT_SOUNDS and s.residuals_us is not None and len(s.residuals_us) >= 3:
         parts.append(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, width - 14), height=5))
     lv = Text("input ")
     lv.append_text(level_bar(st.level_dbfs, 20 if width < 100 else 32))
     lv.append(f" {st.level_dbfs:5.1f} dBFS")
     if math.isfinite(s.step_snr_db):
-        lv.append(f" · steps {s.step_snr_db:+.0f} dB over the noise")
+        lv.append(f" · {'beats' if s.sound in BEAT_SOUNDS else 'steps'} {s.step_snr_db:+.0f} dB over the noise")
     parts.append(lv)
     hint = _placement_hint(s, st)
     if hint:
         parts.append(hanging("  ! ", hint, style="red" if hint.startswith("clipping") else "yellow"))
     mv = Text()
-    for p in ("A", "B"):
+    for p in ("A", "B") if s.sound not in BEAT_SOUNDS else ():  # a quartz motor's ring-down and regulation
         if p in s.ringdown:
             mv.append(f"ring-down {p} {s.ringdown[p].decay_ms_median:.2f} ms  ")
     inh = dg.inhibition if dg is not None else None
     if inh:
         mv.append(f"· regulation {inh.correction_us:.0f} µs every {inh.period_s:g} s  ")
-    elif r is not None:
+    elif r is not None and s.sound not in BEAT_SOUNDS:
         mv.append("· regulation: none heard yet  ", style="dim")
     if dg is not None and dg.bursts:
         mv.append(f"· bursts of {dg.bursts.steps_per_burst}: cell at end of life", style="red")

@@ -88,7 +88,9 @@ def render_summary(s: Summary, *, source: str = "", width: int = 80) -> Renderab
     if s.sound == "stepping" and s.residuals_us is not None and len(s.residuals_us) >= 3:
         parts.append(Panel(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, min(width - 20, 100))),
                            title="timing residuals", title_align="left", box=box.ROUNDED, expand=False))
-    if s.ringdown:
+    if s.escapement is not None:
+        parts += _escapement_part(s.escapement)
+    elif s.ringdown:
         parts += _ringdown_part(s)
     reading = _reading(s)
     if reading:
@@ -124,7 +126,20 @@ def _headline(s: Summary, width: int) -> Text:
                           "bold green" if abs(r.rate_s_per_day) < 0.5 else "bold yellow")),
             (f"± {r.ci95_s_per_day:.3f} s/day (95 %)", "bold"),
             (f"over {r.n_steps} steps in {r.span_s:.0f} s", "")], width)
-    if s.sound == "not-stepping":
+    e = s.escapement
+    if s.sound == "escapement" and e is not None and r is not None:
+        return phrase_lines([
+            Text.assemble(("The escapement ", "bold"), (rate_words(r.rate_s_per_day),
+                          "bold green" if abs(r.rate_s_per_day) < 10 else "bold yellow")),
+            (f"± {r.ci95_s_per_day:.2f} s/day (95 %)", "bold"),
+            (f"at {e.beats_per_hour:.0f} beats per hour" + (" (nearest usual value: a guess)"
+                                                            if e.nominal_source == "nearest" else ""), ""),
+            (f"over {r.n_steps} beats in {r.span_s:.0f} s", "")], width)
+    if s.sound == "escapement" and e is not None:
+        return phrase_lines([("An escapement", "bold yellow"),
+                             (f"beating {e.beats_per_hour_heard:.1f} times an hour;", ""),
+                             ("too few beats for a rate", "")], width, sep=" ")
+    if s.sound in ("escapement", "not-ticking", "not-stepping"):
         return phrase_lines([("Not a quartz stepping pattern", "bold yellow"),
                              (f"— beat interval heard {_fmt(s.measured_interval_s, '.5f', ' s')};", ""),
                              ("no rate claimed", "")], width, sep=" ")
@@ -138,6 +153,9 @@ def _readings(s: Summary) -> Table:
     tab.add_column("reading", style="bold")
     tab.add_column("value", justify="right")
     tab.add_column("basis", style="dim")
+    if s.escapement is not None:
+        _escapement_rows(tab, s)
+        return tab
     if r is not None:
         tab.add_row("rate", f"{r.rate_s_per_day:+.4f} s/day", f"95 % ± {r.ci95_s_per_day:.4f}; "
                     f"{s_per_day_to_ppm(r.rate_s_per_day):+.3f} ppm; line fit, residual corr {r.residual_correlation:+.2f}")
@@ -150,7 +168,7 @@ def _readings(s: Summary) -> Table:
     dg = s.diagnosis
     if dg is not None:
         _diagnosis_rows(tab, dg)
-    if s.sound == "not-stepping" and s.beats is not None:
+    if s.sound in ("not-ticking", "not-stepping") and s.beats is not None:
         # beats on a grid of their own: no steps to miss, nothing to diagnose
         b = s.beats
         tab.add_row("beats heard", f"{b.heard}", f"every {_fmt(s.measured_interval_s, '.4f', ' s')} on average; "
@@ -168,6 +186,56 @@ def _readings(s: Summary) -> Table:
     if s.hum_hz:
         tab.add_row("mains hum", f"{s.hum_hz:.0f} Hz", f"{s.hum_db:+.0f} dB over the floor")
     return tab
+
+
+def _escapement_rows(tab, s: Summary) -> None:
+    """The readings table of an escapement's beats."""
+    e, r = s.escapement, s.rate
+    src = {"given": "given", "series": "usual value nearest", "nearest": "nearest; off every usual value"}
+    if r is not None:
+        tab.add_row("rate", f"{r.rate_s_per_day:+.2f} s/day", f"95 % ± {r.ci95_s_per_day:.2f}; "
+                    f"{s_per_day_to_ppm(r.rate_s_per_day):+.1f} ppm; line through the beats")
+        tb = s.time_base or ("clock corrected" if s.clock_calibrated else "device clock, uncalibrated")
+        tab.add_row("time base", f"{r.clock_correction_ppm:+.2f} ppm" if s.clock_calibrated else "", tb)
+    tab.add_row("beats per hour", f"{e.beats_per_hour:.0f}",
+                f"{src.get(e.nominal_source, e.nominal_source)}; heard {e.beats_per_hour_heard:.2f} "
+                f"({'balance' if e.balance else 'pendulum'})")
+    tab.add_row("beat interval", f"{e.beat_interval_s * 1e3:.3f} ms", "mean, from the line through the beats")
+    if e.beat_asymmetry_ms is not None:
+        tab.add_row("beat asymmetry", f"{e.beat_asymmetry_ms:+.2f} ms",
+                    f"95 % ± {e.beat_asymmetry_ci95_ms:.2f}; {abs(e.beat_asymmetry_percent or 0):.1f} % of the beat; "
+                    f"tick→tock minus tock→tick, each beat at its {e.beat_reference.replace('-', ' ')}")
+    for side, (lt, ci, n) in enumerate(zip(e.lift_time_ms, e.lift_time_ci95_ms, e.lifts_measured)):
+        if lt is not None:
+            tab.add_row(f"lift time, {'tick' if side == 0 else 'tock'}", f"{lt:.2f} ms",
+                        f"95 % ± {ci:.2f}; unlocking to drop, {n} beats")
+    if e.amplitude_deg is not None:
+        tab.add_row("amplitude", f"{e.amplitude_deg:.0f}°", f"95 % ± {e.amplitude_ci95_deg:.0f}; lift angle "
+                    f"{e.lift_angle_deg:g}° ({'given' if e.lift_angle_given else 'assumed: --lift-angle'})")
+    if e.beat_scatter_us is not None:
+        tab.add_row("beat scatter", f"{e.beat_scatter_us / 1e3:.3f} ms", "RMS about the line, each side's offset removed")
+    tab.add_row("beats heard", f"{s.steps_detected}", f"{e.missed_beats} missed; {len(e.stops)} stops")
+    tab.add_row("other sounds", f"{s.rejected_events}", f"off the beats, ignored; {s.secondary_impacts} later sounds within beats")
+    tab.add_row("beat level", _fmt(s.step_snr_db, ".1f", " dB"), f"above the noise floor; peak {s.peak_dbfs:.1f} dBFS")
+
+
+def _escapement_part(e) -> list[RenderableType]:
+    """The two sides of the beat drawn to scale: tick→tock and tock→tick as bars of their length."""
+    a = e.beat_asymmetry_ms
+    if a is None:
+        return []
+    beat_ms = e.beat_interval_s * 1e3
+    long_ms = [beat_ms + a / 2, beat_ms - a / 2]  # tick->tock, tock->tick
+    # a scale that shows the difference: bars from (beat - 4 |a| - 1 ms) to the longer one
+    lo = max(0.0, beat_ms - 4 * abs(a) - 1.0)
+    hi = max(long_ms) + 0.2
+    w = 40
+    out = [Text("the two halves of the beat", style="bold")]
+    for name, v in zip(("tick→tock", "tock→tick"), long_ms):
+        n = int(round((v - lo) / (hi - lo) * w))
+        out.append(Text.assemble(f"  {name} ", ("█" * n, "cyan"), f" {v:.2f} ms"))
+    out.append(Text(f"  (bars start at {lo:.1f} ms)", style="dim"))
+    return out
 
 
 def _ringdown_part(s: Summary) -> list[RenderableType]:
