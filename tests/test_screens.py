@@ -247,6 +247,13 @@ def test_notes_and_reading_wrap_with_a_hanging_indent(missed_analysis):
         assert ln.startswith("  • ") or ln.startswith("    ") or not ln.strip(), lines[j + 1:i]
 
 
+def test_notes_write_plus_minus_as_the_tables_do(missed_analysis):
+    # the notes wrote "+-50 ppm = +-4.3 s/day" where every table writes "±"
+    s, _ = missed_analysis
+    assert any("uncalibrated time base" in w for w in s.warnings)
+    assert not any("+-" in w for w in s.warnings) and any("±" in w for w in s.warnings)
+
+
 def test_reading_says_what_the_missed_steps_mean(missed_analysis):
     # three missed steps, nothing else to diagnose: the repairer's reading was left out
     from tickscope.ui.textreport import render_summary
