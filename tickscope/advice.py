@@ -357,7 +357,10 @@ def escapement_reading(e) -> tuple[str, ...]:
             out.append(f"{fig}: in beat (within the 0.5 ms counted good)")
         else:
             out.append(f"{fig}: within what is usually accepted")
-    if a is None:
+    if a is None and e.beat_reference == "main-sound":
+        out.append("no beat asymmetry: the two sides' beats sound too unlike to be timed at the same sound "
+                   "(a microphone on the case, in a quiet room, may hear both sides' unlocking)")
+    elif a is None:
         out.append("no beat asymmetry: fewer than 6 pairs of consecutive beats that match their side's sound well")
     if e.amplitude_deg is not None:
         lift = [v for v in e.lift_time_ms if v is not None]
