@@ -254,6 +254,25 @@ def test_notes_write_plus_minus_as_the_tables_do(missed_analysis):
     assert not any("+-" in w for w in s.warnings) and any("±" in w for w in s.warnings)
 
 
+def test_steps_out_of_digital_silence_say_so_not_a_number():
+    # a file with exact zeros between its ticks read "step level 285.4 dB above the noise floor"
+    import numpy as np
+
+    from tickscope.pipeline import analyze_samples
+    from tickscope.ui.textreport import render_summary
+
+    fs = 48000
+    x = np.zeros(fs * 12, np.float32)
+    n = np.arange(int(0.02 * fs))
+    for k in range(11):
+        i = int((0.5 + k) * fs)
+        x[i:i + len(n)] += (0.5 * np.exp(-n / fs / 0.004) * np.sin(2 * np.pi * 2500 * n / fs) * (-1) ** k)
+    s = analyze_samples(x, fs)
+    assert s.sound == "stepping" and s.steps_detected == 11
+    words = _squash(_text(render_summary(s, source="zeros.wav", width=WIDTH)))
+    assert "above digital silence" in words and "dB above the noise floor" not in words
+
+
 def test_reading_says_what_the_missed_steps_mean(missed_analysis):
     # three missed steps, nothing else to diagnose: the repairer's reading was left out
     from tickscope.ui.textreport import render_summary

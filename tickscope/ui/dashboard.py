@@ -207,7 +207,9 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
     lv.append_text(level_bar(st.level_dbfs, 20 if width < 100 else 32))
     lv.append(f" {st.level_dbfs:5.1f} dBFS")
     if math.isfinite(s.step_snr_db):
-        lv.append(f" · {'beats' if s.sound in BEAT_SOUNDS else 'steps'} {s.step_snr_db:+.0f} dB over the noise")
+        what = 'beats' if s.sound in BEAT_SOUNDS else 'steps'
+        lv.append(f" · {what} over digital silence" if s.step_snr_db > 150.0 else
+                  f" · {what} {s.step_snr_db:+.0f} dB over the noise")
     parts.append(lv)
     hint = _placement_hint(s, st)
     if hint:

@@ -182,10 +182,22 @@ def _readings(s: Summary) -> Table:
         miss = ", ".join(f"{t:.1f}" for t in s.missed_step_times_s[:6]) + (" …" if s.missed_steps > 6 else "")
         tab.add_row("missed steps", f"{s.missed_steps}", f"at {miss} s" if s.missed_steps else "none on the grid")
     tab.add_row("other sounds", f"{s.rejected_events}", f"off the grid, ignored; {s.secondary_impacts} later impacts within steps")
-    tab.add_row("step level", _fmt(s.step_snr_db, ".1f", " dB"), f"above the noise floor; peak {s.peak_dbfs:.1f} dBFS")
+    tab.add_row("step level", *_level_cells(s))
     if s.hum_hz:
         tab.add_row("mains hum", f"{s.hum_hz:.0f} Hz", f"{s.hum_db:+.0f} dB over the floor")
     return tab
+
+
+#: A level over the noise beyond this (dB) is over digital silence (exact zeros between the sounds:
+#: a gated or edited file), not over any noise a microphone hears (24-bit audio spans 144 dB)
+DIGITAL_SILENCE_DB = 150.0
+
+
+def _level_cells(s: Summary) -> tuple[str, str]:
+    """The steps' (or beats') level over the noise: a number, or "above digital silence"."""
+    if s.step_snr_db == s.step_snr_db and s.step_snr_db > DIGITAL_SILENCE_DB:
+        return "—", f"above digital silence (nothing between the sounds); peak {s.peak_dbfs:.1f} dBFS"
+    return _fmt(s.step_snr_db, ".1f", " dB"), f"above the noise floor; peak {s.peak_dbfs:.1f} dBFS"
 
 
 def _escapement_rows(tab, s: Summary) -> None:
@@ -216,7 +228,7 @@ def _escapement_rows(tab, s: Summary) -> None:
         tab.add_row("beat scatter", f"{e.beat_scatter_us / 1e3:.3f} ms", "RMS about the line, each side's offset removed")
     tab.add_row("beats heard", f"{s.steps_detected}", f"{e.missed_beats} missed; {len(e.stops)} stops")
     tab.add_row("other sounds", f"{s.rejected_events}", f"off the beats, ignored; {s.secondary_impacts} later sounds within beats")
-    tab.add_row("beat level", _fmt(s.step_snr_db, ".1f", " dB"), f"above the noise floor; peak {s.peak_dbfs:.1f} dBFS")
+    tab.add_row("beat level", *_level_cells(s))
 
 
 def _escapement_part(e) -> list[RenderableType]:
