@@ -357,7 +357,7 @@ def escapement_reading(e) -> tuple[str, ...]:
             out.append(f"{fig}: in beat (within the 0.5 ms counted good)")
         else:
             out.append(f"{fig}: within what is usually accepted")
-    if a is None and e.beat_reference == "main-sound":
+    if a is None and e.beat_reference == "main-sound" and e.balance:
         out.append("no beat asymmetry: the two sides' beats sound too unlike to be timed at the same sound "
                    "(a microphone on the case, in a quiet room, may hear both sides' unlocking)")
     elif a is None:

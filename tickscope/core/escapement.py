@@ -501,10 +501,11 @@ def escapement_figures(rec, good: np.ndarray, *, rate, nominal: Nominal, sounds:
     flip = bool(len(rec.k)) and int(rec.k[0]) % 2 == 1
     s0, s1 = sounds.get(0), sounds.get(1)
     ref, offs, ref_u = _beat_reference(s0, s1, fs)
-    # (sides that sound too unlike to share their first sound are timed at their loudest, which can
-    # be the unlocking on one side and the drop on the other: no asymmetry is claimed from them --
-    # on the independent model's dev split such figures erred by 12 and 27 ms)
-    asym = beat_asymmetry(k, t) if ref != "main-sound" else None
+    # (a balance's sides that sound too unlike to share their first sound are timed at their
+    # loudest, which can be the unlocking on one side and the drop on the other: no asymmetry is
+    # claimed from them -- on the independent model's dev split such figures erred by 12 and 27 ms;
+    # a pendulum's loudest sound is its drop on both sides)
+    asym = beat_asymmetry(k, t) if ref != "main-sound" or not nominal.balance else None
     asym_ms = asym_ci = asym_pct = None
     if asym is not None:
         v = asym[0] + 2.0 * (offs[1] - offs[0])
