@@ -153,7 +153,8 @@ class Analyzer:
         self.lifts_heard = detector.pre_s >= ESCAPEMENT_PRE_S
         self.detector = ImpactDetector(samplerate, detector)
         self.tracker = StepTracker(samplerate, self.detector.pre, tracker,
-                                   emit_delay_s=(self.detector.post + 2 * self.detector.hop) / samplerate)
+                                   emit_delay_s=(self.detector.post + 2 * self.detector.hop) / samplerate,
+                                   lifts=self.lifts_heard)
         self._pos = 0  # samples fed so far (including zeros fed for gaps)
         self.sounds_heard = 0  # impacts the detector has handed over
         # the record: one growable column per figure (see _COLUMNS), trimmed group by group

@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import shutil
+import tempfile
 
 from .. import advice
 from ..errors import NoStepsError, ParameterError
@@ -29,8 +31,12 @@ def run(args) -> int:
     elif not 0 <= channel < info.channels:
         raise ParameterError(f"--channel {channel}: {path} has channels 0..{info.channels - 1}")
     clock = clock_from_args(args)
-    an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                  lossy=info.lossy, **movement_options(args))
+
+    def analyzer(**more):
+        return Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                        lossy=info.lossy, **movement_options(args), **more)
+
+    an = analyzer()
     csv_fh = None
     if args.steps_csv:
         try:
@@ -43,8 +49,7 @@ def run(args) -> int:
         if an.regrid_times_s and an.tracker.grid() is not None:
             # A clock followed at first stopped and another went on (the movement, heard to the end):
             # follow that one from the start, as if it had been found there (the CSV is written again).
-            an = Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                          lossy=info.lossy, prior=an.tracker.grid(), **movement_options(args))
+            an = analyzer(prior=an.tracker.grid())
             if csv_fh:
                 _rewind(csv_fh)
             tally = {}
@@ -52,21 +57,22 @@ def run(args) -> int:
         if wants_escapement_window(summary, an):
             # a mechanical movement's beats (or fast steps that may be a watch's): heard again with
             # the window that holds each beat's unlocking as well as its drop, for the lift times;
-            # kept only if it hears an escapement
-            again = Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                             lossy=info.lossy, detector=DetectorConfig(pre_s=ESCAPEMENT_PRE_S),
-                             **movement_options(args))
-            if csv_fh:
-                _rewind(csv_fh)
-            tally2: dict = {}
-            s2 = _one_pass(again, path, info, channel, csv_fh, tally2, args)
-            if s2.sound == "escapement":
-                an, summary, tally = again, s2, tally2
-            elif csv_fh:  # the first pass's rows again
-                _rewind(csv_fh)
-                _one_pass(Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm,
-                                   clock_ppm_u95=clock.u95_ppm, lossy=info.lossy, **movement_options(args)),
-                          path, info, channel, csv_fh, {}, args)
+            # kept (with its rows of the CSV) only if it hears an escapement
+            again = analyzer(detector=DetectorConfig(pre_s=ESCAPEMENT_PRE_S))
+            # (its rows wait in memory, or on disk past 8 MB, until it is kept)
+            rows = tempfile.SpooledTemporaryFile(8 << 20, mode="w+", newline="") if csv_fh else None
+            try:
+                tally2: dict = {}
+                s2 = _one_pass(again, path, info, channel, rows, tally2, args)
+                if s2.sound == "escapement":
+                    an, summary, tally = again, s2, tally2
+                    if csv_fh:
+                        _rewind(csv_fh)
+                        rows.seek(0)
+                        shutil.copyfileobj(rows, csv_fh)
+            finally:
+                if rows:
+                    rows.close()
     finally:
         if csv_fh:
             csv_fh.close()

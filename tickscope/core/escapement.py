@@ -483,7 +483,7 @@ def _beat_reference(s0: BeatSounds | None, s1: BeatSounds | None, fs: float) -> 
 
 def escapement_figures(rec, good: np.ndarray, *, rate, nominal: Nominal, sounds: dict, samplerate: float,
                        reference_u_s: float, lift_angle_deg: float | None, trailing_slots: int, end_s: float,
-                       restarts: tuple = (), beat_s: float | None = None, lifts_heard: bool = True):
+                       beat_s: float | None = None, lifts_heard: bool = True):
     """The figures of an escapement's beats (:class:`~tickscope.model.EscapementFigures`).
 
     ``rec``: the analyzer's record (:class:`~tickscope.model.StepArrays`), ``good``: the beats that
@@ -546,7 +546,7 @@ def escapement_figures(rec, good: np.ndarray, *, rate, nominal: Nominal, sounds:
         if (s0 is not None or s1 is not None) else 0.0
     knock = knocking(t, rec.other_t_s, beat_s, after_s=drop_s - min(offs.values()) + 0.004) if nominal.balance else None
     wheel = wheel_pattern(k, res) if len(res) else None
-    st = stops(rec.k, rec.t_s, rec.missed_k, beat_s, trailing_slots, end_s) + tuple(restarts)
+    st = stops(rec.k, rec.t_s, rec.missed_k, beat_s, trailing_slots, end_s)
     return EscapementFigures(
         beats_per_hour=nominal.beats_per_hour, beats_per_hour_heard=3600.0 / beat_s, nominal_source=nominal.source,
         off_series_percent=(nominal.beat_s / beat_s - 1.0) * 100.0, balance=nominal.balance, beat_interval_s=beat_s,

@@ -69,8 +69,11 @@ class StepTracker:
     """Classifies a stream of impacts into steps on a grid (see module docstring)."""
 
     def __init__(self, samplerate: float, pre: int, config: TrackerConfig | None = None, *,
-                 emit_delay_s: float = 0.12):
+                 emit_delay_s: float = 0.12, lifts: bool = True):
         self.samplerate = float(samplerate)
+        # whether to time each beat's lift (its snippets hold an escapement's unlocking: see
+        # detect.ESCAPEMENT_PRE_S); without, every step's lift_s stays nan
+        self.lifts = lifts
         # the detector hands over an impact this long after its onset (its snippet must be complete)
         self.emit_delay_s = emit_delay_s
         self.pre = pre
@@ -268,7 +271,7 @@ class StepTracker:
         sound timed against its own part of the template (nan where the side's beat is one sound)."""
         snd = self.sounds.get(pol)
         lags = np.atleast_1d(np.asarray(lags, dtype=np.float64))
-        if snd is None or snd.last_part is None:
+        if not self.lifts or snd is None or snd.last_part is None:
             return np.full(len(lags), np.nan) if len(lags) > 1 else float("nan")
         d_first, d_last = sound_offsets(rows, lags, snd, self.samplerate)
         out = (snd.lift_samples + d_last - d_first) / self.samplerate

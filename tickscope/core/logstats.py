@@ -212,10 +212,12 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     segments = list(segments)
     sounds = sounds or {}
     beats_only = [s for s in segments if (sounds.get(s.id) or {}).get("sound") in ("not-stepping", "escapement", "not-ticking")]
-    esc = (sounds.get(segments[-1].id) or {}).get("escapement") if segments else None
-    escapement_log = (bool(beats_only) and len(beats_only) == len(segments) and esc is not None
+    all_beats = bool(beats_only) and len(beats_only) == len(segments)
+    last = (sounds.get(segments[-1].id) or {}) if segments else {}  # the last segment's sound
+    esc = last.get("escapement")
+    escapement_log = (all_beats and esc is not None
                       and all((sounds.get(s.id) or {}).get("sound") == "escapement" for s in segments))
-    if beats_only and len(beats_only) == len(segments) and not escapement_log:
+    if all_beats and not escapement_log:
         info = sounds[beats_only[-1].id]
         iv = info.get("beat_interval_s")
         why = info.get("why") or ("the sound is not a quartz stepping-motor pattern"
@@ -249,12 +251,11 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     hourly, ring = _hourly(ev, T, K, G, P, good, silent, spans, t_lo, t_hi, nominal, u95 if calibrated else 0.0)
     if escapement_log:
         _escapement_hours(hourly, T, K, good)
-        info = sounds[segments[-1].id]
         notes.insert(0, f"the log holds an escapement's beats, {esc['beats_per_hour']:.0f} per hour "
                         f"({esc.get('nominal_source')}): its steps are beats, its rates are against that beat, and "
                         "each hour gives its beat asymmetry; the lift times are not logged, so the amplitude is "
                         "the end of a segment's only")
-        notes.extend(f"at the end of segment {segments[-1].id}: {line}" for line in info.get("reading") or ())
+        notes.extend(f"at the end of segment {segments[-1].id}: {line}" for line in last.get("reading") or ())
     adev = tie = None
     step_t, step_x, step_k = np.zeros(0), np.zeros(0), np.zeros(0, dtype=np.int64)
     if rate is not None:

@@ -23,7 +23,7 @@ from rich.text import Text
 
 from ..export import rate_words
 from ..model import BEAT_SOUNDS, Summary
-from .layout import hanging
+from .layout import DIGITAL_SILENCE_DB, hanging
 from .textreport import residual_strip
 
 
@@ -208,7 +208,7 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
     lv.append(f" {st.level_dbfs:5.1f} dBFS")
     if math.isfinite(s.step_snr_db):
         what = 'beats' if s.sound in BEAT_SOUNDS else 'steps'
-        lv.append(f" · {what} over digital silence" if s.step_snr_db > 150.0 else
+        lv.append(f" · {what} over digital silence" if s.step_snr_db > DIGITAL_SILENCE_DB else
                   f" · {what} {s.step_snr_db:+.0f} dB over the noise")
     parts.append(lv)
     hint = _placement_hint(s, st)

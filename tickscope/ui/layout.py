@@ -8,6 +8,10 @@ from rich.cells import cell_len
 from rich.table import Table
 from rich.text import Text
 
+#: A level over the noise beyond this (dB) is over digital silence (exact zeros between the sounds:
+#: a gated or edited file), not over any noise a microphone hears (24-bit audio spans 144 dB)
+DIGITAL_SILENCE_DB = 150.0
+
 #: (name, seconds per unit), smallest first.
 TIME_UNITS = (("s", 1.0), ("min", 60.0), ("h", 3600.0), ("days", 86400.0))
 

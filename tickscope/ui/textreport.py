@@ -20,7 +20,7 @@ from .. import advice
 from ..export import rate_words
 from ..model import Summary
 from ..units import s_per_day_to_ppm
-from .layout import hanging, phrase_lines
+from .layout import DIGITAL_SILENCE_DB, hanging, phrase_lines
 
 
 def _tlabel(v: float) -> str:
@@ -186,11 +186,6 @@ def _readings(s: Summary) -> Table:
     if s.hum_hz:
         tab.add_row("mains hum", f"{s.hum_hz:.0f} Hz", f"{s.hum_db:+.0f} dB over the floor")
     return tab
-
-
-#: A level over the noise beyond this (dB) is over digital silence (exact zeros between the sounds:
-#: a gated or edited file), not over any noise a microphone hears (24-bit audio spans 144 dB)
-DIGITAL_SILENCE_DB = 150.0
 
 
 def _level_cells(s: Summary) -> tuple[str, str]:
