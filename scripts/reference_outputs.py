@@ -3,7 +3,7 @@
     python scripts/reference_outputs.py OUT_DIR      # then: diff -r OUT_BEFORE OUT_AFTER
 
 A restructuring or a speed-up must leave every file identical; a fix changes only the files it
-means to.  The set: the two bundled demo recordings, the real recordings when
+means to.  The set: the four bundled demo recordings (two quartz, a lever watch, a pendulum), the real recordings when
 scripts/fetch-real-recordings.sh has fetched them, and simulated recordings of the cases that
 exercise every diagnosis (made by the simulator with fixed seeds, into OUT_DIR/audio).  The
 script also logs one of them and writes the log report's JSON.  Timings and paths are removed
@@ -66,7 +66,9 @@ def main(out_dir: str) -> int:
     os.environ["COLUMNS"] = "100"
     os.makedirs(os.path.join(out_dir, "audio"), exist_ok=True)
     files = {"kitchen": os.path.join(ROOT, "recordings", "kitchen-wall-clock.flac"),
-             "wristwatch": os.path.join(ROOT, "recordings", "bench-wristwatch.flac")}
+             "wristwatch": os.path.join(ROOT, "recordings", "bench-wristwatch.flac"),
+             "lever-watch": os.path.join(ROOT, "recordings", "bench-lever-watch.flac"),
+             "pendulum": os.path.join(ROOT, "recordings", "mantel-pendulum.flac")}
     real = os.path.join(ROOT, "recordings", "real")
     for name in ("wall-clock.ogg", "kitchen-timer.ogg", "two-ticks.ogg"):
         if os.path.exists(os.path.join(real, name)):
