@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 
 from .core.diagnose import ASYMMETRY_REFERENCE_MAX_US
+from .core.soundkind import scattered_steps
 from .units import ppm_to_s_per_day
 
 #: Typical error of an uncalibrated consumer audio clock (common practice; sound-card
@@ -118,6 +119,11 @@ def notes(s, *, calibrated: bool, codec_shifts: tuple[int, float] | None, traili
         out.append(f"the lossy codec shifted the step times abruptly {n} time{'s' if n > 1 else ''} (by up to "
                    f"{largest_us:.0f} us): the rate is fitted within the stretches between shifts; a lossless "
                    "recording (WAV, FLAC) avoids this")
+    if rate is not None and scattered_steps(s.sound, s.step_interval_s, rate.jitter_us):
+        out.append(f"the steps scatter by {rate.jitter_us / 1000:.1f} ms (RMS) about their line, far more than a "
+                   "crystal's steps do: a motor whose load varies from step to step, or a step heard as several "
+                   "impacts of like loudness (the rate's interval allows for it); a seconds pendulum in beat "
+                   "sounds the same: pass --movement escapement if it is one")
     if rate is not None and (rate.span_s < 20 or rate.n_steps < 10):
         out.append(f"the recording is short ({rate.span_s:.0f} s of steps): record at least a minute "
                    "for a useful rate, ten for a precise one")

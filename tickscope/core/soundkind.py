@@ -11,7 +11,10 @@ quartz movements and the beats of escapements overlap (1/8 s is 28800 beats an h
 pendulum), so on such an interval the beats themselves decide:
 
 * at 1 s and longer a quartz motor is far the likelier: an escapement only when its tick and tock
-  differ clearly, or its beats scatter as no motor's steps do (or sound unlike one another);
+  differ by more than any motor's polarities do, when its beats sound unlike one another, or when
+  a balance's lift is heard.  Scatter alone does not decide here: a motor whose load varies from
+  step to step (or whose step is several impacts of like loudness) is timed with milliseconds of
+  scatter, as a seconds pendulum is, and the report says so (:func:`scattered_steps`);
 * at 1/2, 1/4 and 1/8 s an escapement is far the likelier (a watch or a clock; quartz movements
   that step so fast are sweep movements, nearly silent): a stepping motor only when its steps keep
   time to a few microseconds and sound as one impact, with no unlocking before a drop.
@@ -31,6 +34,11 @@ TICK_TOCK_SHARE = 0.02
 #: real step sounds of one clock: 2.6 ms, so 5.2 ms of alternation) while it keeps time to
 #: microseconds; an escapement's beats scatter by tens of us and more (our own margins).
 TICK_TOCK_LOOSE_SHARE = 0.005
+#: At a second, where scatter alone does not decide, alternate beats this far apart (15 ms) are a
+#: pendulum's tick and tock: the independent motor model's two polarities, with load varying from
+#: step to step, were timed up to 10.9 ms apart on its dev split; our simulator's pendulums in beat
+#: by 15-16 ms were heard as one (set on the dev splits of both; scored on the score splits).
+SECOND_TICK_TOCK_SHARE = 0.015
 TICK_TOCK_JITTER_US = 50.0
 #: never below this (us): the templates' own onsets can differ by this much
 TICK_TOCK_MIN_US = 1000.0
@@ -96,11 +104,20 @@ def classify_sound(*, grid_found: bool, nominal_s: float | None, steps: int, jit
             cause = "scatter"
     if not cause and unlike:
         cause = "unlike"
+    if nominal_s >= 0.9 and beat_ok:
+        # a second (a seconds pendulum's beat too): stepping unless the beats cannot be a motor's
+        if alt > SECOND_TICK_TOCK_SHARE * nominal_s * 1e6:
+            return SoundVerdict("escapement", "tick-tock")
+        if unlike:
+            return SoundVerdict("escapement", "unlike")
+        if lift_resolved:
+            return SoundVerdict("escapement", "lift")
+        return SoundVerdict("stepping")
     if nominal_s >= 0.9 or not beat_ok:
-        # a quartz motor's interval: stepping unless the beats are an escapement's
+        # a quartz motor's interval no escapement beats at: stepping unless the beats are not a motor's
         if not cause:
             return SoundVerdict("stepping")
-        return SoundVerdict("escapement", cause) if beat_ok else SoundVerdict("not-ticking", cause)
+        return SoundVerdict("not-ticking", cause)
     # 1/2, 1/4, 1/8 s: an escapement unless the steps keep a quartz motor's time
     if cause:
         return SoundVerdict("escapement", cause)
@@ -110,3 +127,12 @@ def classify_sound(*, grid_found: bool, nominal_s: float | None, steps: int, jit
         return SoundVerdict("escapement", "scatter" if jitter_us is not None and jitter_us > QUARTZ_MAX_JITTER_US
                             else "tick-tock" if alt > loose_us else "beat-rate")
     return SoundVerdict("stepping")
+
+
+def scattered_steps(kind: str, nominal_s: float | None, jitter_us: float | None) -> bool:
+    """True for a second's steps, called a stepping motor's, that scatter as a crystal's steps do not
+    (over :data:`MAX_STEP_JITTER_US` RMS): a motor whose load varies from step to step, one timed on
+    unlike impacts, or a seconds pendulum in beat whose beats sound alike -- the report says which
+    to suspect and how to say it is an escapement."""
+    return (kind == "stepping" and nominal_s is not None and nominal_s >= 0.9 and jitter_us is not None
+            and jitter_us > MAX_STEP_JITTER_US)
