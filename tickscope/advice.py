@@ -241,48 +241,7 @@ def reading(dg, *, missed_step_times_s: tuple[float, ...] = ()) -> tuple[str, ..
                    "twitch on its slot well under the steps' usual level and louder than every other sound of the "
                    f"2 s before it), losing {f.seconds_lost:g} s — about {f.seconds_lost_per_day:.0f} s/day at this "
                    "rate of failure: the motor works at its margin (worn or dirty train, thick oil, weak cell)")
-    miss = sorted(float(t) for t in missed_step_times_s)
-    if miss:
-        # A stepping motor's pulses alternate in polarity: a rotor left standing by one pulse is
-        # not turned by the next either (common practice, no source; the simulator and the
-        # failed-step count model it so).  The slots are told apart by their neighbours.
-        iv = dg.rate.interval_s
-
-        def follows(a: float, b: float) -> bool:
-            return abs(b - a - iv) < 0.25 * iv
-
-        after_failed = [t for t in miss if any(follows(ft, t) for ft in f.times_s)]
-        runs: list[list[float]] = []
-        for t in miss:
-            if t in after_failed:
-                continue
-            if runs and follows(runs[-1][-1], t):
-                runs[-1].append(t)
-            else:
-                runs.append([t])
-        singles, longer = [r[0] for r in runs if len(r) == 1], [r for r in runs if len(r) > 1]
-
-        def listed(v: list[str]) -> str:
-            return ", ".join(v[:6]) + (" …" if len(v) > 6 else "")
-
-        n = len(miss)
-        out.append(f"{n} missed step{'s' if n != 1 else ''} (slot{'s' if n != 1 else ''} of the step grid with no "
-                   f"step heard, at {listed([f'{t:.1f}' for t in miss])} s): they do not change the rate, which "
-                   "is fitted to the steps heard")
-        if singles and not dg.bursts:
-            out.append(f"{'a missed slot' if len(singles) == 1 else 'missed slots'} between steps heard "
-                       f"({listed([f'{t:.1f}' for t in singles])} s): the step was most likely made and only its "
-                       "sound lost (a quiet step, a noise gate, a phone's gain control, a knock over it), and the "
-                       "hands lost nothing; the coil's pulses alternate in polarity, so a rotor that had not turned "
-                       "there would have missed the next pulse too (common practice, no source)")
-        if longer and not dg.bursts:
-            out.append(f"missed slots in a row ({listed([f'{r[0]:.1f}–{r[-1]:.1f}' for r in longer])} s): the rotor "
-                       "may have failed to turn (it then misses the next pulse too, and the hands fall behind by "
-                       "those steps) or the sound dropped out; watch the seconds hand there")
-        if after_failed:
-            out.append(f"{'a missed slot follows' if len(after_failed) == 1 else 'missed slots follow'} a failed step "
-                       f"({listed([f'{t:.1f}' for t in after_failed])} s): the next pulse found the rotor aligned, "
-                       "part of the seconds lost above")
+    out += _missed_reading(dg, sorted(float(t) for t in missed_step_times_s))
     if dg.drive_levels:
         out.append(f"{len(dg.drive_levels)} drive levels heard "
                    f"({', '.join(f'{lv.level_dbfs:.0f} dBFS' for lv in dg.drive_levels)}), "
@@ -300,6 +259,56 @@ def reading(dg, *, missed_step_times_s: tuple[float, ...] = ()) -> tuple[str, ..
                    "the rotor may sit off-centre in its detent, or one polarity drives weaker (common "
                    "practice, no source)")
     return tuple(out)
+
+
+def _missed_reading(dg, miss: list[float]) -> list[str]:
+    """What the missed steps mean, told apart by their neighbours (a slot after a failed step, a
+    lone missed slot, missed slots in a row)."""
+    out: list[str] = []
+    if not miss:
+        return out
+    f = dg.failed
+    # A stepping motor's pulses alternate in polarity: a rotor left standing by one pulse is
+    # not turned by the next either (common practice, no source; the simulator and the
+    # failed-step count model it so).  The slots are told apart by their neighbours.
+    iv = dg.rate.interval_s
+
+    def follows(a: float, b: float) -> bool:
+        return abs(b - a - iv) < 0.25 * iv
+
+    after_failed = [t for t in miss if any(follows(ft, t) for ft in f.times_s)]
+    runs: list[list[float]] = []
+    for t in miss:
+        if t in after_failed:
+            continue
+        if runs and follows(runs[-1][-1], t):
+            runs[-1].append(t)
+        else:
+            runs.append([t])
+    singles, longer = [r[0] for r in runs if len(r) == 1], [r for r in runs if len(r) > 1]
+
+    def listed(v: list[str]) -> str:
+        return ", ".join(v[:6]) + (" …" if len(v) > 6 else "")
+
+    n = len(miss)
+    out.append(f"{n} missed step{'s' if n != 1 else ''} (slot{'s' if n != 1 else ''} of the step grid with no "
+               f"step heard, at {listed([f'{t:.1f}' for t in miss])} s): they do not change the rate, which "
+               "is fitted to the steps heard")
+    if singles and not dg.bursts:
+        out.append(f"{'a missed slot' if len(singles) == 1 else 'missed slots'} between steps heard "
+                   f"({listed([f'{t:.1f}' for t in singles])} s): the step was most likely made and only its "
+                   "sound lost (a quiet step, a noise gate, a phone's gain control, a knock over it), and the "
+                   "hands lost nothing; the coil's pulses alternate in polarity, so a rotor that had not turned "
+                   "there would have missed the next pulse too (common practice, no source)")
+    if longer and not dg.bursts:
+        out.append(f"missed slots in a row ({listed([f'{r[0]:.1f}–{r[-1]:.1f}' for r in longer])} s): the rotor "
+                   "may have failed to turn (it then misses the next pulse too, and the hands fall behind by "
+                   "those steps) or the sound dropped out; watch the seconds hand there")
+    if after_failed:
+        out.append(f"{'a missed slot follows' if len(after_failed) == 1 else 'missed slots follow'} a failed step "
+                   f"({listed([f'{t:.1f}' for t in after_failed])} s): the next pulse found the rotor aligned, "
+                   "part of the seconds lost above")
+    return out
 
 
 # -- an escapement's reading -----------------------------------------------------------------------

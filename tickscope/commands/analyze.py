@@ -12,31 +12,21 @@ from .common import DEMO_RECORDING, clock_from_args, console, movement_options, 
 
 
 def run(args) -> int:
-    from ..export import summary_to_dict
-    from ..io.audiofile import choose_channel, probe
-    from ..pipeline import Analyzer, wants_escapement_window
-    from ..core.detect import ESCAPEMENT_PRE_S, DetectorConfig
+    from ..io.audiofile import probe
+    from ..pipeline import Analyzer
 
     path = args.path
     demo = path is None
     if demo:
         path = os.path.join(recordings_dir(), DEMO_RECORDING)
     info = probe(path)
-    channel = args.channel
-    chosen_note = ""
-    if channel is None:
-        channel = choose_channel(path, info)
-        if info.channels > 1:
-            chosen_note = f"channel {channel} of {info.channels} has the clearest steps"
-    elif not 0 <= channel < info.channels:
-        raise ParameterError(f"--channel {channel}: {path} has channels 0..{info.channels - 1}")
+    channel, chosen_note = _channel(args, path, info)
     clock = clock_from_args(args)
 
     def analyzer(**more):
         return Analyzer(info.samplerate, channel=channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
                         lossy=info.lossy, **movement_options(args), **more)
 
-    an = analyzer()
     csv_fh = None
     if args.steps_csv:
         try:
@@ -44,35 +34,7 @@ def run(args) -> int:
         except OSError as e:
             raise ParameterError(f"cannot write {args.steps_csv}: {e.strerror}") from e
     try:
-        tally: dict = {}
-        summary = _one_pass(an, path, info, channel, csv_fh, tally, args)
-        if an.regrid_times_s and an.tracker.grid() is not None:
-            # A clock followed at first stopped and another went on (the movement, heard to the end):
-            # follow that one from the start, as if it had been found there (the CSV is written again).
-            an = analyzer(prior=an.tracker.grid())
-            if csv_fh:
-                _rewind(csv_fh)
-            tally = {}
-            summary = _one_pass(an, path, info, channel, csv_fh, tally, args)
-        if wants_escapement_window(summary, an):
-            # a mechanical movement's beats (or fast steps that may be a watch's): heard again with
-            # the window that holds each beat's unlocking as well as its drop, for the lift times;
-            # kept (with its rows of the CSV) only if it hears an escapement
-            again = analyzer(detector=DetectorConfig(pre_s=ESCAPEMENT_PRE_S))
-            # (its rows wait in memory, or on disk past 8 MB, until it is kept)
-            rows = tempfile.SpooledTemporaryFile(8 << 20, mode="w+", newline="") if csv_fh else None
-            try:
-                tally2: dict = {}
-                s2 = _one_pass(again, path, info, channel, rows, tally2, args)
-                if s2.sound == "escapement":
-                    an, summary, tally = again, s2, tally2
-                    if csv_fh:
-                        _rewind(csv_fh)
-                        rows.seek(0)
-                        shutil.copyfileobj(rows, csv_fh)
-            finally:
-                if rows:
-                    rows.close()
+        an, summary, tally = _passes(analyzer, path, info, channel, csv_fh, args)
     finally:
         if csv_fh:
             csv_fh.close()
@@ -88,6 +50,68 @@ def run(args) -> int:
         notes.insert(0, chosen_note)
     summary = dataclasses.replace(summary, warnings=notes, clock_calibrated=clock.ppm is not None,
                                   time_base=clock.time_base)
+    _show(summary, an, args, path, demo)
+    if summary.sound == "none" or summary.steps_detected == 0:
+        why = summary.sound_reason or (summary.warnings[-1] if summary.warnings else "no stepping pattern heard")
+        raise NoStepsError(f"no steps could be found in {path}: {why}")
+    return 0
+
+
+def _channel(args, path: str, info) -> tuple[int, str]:
+    """The channel to analyse and, when tickscope chose it among several, a note saying so."""
+    from ..io.audiofile import choose_channel
+
+    if args.channel is None:
+        channel = choose_channel(path, info)
+        return channel, (f"channel {channel} of {info.channels} has the clearest steps" if info.channels > 1 else "")
+    if not 0 <= args.channel < info.channels:
+        raise ParameterError(f"--channel {args.channel}: {path} has channels 0..{info.channels - 1}")
+    return args.channel, ""
+
+
+def _passes(analyzer, path: str, info, channel: int, csv_fh, args):
+    """The file heard once, and again where the first pass asks for it: from the start with the grid
+    of a clock heard to the end, and with an escapement's window.  (analyzer, summary, tally)."""
+    from ..core.detect import ESCAPEMENT_PRE_S, DetectorConfig
+    from ..pipeline import wants_escapement_window
+
+    an = analyzer()
+    tally: dict = {}
+    summary = _one_pass(an, path, info, channel, csv_fh, tally, args)
+    if an.regrid_times_s and an.tracker.grid() is not None:
+        # A clock followed at first stopped and another went on (the movement, heard to the end):
+        # follow that one from the start, as if it had been found there (the CSV is written again).
+        an = analyzer(prior=an.tracker.grid())
+        if csv_fh:
+            _rewind(csv_fh)
+        tally = {}
+        summary = _one_pass(an, path, info, channel, csv_fh, tally, args)
+    if wants_escapement_window(summary, an):
+        # a mechanical movement's beats (or fast steps that may be a watch's): heard again with
+        # the window that holds each beat's unlocking as well as its drop, for the lift times;
+        # kept (with its rows of the CSV) only if it hears an escapement
+        again = analyzer(detector=DetectorConfig(pre_s=ESCAPEMENT_PRE_S))
+        # (its rows wait in memory, or on disk past 8 MB, until it is kept)
+        rows = tempfile.SpooledTemporaryFile(8 << 20, mode="w+", newline="") if csv_fh else None
+        try:
+            tally2: dict = {}
+            s2 = _one_pass(again, path, info, channel, rows, tally2, args)
+            if s2.sound == "escapement":
+                an, summary, tally = again, s2, tally2
+                if csv_fh:
+                    _rewind(csv_fh)
+                    rows.seek(0)
+                    shutil.copyfileobj(rows, csv_fh)
+        finally:
+            if rows:
+                rows.close()
+    return an, summary, tally
+
+
+def _show(summary, an, args, path: str, demo: bool) -> None:
+    """The report, or the JSON, and the plot asked for."""
+    from ..export import summary_to_dict
+
     if demo and not args.json:
         console(stderr=True).print(f"[dim]no file given: analyzing the bundled demo recording {path}[/dim]")
     if args.json:
@@ -101,10 +125,6 @@ def run(args) -> int:
         from ..ui.plots import plot_analysis
 
         plot_analysis(summary, an, args.plot, title=os.path.basename(path))
-    if summary.sound == "none" or summary.steps_detected == 0:
-        why = summary.sound_reason or (summary.warnings[-1] if summary.warnings else "no stepping pattern heard")
-        raise NoStepsError(f"no steps could be found in {path}: {why}")
-    return 0
 
 
 def _rewind(fh) -> None:

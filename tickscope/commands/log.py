@@ -5,6 +5,7 @@ import math
 import os
 import sys
 import time
+from dataclasses import dataclass
 
 from .. import __version__, advice
 from ..errors import DeviceError, NoStepsError, ParameterError, StoreError
@@ -52,44 +53,20 @@ def _forget_failed_start(store, seg) -> None:
 
 
 def _run(args, store, started: dict) -> int:
-    from ..core.detect import DetectorConfig
     from ..io.clips import ClipKeeper
     from ..io.profiles import host_sync_status
-    from ..logsession import HISTORY_STEPS, LogSession, check_label, plan_device_segment, plan_file_segment
+    from ..logsession import HISTORY_STEPS, LogSession, check_label
     from ..pipeline import Analyzer
 
     segs = store.segments()
     store.init_meta(args.label or "", __version__)
     check_label(store, args.label, args.db)
     now = time.time()
-    cap = info = block_iter = detector = None
     tally: dict = {}  # samples of the source that were not numbers (read as silence)
-    if args.source is not None:
-        from ..io.audiofile import blocks, choose_channel, probe
-
-        src = os.path.abspath(args.source)
-        info = probe(src)
-        plan = plan_file_segment(segs, src, samplerate=info.samplerate, frames=info.frames, channel=args.channel,
-                                 default_channel=lambda: choose_channel(src, info), db=args.db)
-        if plan.done:
-            console(stderr=True).print(plan.done)
-            return 0
-        if not 0 <= plan.channel < info.channels:
-            raise ParameterError(f"--channel {plan.channel}: {src} has channels 0..{info.channels - 1}")
-        samplerate = info.samplerate
-        block_iter = blocks(src, info, plan.channel, start_frame=plan.start_frame, tally=tally)
-        clock = clock_from_args(args)
-    else:
-        from ..io.capture import Capture, resolve_device
-
-        plan = plan_device_segment(segs, str(args.device), channel=args.channel, now_wall_s=now, db=args.db)
-        if not 8000 <= args.samplerate <= 192000:
-            raise ParameterError(f"--rate-hz {args.samplerate}: expected 8000..192000")
-        dev = resolve_device(args.device)
-        samplerate = args.samplerate
-        clock = clock_from_args(args, device_name=args.device)
-        cap = Capture(dev, samplerate, channel=plan.channel, blocksize=2048)
-        detector = DetectorConfig(chunk_s=0.25)
+    src = _open_source(args, segs, now, tally)
+    if src is None:
+        return 0
+    plan, clock, samplerate = src.plan, src.clock, src.samplerate
     seg = store.new_segment(started_wall=now, source_kind=plan.kind, source=plan.source,
                             source_offset_s=plan.timeline_s if plan.kind == "file" else 0.0,
                             timeline_s=plan.timeline_s, join_kind=plan.join, samplerate=samplerate,
@@ -98,36 +75,18 @@ def _run(args, store, started: dict) -> int:
                             version=__version__)
     started["seg"] = seg
     an = Analyzer(samplerate, channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                  detector=detector, history_steps=HISTORY_STEPS, lossy=info is not None and info.lossy,
+                  detector=src.detector, history_steps=HISTORY_STEPS, lossy=src.info is not None and src.info.lossy,
                   **movement_options(args))
     clips = None
     if args.keep_audio == "anomalies":
         clips = ClipKeeper(samplerate, int(args.clip_budget_mb * 1e6), used_bytes=store.clip_bytes())
     ls = LogSession(store, seg, an, timeline_s=plan.timeline_s, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
                     clips=clips)
-    limit_s = args.hours * 3600.0 if args.hours else None
     if plan.note:
         console(stderr=True).print(plan.note)
-    err = None
-    reason = "end of source"
-    interrupted = False
     number = len(segs) + 1
     try:
-        try:
-            if cap is None:
-                _log_file(ls, block_iter, info.duration_s - plan.timeline_s, limit_s,
-                          show_progress=not args.quiet and not args.json)
-                if limit_s is not None and ls.position_s >= limit_s:
-                    reason = "hours reached"
-            else:
-                reason = _log_device(ls, cap, limit_s, args, number, quiet=args.quiet or args.json)
-        except KeyboardInterrupt:
-            reason, interrupted = "stopped by Ctrl-C", True
-        except DeviceError as e:
-            if ls.position_s <= 0:
-                raise  # the device never gave audio (it cannot be opened): the log did not start
-            reason = f"capture ended: {e}"
-            err = e
+        reason, interrupted, err = _listen(ls, src, args, number)
         ls.finish(reason)
         if tally.get("nonfinite"):
             store.set_meta(f"segment {seg} nonfinite", str(tally["nonfinite"]))
@@ -146,8 +105,75 @@ def _run(args, store, started: dict) -> int:
         return 2
     if interrupted:
         return INTERRUPTED  # after everything is committed and the segment's end reported
-    _raise_if_no_steps(args, ls, plan, info, tally, number)
+    _raise_if_no_steps(args, ls, plan, src.info, tally, number)
     return 0
+
+
+@dataclass
+class _Source:
+    """Where a segment's audio comes from: a file replayed (``info``, ``block_iter``) or a device
+    (``cap``), with the segment's plan and clock."""
+
+    plan: object
+    clock: object
+    samplerate: float
+    info: object = None
+    block_iter: object = None
+    cap: object = None
+    detector: object = None
+
+
+def _open_source(args, segs, now: float, tally: dict) -> _Source | None:
+    """The file or device to log from, as the log's earlier segments allow (None: a replay that
+    has nothing left to read, said on stderr)."""
+    from ..logsession import plan_device_segment, plan_file_segment
+
+    if args.source is not None:
+        from ..io.audiofile import blocks, choose_channel, probe
+
+        src = os.path.abspath(args.source)
+        info = probe(src)
+        plan = plan_file_segment(segs, src, samplerate=info.samplerate, frames=info.frames, channel=args.channel,
+                                 default_channel=lambda: choose_channel(src, info), db=args.db)
+        if plan.done:
+            console(stderr=True).print(plan.done)
+            return None
+        if not 0 <= plan.channel < info.channels:
+            raise ParameterError(f"--channel {plan.channel}: {src} has channels 0..{info.channels - 1}")
+        return _Source(plan, clock_from_args(args), info.samplerate, info=info,
+                       block_iter=blocks(src, info, plan.channel, start_frame=plan.start_frame, tally=tally))
+    from ..core.detect import DetectorConfig
+    from ..io.capture import Capture, resolve_device
+
+    plan = plan_device_segment(segs, str(args.device), channel=args.channel, now_wall_s=now, db=args.db)
+    if not 8000 <= args.samplerate <= 192000:
+        raise ParameterError(f"--rate-hz {args.samplerate}: expected 8000..192000")
+    dev = resolve_device(args.device)
+    return _Source(plan, clock_from_args(args, device_name=args.device), args.samplerate,
+                   cap=Capture(dev, args.samplerate, channel=plan.channel, blocksize=2048),
+                   detector=DetectorConfig(chunk_s=0.25))
+
+
+def _listen(ls, src: _Source, args, number: int) -> tuple[str, bool, Exception | None]:
+    """Feed the segment until its source ends, the hours are reached, Ctrl-C or the device fails:
+    (why it ended, whether Ctrl-C ended it, the device's error)."""
+    limit_s = args.hours * 3600.0 if args.hours else None
+    reason = "end of source"
+    try:
+        if src.cap is None:
+            _log_file(ls, src.block_iter, src.info.duration_s - src.plan.timeline_s, limit_s,
+                      show_progress=not args.quiet and not args.json)
+            if limit_s is not None and ls.position_s >= limit_s:
+                reason = "hours reached"
+        else:
+            reason = _log_device(ls, src.cap, limit_s, args, number, quiet=args.quiet or args.json)
+    except KeyboardInterrupt:
+        return "stopped by Ctrl-C", True, None
+    except DeviceError as e:
+        if ls.position_s <= 0:
+            raise  # the device never gave audio (it cannot be opened): the log did not start
+        return f"capture ended: {e}", False, e
+    return reason, False, None
 
 
 def _raise_if_no_steps(args, ls, plan, info, tally: dict, number: int) -> None:

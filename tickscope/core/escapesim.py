@@ -201,44 +201,15 @@ def beat_motion(sc: EscapementScenario) -> dict:
     ``restart_s`` (the true time the movement starts again, or None).
     """
     check_scenario(sc)
-    lever = sc.movement == "lever"
-    runs = []
     restart_s = None
     stop_end = sc.duration_s
     if sc.stop_at_s is not None:
         stop_end = sc.stop_at_s
         restart_s = sc.stop_at_s + sc.stop_for_s
-
-    def run(t0, k0, t_end, restart):
-        if lever:
-            # the first beat's first sound at t0: its centre lies half a lift time later (the lift time of
-            # that beat's own amplitude and period)
-            iv0 = _uniform_intervals(sc, np.array([k0]))[0]
-            off = 0.0
-            for _ in range(30):  # c - half_lift(A(c)) = t0 by fixed-point steps (each shrinks the error ~1000x)
-                a0 = _amplitude_at(sc, np.array([t0 + off]), restart)[0]
-                new = float(_lift_half_s(sc, a0, 2 * iv0))
-                if new == off:
-                    break
-                off = new
-        else:
-            off = 0.0
-        k, c, iv = _schedule(sc, t0, k0, t_end, off)
-        period = 2 * iv
-        if lever:
-            amp = _amplitude_at(sc, c, restart)
-            half = _lift_half_s(sc, amp, period)
-            first = c - half
-        else:
-            amp = np.full(len(c), np.nan)
-            first = c
-        keep = first < t_end
-        return k[keep], c[keep], period[keep], amp[keep]
-
-    runs.append(run(sc.first_beat_s, 0, stop_end, None))
+    runs = [_run_beats(sc, sc.first_beat_s, 0, stop_end, None)]
     if restart_s is not None and restart_s < sc.duration_s:
         k_last = int(runs[0][0][-1]) if len(runs[0][0]) else -1
-        runs.append(run(restart_s, k_last + 1, sc.duration_s, restart_s))
+        runs.append(_run_beats(sc, restart_s, k_last + 1, sc.duration_s, restart_s))
     k = np.concatenate([r[0] for r in runs]).astype(np.int64)
     c = np.concatenate([r[1] for r in runs])
     period = np.concatenate([r[2] for r in runs])
@@ -249,9 +220,47 @@ def beat_motion(sc: EscapementScenario) -> dict:
         stopped[len(runs[0][0]) - 1] = True
         if len(runs) > 1 and len(runs[1][0]):
             restarted[len(runs[0][0])] = True
+    sounds = _beat_sound_times(sc, c, period, amp)
+    anomaly = np.zeros(len(k), bool)
+    if sc.wheel_anomaly_db or sc.wheel_anomaly_ms:
+        anomaly = _wheel_anomaly(sc, k, sounds)
+    return {"beat": k, "tock": (k % 2) == 1, "centre_s": c, "period_s": period, "amplitude_deg": amp,
+            "sounds": sounds, "stopped": stopped, "restarted": restarted, "wheel_anomaly": anomaly,
+            "restart_s": restart_s if (restart_s is not None and restart_s < sc.duration_s) else None}
+
+
+def _run_beats(sc: EscapementScenario, t0: float, k0: int, t_end: float, restart):
+    """One run of beats from ``t0`` (the first beat's first sound) numbered from ``k0`` until ``t_end``:
+    (numbers, centre crossings, periods, amplitudes)."""
+    lever = sc.movement == "lever"
+    off = 0.0
+    if lever:
+        # the first beat's first sound at t0: its centre lies half a lift time later (the lift time of
+        # that beat's own amplitude and period)
+        iv0 = _uniform_intervals(sc, np.array([k0]))[0]
+        for _ in range(30):  # c - half_lift(A(c)) = t0 by fixed-point steps (each shrinks the error ~1000x)
+            a0 = _amplitude_at(sc, np.array([t0 + off]), restart)[0]
+            new = float(_lift_half_s(sc, a0, 2 * iv0))
+            if new == off:
+                break
+            off = new
+    k, c, iv = _schedule(sc, t0, k0, t_end, off)
+    period = 2 * iv
+    if lever:
+        amp = _amplitude_at(sc, c, restart)
+        first = c - _lift_half_s(sc, amp, period)
+    else:
+        amp = np.full(len(c), np.nan)
+        first = c
+    keep = first < t_end
+    return k[keep], c[keep], period[keep], amp[keep]
+
+
+def _beat_sound_times(sc: EscapementScenario, c: np.ndarray, period: np.ndarray, amp: np.ndarray) -> dict:
+    """The times of each beat's sounds from the swing through the centre at ``c`` (name -> array)."""
     sounds: dict[str, np.ndarray] = {}
     w = period / (2 * math.pi)  # seconds per radian of the swing's phase
-    if lever:
+    if sc.movement == "lever":
         if np.any(amp <= sc.lift_angle_deg / 2):
             raise ParameterError(f"amplitude_deg={sc.amplitude_deg!r}: the balance's amplitude falls to half the "
                                  "lift angle during the recording (it would stop)")
@@ -267,21 +276,22 @@ def beat_motion(sc: EscapementScenario) -> dict:
         sounds["drop"] = c.copy()
         if sc.pendulum_escapement == "recoil":
             sounds["recoil"] = c + sc.recoil_gap_ms * 1e-3
-    anomaly = np.zeros(len(k), bool)
-    if sc.wheel_anomaly_db or sc.wheel_anomaly_ms:
-        n2 = 2 * sc.wheel_teeth
-        entry = 2 * sc.wheel_anomaly_tooth
-        exit_ = entry + 2 * sc.wheel_pallet_span_teeth + 1
-        anomaly = ((k - entry) % n2 == 0) | ((k - exit_) % n2 == 0)
-        shifted = sounds["drop"] + np.where(anomaly, sc.wheel_anomaly_ms * 1e-3, 0.0)
-        if lever and np.any(shifted <= sounds["impulse"]):
-            raise _bad("wheel_anomaly_ms", sc.wheel_anomaly_ms, "a shift that keeps the drop after the impulse")
-        sounds["drop"] = shifted
-        if "recoil" in sounds:
-            sounds["recoil"] = sounds["recoil"] + np.where(anomaly, sc.wheel_anomaly_ms * 1e-3, 0.0)
-    return {"beat": k, "tock": (k % 2) == 1, "centre_s": c, "period_s": period, "amplitude_deg": amp,
-            "sounds": sounds, "stopped": stopped, "restarted": restarted, "wheel_anomaly": anomaly,
-            "restart_s": restart_s if (restart_s is not None and restart_s < sc.duration_s) else None}
+    return sounds
+
+
+def _wheel_anomaly(sc: EscapementScenario, k: np.ndarray, sounds: dict) -> np.ndarray:
+    """The beats where the escape wheel's odd tooth meets a pallet (its drop shifted in ``sounds``)."""
+    n2 = 2 * sc.wheel_teeth
+    entry = 2 * sc.wheel_anomaly_tooth
+    exit_ = entry + 2 * sc.wheel_pallet_span_teeth + 1
+    anomaly = ((k - entry) % n2 == 0) | ((k - exit_) % n2 == 0)
+    shifted = sounds["drop"] + np.where(anomaly, sc.wheel_anomaly_ms * 1e-3, 0.0)
+    if sc.movement == "lever" and np.any(shifted <= sounds["impulse"]):
+        raise _bad("wheel_anomaly_ms", sc.wheel_anomaly_ms, "a shift that keeps the drop after the impulse")
+    sounds["drop"] = shifted
+    if "recoil" in sounds:
+        sounds["recoil"] = sounds["recoil"] + np.where(anomaly, sc.wheel_anomaly_ms * 1e-3, 0.0)
+    return anomaly
 
 
 # --------------------------------------------------------------------------------------------

@@ -149,24 +149,62 @@ def _placement_hint(s: Summary, st: LiveStatus) -> str | None:
 def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[RenderableType] | None = None,
                 mode: str = "listening") -> RenderableType:
     """The live screen; ``extra`` rows (the log's hourly rates) go under the counts."""
-    parts: list[RenderableType] = []
-    dg = s.diagnosis
-    r = s.rate
+    parts: list[RenderableType] = _headline(s, width)
+    parts.append(_counts(s, st))
+    if s.escapement is not None:
+        parts.append(_escapement_line(s.escapement))
+    if extra:
+        parts.extend(extra)
+    if s.sound not in BEAT_SOUNDS and s.residuals_us is not None and len(s.residuals_us) >= 3:
+        parts.append(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, width - 14), height=5))
+    lv = Text("input ")
+    lv.append_text(level_bar(st.level_dbfs, 20 if width < 100 else 32))
+    lv.append(f" {st.level_dbfs:5.1f} dBFS")
+    if math.isfinite(s.step_snr_db):
+        what = 'beats' if s.sound in BEAT_SOUNDS else 'steps'
+        lv.append(f" · {what} over digital silence" if s.step_snr_db > DIGITAL_SILENCE_DB else
+                  f" · {what} {s.step_snr_db:+.0f} dB over the noise")
+    parts.append(lv)
+    hint = _placement_hint(s, st)
+    if hint:
+        parts.append(hanging("  ! ", hint, style="red" if hint.startswith("clipping") else "yellow"))
+    mv = _motor_line(s)
+    if len(mv):
+        parts.append(mv)
+    # while the step interval is still sought, the reason a finished recording would give for
+    # finding no pattern (too short, or "move the microphone") is not yet a finding
+    shown = [w for w in s.warnings if not (s.sound == "none" and w == s.sound_reason)]
+    for w in shown[:3 if width < 100 else 6]:
+        if "uncalibrated" in w:
+            w = "device clock uncalibrated (±4 s/day typical): pass --clock-ppm"
+        parts.append(Text("! " + w, style="yellow", overflow="ellipsis", no_wrap=True))
+    elapsed = f"{int(st.elapsed_s // 3600):02d}:{int(st.elapsed_s % 3600 // 60):02d}:{int(st.elapsed_s % 60):02d}"
+    title = f"tickscope · {mode} · {st.source}"
+    sub = f"{st.samplerate:g} Hz · ch {st.channel} · {elapsed}" + (f" · saving {st.saving_to}" if st.saving_to else "")
+    return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.ROUNDED, width=width)
+
+
+def _headline(s: Summary, width: int) -> list[RenderableType]:
+    """The rate with its interval and ruler, or what was heard instead, or what is waited for."""
+    dg, r = s.diagnosis, s.rate
     head = Text()
     if r is not None:
         head.append(rate_words(r.rate_s_per_day), style="bold")
         head.append(f"   ± {r.ci95_s_per_day:.3f} s/day (95 %)")
         if dg is not None and dg.rate_provisional:
             head.append("   provisional", style="yellow")
-        parts.append(head)
-        parts.append(interval_ruler(r.rate_s_per_day, r.ci95_s_per_day, width))
-    elif s.sound in BEAT_SOUNDS:
+        return [head, interval_ruler(r.rate_s_per_day, r.ci95_s_per_day, width)]
+    if s.sound in BEAT_SOUNDS:
         head.append(f"{'an escapement' if s.sound == 'escapement' else 'not a quartz stepping pattern'} "
                     f"(beat {s.measured_interval_s or 0:.4f} s)", style="yellow")
-        parts.append(head)
     else:
         head.append(_waiting(s), style="bold")
-        parts.append(head)
+    return [head]
+
+
+def _counts(s: Summary, st: LiveStatus) -> Text:
+    """Steps (or beats), missed and failed steps, other sounds, gaps and the timing jitter."""
+    dg, r = s.diagnosis, s.rate
     counts = Text()
     beats = s.beats
     if s.sound in BEAT_SOUNDS and beats:
@@ -184,38 +222,29 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
     counts.append(f" · gaps {st.overflows}", style="red" if st.overflows else "")
     if r is not None:
         counts.append(f" · jitter {r.jitter_us:.1f} µs", style="dim")
-    parts.append(counts)
-    e = s.escapement
-    if e is not None:
-        # an escapement's own figures, each with its interval (as in the report)
-        esc = Text(f"escapement · {e.beats_per_hour:.0f} beats/h", style="bold")
-        if e.nominal_source == "nearest":
-            esc.append(f" nearest (heard {e.beats_per_hour_heard:.1f}: give --beats-per-hour)", style="yellow")
-        if e.beat_asymmetry_ms is not None:
-            esc.append(f" · asymmetry {abs(e.beat_asymmetry_ms):.2f} ± {e.beat_asymmetry_ci95_ms:.2f} ms")
-        if e.amplitude_deg is not None:
-            esc.append(f" · amplitude {e.amplitude_deg:.0f} ± {e.amplitude_ci95_deg:.0f}° "
-                       f"(lift angle {e.lift_angle_deg:g}°{'' if e.lift_angle_given else ' assumed'})")
-        elif e.balance and e.amplitude_reason:
-            esc.append(f" · no amplitude ({e.amplitude_reason})", style="dim")
-        parts.append(esc)
-    if extra:
-        parts.extend(extra)
-    if s.sound not in BEAT_SOUNDS and s.residuals_us is not None and len(s.residuals_us) >= 3:
-        parts.append(residual_strip(s.residual_times_s, s.residuals_us, width=max(20, width - 14), height=5))
-    lv = Text("input ")
-    lv.append_text(level_bar(st.level_dbfs, 20 if width < 100 else 32))
-    lv.append(f" {st.level_dbfs:5.1f} dBFS")
-    if math.isfinite(s.step_snr_db):
-        what = 'beats' if s.sound in BEAT_SOUNDS else 'steps'
-        lv.append(f" · {what} over digital silence" if s.step_snr_db > DIGITAL_SILENCE_DB else
-                  f" · {what} {s.step_snr_db:+.0f} dB over the noise")
-    parts.append(lv)
-    hint = _placement_hint(s, st)
-    if hint:
-        parts.append(hanging("  ! ", hint, style="red" if hint.startswith("clipping") else "yellow"))
+    return counts
+
+
+def _escapement_line(e) -> Text:
+    """An escapement's own figures, each with its interval (as in the report)."""
+    esc = Text(f"escapement · {e.beats_per_hour:.0f} beats/h", style="bold")
+    if e.nominal_source == "nearest":
+        esc.append(f" nearest (heard {e.beats_per_hour_heard:.1f}: give --beats-per-hour)", style="yellow")
+    if e.beat_asymmetry_ms is not None:
+        esc.append(f" · asymmetry {abs(e.beat_asymmetry_ms):.2f} ± {e.beat_asymmetry_ci95_ms:.2f} ms")
+    if e.amplitude_deg is not None:
+        esc.append(f" · amplitude {e.amplitude_deg:.0f} ± {e.amplitude_ci95_deg:.0f}° "
+                   f"(lift angle {e.lift_angle_deg:g}°{'' if e.lift_angle_given else ' assumed'})")
+    elif e.balance and e.amplitude_reason:
+        esc.append(f" · no amplitude ({e.amplitude_reason})", style="dim")
+    return esc
+
+
+def _motor_line(s: Summary) -> Text:
+    """A quartz motor's ring-down, its regulation and end-of-life bursts."""
+    dg, r = s.diagnosis, s.rate
     mv = Text()
-    for p in ("A", "B") if s.sound not in BEAT_SOUNDS else ():  # a quartz motor's ring-down and regulation
+    for p in ("A", "B") if s.sound not in BEAT_SOUNDS else ():
         if p in s.ringdown:
             mv.append(f"ring-down {p} {s.ringdown[p].decay_ms_median:.2f} ms  ")
     inh = dg.inhibition if dg is not None else None
@@ -225,16 +254,4 @@ def render_live(s: Summary, st: LiveStatus, *, width: int = 80, extra: list[Rend
         mv.append("· regulation: none heard yet  ", style="dim")
     if dg is not None and dg.bursts:
         mv.append(f"· bursts of {dg.bursts.steps_per_burst}: cell at end of life", style="red")
-    if len(mv):
-        parts.append(mv)
-    # while the step interval is still sought, the reason a finished recording would give for
-    # finding no pattern (too short, or "move the microphone") is not yet a finding
-    shown = [w for w in s.warnings if not (s.sound == "none" and w == s.sound_reason)]
-    for w in shown[:3 if width < 100 else 6]:
-        if "uncalibrated" in w:
-            w = "device clock uncalibrated (±4 s/day typical): pass --clock-ppm"
-        parts.append(Text("! " + w, style="yellow", overflow="ellipsis", no_wrap=True))
-    elapsed = f"{int(st.elapsed_s // 3600):02d}:{int(st.elapsed_s % 3600 // 60):02d}:{int(st.elapsed_s % 60):02d}"
-    title = f"tickscope · {mode} · {st.source}"
-    sub = f"{st.samplerate:g} Hz · ch {st.channel} · {elapsed}" + (f" · saving {st.saving_to}" if st.saving_to else "")
-    return Panel(Group(*parts), title=title, subtitle=sub, title_align="left", box=box.ROUNDED, width=width)
+    return mv

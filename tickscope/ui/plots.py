@@ -99,9 +99,14 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
 
     plt = _plt()
     os.makedirs(out_dir, exist_ok=True)
-    paths = []
     _, per = time_unit(fig.span_s)
-    # rate over time
+    return [draw(plt, fig, out_dir, title, per) for draw in (_log_rate, _log_time_error, _log_adev, _log_ringdown)]
+
+
+def _log_rate(plt, fig, out_dir: str, title: str, per: float) -> str:
+    """The rate over time: per minute, per hour with its interval, the whole log's band."""
+    import os
+
     f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
     mins = [m for m in fig.minutes if m.get("rate_s_per_day") is not None]
     if mins:  # each at the middle of the part of its minute the log covers
@@ -122,9 +127,14 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
             pad = max(hi - lo, 0.02) * 1.5
             ax.set_ylim(lo - pad, hi + pad)
     _mark_anomalies(ax, fig, 1 / per)
-    paths.append(_finish_timeline(plt, f, ax, fig, os.path.join(out_dir, "rate.png"), ylabel="rate (s/day, + gains)",
-                                  title=f"{title}: rate over time"))
-    # time interval error: as it accumulates, and what the rate line leaves
+    return _finish_timeline(plt, f, ax, fig, os.path.join(out_dir, "rate.png"), ylabel="rate (s/day, + gains)",
+                                  title=f"{title}: rate over time")
+
+
+def _log_time_error(plt, fig, out_dir: str, title: str, per: float) -> str:
+    """The time interval error as it accumulates, and what the rate line leaves of it."""
+    import os
+
     f, (ax, ax2) = plt.subplots(2, 1, figsize=(10, 7), constrained_layout=True, sharex=True)
     if len(fig.step_x):
         big = np.ptp(fig.step_x) >= 1e-3  # ms for a millisecond or more, else µs
@@ -141,10 +151,15 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
     if len(fig.missed_times_s) or len(fig.failed_times_s):
         ax.legend(loc="best", fontsize=8)
     _mark_anomalies(ax2, fig, 1 / per)
-    paths.append(_finish_timeline(plt, f, ax2, fig, os.path.join(out_dir, "tie.png"),
+    return _finish_timeline(plt, f, ax2, fig, os.path.join(out_dir, "tie.png"),
                                   ylabel="after the rate line (µs)", title="what the rate line does not explain: "
-                                  "a bow is a drifting rate, a sawtooth logic regulation", legend=False))
-    # Allan deviation
+                                  "a bow is a drifting rate, a sawtooth logic regulation", legend=False)
+
+
+def _log_adev(plt, fig, out_dir: str, title: str, per: float) -> str:
+    """The overlapping Allan deviation with its 95 % interval."""
+    import os
+
     f, ax = plt.subplots(figsize=(7, 5.5), constrained_layout=True)
     ad = fig.adev
     if ad is not None and len(ad.tau_s):
@@ -159,9 +174,15 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
     ax.set_ylabel("Allan deviation σy(τ)")
     ax.set_title(f"{title}: stability")
     ax.grid(alpha=0.3, which="both")
-    paths.append(os.path.join(out_dir, "adev.png"))
-    _save(plt, f, paths[-1])
-    # ring-down over time
+    path = os.path.join(out_dir, "adev.png")
+    _save(plt, f, path)
+    return path
+
+
+def _log_ringdown(plt, fig, out_dir: str, title: str, per: float) -> str:
+    """The ring-down decay of each polarity hour by hour."""
+    import os
+
     f, ax = plt.subplots(figsize=(10, 5), constrained_layout=True)
     centre = {h["hour"]: h["center_s"] for h in fig.hourly}
     for name, c in (("A", "tab:green"), ("B", "tab:orange")):
@@ -178,10 +199,9 @@ def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
         else:  # one hour: a band of one point would not show
             ax.errorbar(x, med, yerr=[med - q1, q3 - med], fmt="none", capsize=4, color=c, alpha=0.6,
                         label=f"polarity {name}, quartiles")
-    paths.append(_finish_timeline(plt, f, ax, fig, os.path.join(out_dir, "ringdown.png"),
+    return _finish_timeline(plt, f, ax, fig, os.path.join(out_dir, "ringdown.png"),
                                   ylabel="ring-down decay τ (ms)", title=f"{title}: ring-down over time",
-                                  legend=bool(fig.ringdown_hourly)))
-    return paths
+                                  legend=bool(fig.ringdown_hourly))
 
 
 def _within(fig, start_s: float, length_s: float, at_s: float | None = None) -> float:
