@@ -25,7 +25,7 @@ from .detect import Impact
 from .timing import COARSE_TIE, Template, coarse_lags, learn_template, match, match_many
 
 if TYPE_CHECKING:
-    from .grid import TrackerConfig
+    from .trackconfig import TrackerConfig
 
 #: Step intervals of quartz movements (s): 2^-k fractions of a second for stepping
 #: sweep hands, and the PCA2002 output periods 1, 5, 10, 20, 30 s (NXP PCA2002
