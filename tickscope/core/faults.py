@@ -141,6 +141,36 @@ def drive_level_test(peaks_dbfs: np.ndarray, pol: np.ndarray | None = None, snr_
     if any(np.count_nonzero(q == side) < 3 * w for side in sides):
         return [], 0, float("nan")
     series = [y] if s is None else [y, s[ok]]
+    z, size_db, wins, yc = _change_scores(series, q, sides, w)
+    cuts, p_max = _significant_cuts(z, size_db, wins, q, sides, w, alpha, min_change_db)
+    if not cuts:
+        return [], 0, p_max
+    # the medians cannot place a change to better than half their window: place each cut where a
+    # step fits the levels of both polarities best
+    cuts = [_best_step(yc, c, w) for c in cuts]
+    bounds = [0] + sorted(cuts) + [n]
+    label, cur = _level_labels(yc, bounds, min_change_db)
+    if cur == 0:
+        return [], 0, p_max
+    step_label = np.repeat(label, np.diff(bounds))
+    if _plateaus_drift(yc, q, sides, bounds, step_label, cur, w, min_change_db):
+        return [], 0, p_max
+    base = float(np.median(y))
+    levels = []
+    for lv in range(cur + 1):
+        sel = step_label == lv
+        levels.append(DriveLevel(base + float(np.median(yc[sel])), float(sel.mean()), int(sel.sum())))
+    changes = int(np.count_nonzero(np.diff(label) != 0))
+    return levels, changes, p_max
+
+
+def _change_scores(series: list[np.ndarray], q: np.ndarray, sides: list[int], w: int):
+    """At every boundary, the smallest of the series' and polarities' standardised changes of their
+    medians over ``w`` values either side (0 where they disagree in sign, or where the level over
+    the noise does not move clearly with the level), and the smallest change in dB; also each
+    polarity's (values, noise) of each series, and the level with each polarity's median removed."""
+    y = series[0]
+    n = len(y)
     yc = y.copy()
     wins: dict[int, list] = {side: [] for side in sides}  # per polarity: (values, noise) of each series
     z = np.full(n + 1, np.inf)  # the smallest standardised change at the boundary before step i
@@ -171,6 +201,14 @@ def drive_level_test(peaks_dbfs: np.ndarray, pol: np.ndarray | None = None, snr_
                 z = np.where(agree & (zz >= SNR_AGREE_Z), z, 0.0)
     z = np.nan_to_num(z, nan=0.0, posinf=0.0)
     size_db = np.nan_to_num(size_db, nan=0.0, posinf=0.0)
+    return z, size_db, wins, yc
+
+
+def _significant_cuts(z: np.ndarray, size_db: np.ndarray, wins: dict, q: np.ndarray, sides: list[int], w: int,
+                      alpha: float, min_change_db: float) -> tuple[list[int], float]:
+    """The boundaries whose change is significant (corrected for every position tried), at least
+    ``min_change_db``, abrupt in both polarities and ``2 w`` from a larger one; and the p-value of
+    the largest change."""
     npos = int(np.count_nonzero(z > 0)) or 1
 
     def p_of(v: float) -> float:
@@ -188,12 +226,12 @@ def drive_level_test(peaks_dbfs: np.ndarray, pol: np.ndarray | None = None, snr_
                 any(_abrupt(xs[max(0, i - w): i + w], sg) for xs, sg in wins[side])
                 for side in sides for i in [int(np.searchsorted(np.flatnonzero(q == side), b))]):
             cuts.append(int(b))
-    if not cuts:
-        return [], 0, p_max
-    # the medians cannot place a change to better than half their window: place each cut where a
-    # step fits the levels of both polarities best
-    cuts = [_best_step(yc, c, w) for c in cuts]
-    bounds = [0] + sorted(cuts) + [n]
+    return cuts, p_max
+
+
+def _level_labels(yc: np.ndarray, bounds: list[int], min_change_db: float) -> tuple[np.ndarray, int]:
+    """The drive level of each segment between ``bounds`` and the highest level's number: segments
+    within ``min_change_db`` of each other (single linkage over their sorted levels) are one level."""
     seg_lv = np.array([np.median(yc[a:b]) for a, b in zip(bounds[:-1], bounds[1:])])
     # segments within min_change_db of each other (single linkage over their sorted levels): one level
     order_lv = np.argsort(seg_lv)
@@ -203,9 +241,13 @@ def drive_level_test(peaks_dbfs: np.ndarray, pol: np.ndarray | None = None, snr_
         if seg_lv[b] - seg_lv[a] >= min_change_db:
             cur += 1
         label[b] = cur
-    if cur == 0:
-        return [], 0, p_max
-    step_label = np.repeat(label, np.diff(bounds))
+    return label, cur
+
+
+def _plateaus_drift(yc: np.ndarray, q: np.ndarray, sides: list[int], bounds: list[int], step_label: np.ndarray,
+                    cur: int, w: int, min_change_db: float) -> bool:
+    """Whether a segment's level drifts along it by ``DRIFT_SHARE`` of the smallest step between
+    the levels (in either polarity)."""
     # Plateaus hold: a segment whose level drifts from its start to its end by half the smallest
     # step between the levels (a phone's gain control recovering after another sound came close to
     # the steps) is no drive level.
@@ -220,14 +262,8 @@ def drive_level_test(peaks_dbfs: np.ndarray, pol: np.ndarray | None = None, snr_
                 continue
             third = len(v) // 3
             if abs(float(np.median(v[-third:]) - np.median(v[:third]))) >= allow:
-                return [], 0, p_max
-    base = float(np.median(y))
-    levels = []
-    for lv in range(cur + 1):
-        sel = step_label == lv
-        levels.append(DriveLevel(base + float(np.median(yc[sel])), float(sel.mean()), int(sel.sum())))
-    changes = int(np.count_nonzero(np.diff(label) != 0))
-    return levels, changes, p_max
+                return True
+    return False
 
 
 def position_locked(anomaly_k: np.ndarray, span_steps: int, *, periods=(60,), min_count: int = 3) -> PositionLock | None:

@@ -12,9 +12,7 @@ A stepping motor steps on a regular grid: step k sounds at ``a + b*k``.  The tra
 from __future__ import annotations
 
 import math
-import statistics
 from collections import deque
-from dataclasses import dataclass
 
 import numpy as np
 
@@ -24,45 +22,16 @@ from .detect import Impact
 from .dsp import MovingLine, RollingWindow
 from .escapement import BeatSounds, beat_sounds, sound_offsets
 from .ringdown import step_ringdown
-from .timing import (COARSE_TIE, FIRST_IMPACT_PEAK_S, Template, coarse_lags, dominant_period, match, match_many,
-                     onset_of, refine_reach)
+from .slotsounds import slot_sounds, stands_out
+from .slottiming import PREDICTION_TIE, time_on_slots  # noqa: F401  (PREDICTION_TIE re-exported)
+from .timing import FIRST_IMPACT_PEAK_S, Template, match, onset_of
+from .trackconfig import TrackerConfig  # re-exported: pipeline.py imports it from here
 
 # A decay curve whose line misfit (RMS, dB) exceeds this share of the dB it spans bends away from one
 # exponential: a room's reverberation or noise some 10-15 dB under the peak (simulated clean ring-downs
 # stay under 0.006, with a 250 ms room 0.02-0.03; our own threshold).  Such a step's decay time is
 # kept but not judged abnormal: it describes the recording more than the motor.
 BENT_DECAY = 0.03
-
-@dataclass(frozen=True)
-class TrackerConfig:
-    acquire_s: float = 12.0  # seconds of impacts used to find the grid
-    acquire_max_s: float = 40.0  # look for a grid in at most the last 40 s of impacts
-    retry_s: float = 4.0  # while no grid is found, look again every 4 s of audio
-    min_coherence: float = 0.3  # impacts must line up at least this well
-    nominal_tolerance: float = 0.005  # measured interval within 0.5 % of a quartz interval
-    slot_tolerance_s: float = 0.025  # a step lies within 25 ms of its predicted time
-    cluster_s: float = 0.12  # impacts up to 120 ms after a step are part of its sound
-    burst_cluster_s: float = 0.35  # the same for step intervals of 2 s and more (bursts)
-    min_match: float = 0.3  # below this correlation a sound is not this movement's step
-    good_match: float = 0.6  # steps below this are flagged and kept out of the rate fit
-    template_steps: int = 24  # steps per polarity averaged into a template
-    track_steps: int = 32  # steps in the moving line fit that predicts the next slot
-    weak_db: float = 9.0  # a step this much quieter than usual is a failed step (a twitch)
-    correction_min_s: float = 0.008  # a correction pulse follows a failed step after 8 ...
-    correction_max_s: float = 0.085  # ... to 85 ms
-    twitch_s: float = 0.005  # a failed step's twitch sounds within 5 ms of its slot
-    # the grid is looked for again when, over the last regrid_window_s of slots, at most this
-    # share held any sound while other sounds went on (the clock followed stopped, or
-    # was not the movement: our own margins; a failing motor that misses 40 % of its steps keeps
-    # its grid, since no other grid is found among the sounds off it)
-    regrid_window_s: float = 8.0
-    regrid_matched_share: float = 0.6
-    regrid_coverage: float = 0.7  # a new grid must hold a matched step in this share of its slots
-
-
-#: the correlation margin by which the attack's lobe must beat the predicted one to be taken (the
-#: near-tie margin of earlier versions, which resolved near-tied lobes by the prediction alone)
-PREDICTION_TIE = 0.03
 
 
 class StepTracker:
@@ -199,72 +168,10 @@ class StepTracker:
 
     # -- tracking ------------------------------------------------------------------------
     def _time_many(self, opens: list[OpenImpact]) -> None:
-        """Time impacts against their slots' templates (the slot from the frame-level time)."""
-        if not opens:
-            return
-        slots = [int(round((o.t_s - self._a) / self._b)) for o in opens]
-        pols = [k % 2 if k >= 0 else 0 for k in slots]
-        lag = np.zeros(len(opens))
-        rho = np.zeros(len(opens))
-        lift = np.full(len(opens), np.nan)
-        # Near-tied correlation lobes (a ring's carrier: one a cycle) are settled by where the step
-        # should be, from two witnesses: the step's own attack (timing.coarse_lags: coarse, but it
-        # sees the sound begin), and, once the grid is well known, the slot's predicted time (with
-        # this polarity's offset).  Where they point to different lobes, the prediction's wins unless
-        # the attack's matches clearly better (by PREDICTION_TIE): noise can lift a neighbouring cycle
-        # over the true one (the attack then still points right), a ring sampled two or three times
-        # a cycle can fool the attack (the prediction then still points right), and a logic-
-        # regulation correction moves a step by ms from its prediction (its own lobe, which the
-        # attack finds, then matches clearly best).
-        tracked = len(self._fit) >= 8
-        max_lag = int(0.003 * self.samplerate)
-        for pol in set(pols):
-            idx = np.array([i for i, q in enumerate(pols) if q == pol])
-            rows = np.stack([opens[i].imp.wsnippet for i in idx])
-            tmpl = self.templates[pol]
-            coarse, _ = coarse_lags(rows, tmpl, self.samplerate, max_lag=max_lag)
-            reach = refine_reach(tmpl, self.samplerate)
-            lag[idx], rho[idx] = match_many(rows, tmpl, max_lag=max_lag, prefer=coarse, tie=COARSE_TIE, refine=reach)
-            if tracked:
-                pred = np.array([(self.predict(slots[i]) + self._pol_offset(slots[i])) * self.samplerate
-                                 - opens[i].imp.snippet_start - tmpl.onset_index for i in idx])
-                lag_p, rho_p = match_many(rows, tmpl, max_lag=max_lag, prefer=pred, tie=COARSE_TIE, refine=reach)
-                half = 0.5 * dominant_period(tmpl, self.samplerate)
-                # (and only where the prediction points at its lobe: within a third of a cycle)
-                take = ((np.abs(lag_p - lag[idx]) >= half) & (rho_p >= rho[idx] - PREDICTION_TIE)
-                        & (np.abs(lag_p - pred) < 2.0 * half / 3.0))
-                if reach > 0:
-                    # a ring sampled under five times a cycle: its attack cannot tell one cycle from the
-                    # next (the attack's own lobes are as ambiguous), so the prediction alone settles
-                    # near-ties, within PREDICTION_TIE (as before there was an attack to ask)
-                    lag_p, rho_p = match_many(rows, tmpl, max_lag=max_lag, prefer=pred, tie=PREDICTION_TIE,
-                                              refine=reach)
-                    take = np.ones(len(idx), dtype=bool)
-                lag[idx] = np.where(take, lag_p, lag[idx])
-                rho[idx] = np.where(take, rho_p, rho[idx])
-            lift[idx] = self._lift_s(rows, lag[idx], pol)
-        for i, o in enumerate(opens):
-            k = slots[i]
-            tmpl = self.templates[pols[i]]
-            lag_i, rho_i = float(lag[i]), float(rho[i])
-            expect = int(round(self.predict(k) * self.samplerate - o.imp.snippet_start - tmpl.onset_index))
-            if abs(expect) <= 0.010 * self.samplerate and (rho_i < 0.95 or abs(lag_i - expect) > 0.0003 * self.samplerate):
-                # The frame-level onset can be several ms early (a faint sound just before the step
-                # started the frame) and the search around it then finds only a side lobe: search
-                # around the slot's predicted time as well and keep the better match.
-                row = o.imp.wsnippet[None, :]
-                ml2 = int(0.002 * self.samplerate)
-                pref2, _ = coarse_lags(row, tmpl, self.samplerate, max_lag=ml2, center=expect)
-                lag2, rho2 = match_many(row, tmpl, max_lag=ml2, center=expect, prefer=pref2, tie=COARSE_TIE,
-                                        refine=refine_reach(tmpl, self.samplerate))
-                if rho2[0] > rho_i + 0.05:
-                    lag_i, rho_i = float(lag2[0]), float(rho2[0])
-                    lift[i] = self._lift_s(row, lag_i, pols[i])
-            o.t_s = (o.imp.snippet_start + tmpl.onset_index + lag_i) / self.samplerate
-            o.match = rho_i
-            o.slot = k
-            o.match_any = rho_i  # raised against the other polarity only when the sound is not a step (_event)
-            o.lift_s = float(lift[i])
+        """Time impacts against their slots' templates (the slot from the frame-level time; see
+        slottiming.time_on_slots)."""
+        time_on_slots(opens, a=self._a, b=self._b, templates=self.templates, samplerate=self.samplerate,
+                      tracked=len(self._fit) >= 8, pol_offset=self._pol_offset, lift_s=self._lift_s)
 
     def _lift_s(self, rows: np.ndarray, lags, pol: int):
         """An escapement's beats of several sounds: from each row's first sound to its drop (s), each
@@ -378,85 +285,10 @@ class StepTracker:
         return out
 
     def _slot_sounds(self, in_slot: list[OpenImpact], pred: float):
-        """(step, failed, correction) among the impacts of a slot (each may be None).
-
-        A failed step is a twitch: a weak sound on the slot (``weak_db`` under the steps' usual
-        level) that stands above the noise's own blips (:meth:`_stands_out`), with no step; some
-        circuits then send a stronger correction pulse 15-85 ms later, which steps the rotor (as
-        loud as a step).  A rotor that fell back can also sound like a step: then only a correction
-        pulse tells, a sound louder than any step 15-85 ms after it (the correction pulse is wider
-        than the drive).  A weak sound just before a step (within 15 ms) is part of that step: a
-        lossy codec's pre-echo, a first contact -- not a twitch.
-        """
-        cfg = self.cfg
-        # A weak sound this close before a step is part of it (a lossy codec's pre-echo reaches back
-        # a frame, ~13 ms for MP3 at 44.1 kHz; a correction pulse comes later: 25-45 ms in the
-        # adaptive drives we know of; our own margin) (s) ...
-        PRECURSOR_S = 0.015
-        # ... and a correction pulse steps the rotor: its sound is this much louder than the twitch (dB),
-        # or, after a twitch as loud as a step, this much louder than the steps (our own margins)
-        CORRECTION_OVER_TWITCH_DB = 6.0
-        CORRECTION_OVER_STEP_DB = 6.0
-        cands = [o for o in in_slot if o.match >= cfg.min_match]
+        """(step, failed, correction) among the impacts of a slot (each may be None; see
+        core/slotsounds.py)."""
         typical = self._peaks.median() if len(self._peaks) >= 8 else None
-
-        def weak_sound(o) -> bool:
-            return typical is not None and o.imp.peak_dbfs < typical - cfg.weak_db
-
-        step = None
-        if cands:
-            best = max(o.match for o in cands)
-            good = [o for o in cands if o.match >= best - 0.1]
-            # two impacts timed within 2 ms of each other are one sound (the snippet of a faint
-            # sound just before a step holds the step too): keep the louder impact
-            good = [o for o in good if not any(abs(p.t_s - o.t_s) < 0.002 and (p.imp.peak_dbfs, p.match) >
-                                               (o.imp.peak_dbfs, o.match) for p in good)]
-            step = min(good, key=lambda o: o.t_s)
-            # a weak sound that a step follows closely is that step's precursor (pre-echo)
-            later = [o for o in good if 0 < o.t_s - step.t_s <= PRECURSOR_S and not weak_sound(o)]
-            if weak_sound(step) and later:
-                step = min(later, key=lambda o: o.t_s)
-        failed = correction = None
-        # a twitching rotor sounds on the grid (the drive pulse is on time): within twitch_s
-        # (our reasoning from how the circuit drives the motor; no published tolerance)
-        twitch_s = cfg.twitch_s
-        late_s = max(cfg.correction_min_s, PRECURSOR_S)
-        weak = step is not None and weak_sound(step)
-        if step is not None and step.t_s - pred > late_s:
-            # the step came late: a correction pulse after a twitch on the slot, if there was one
-            early = [o for o in in_slot if o.t_s < step.t_s - late_s and abs(o.t_s - pred) <= twitch_s
-                     and weak_sound(o)]
-            if early and not weak and step.match >= cfg.good_match:
-                failed, correction, step = min(early, key=lambda o: o.t_s), step, None
-            elif weak:
-                step = None  # a faint sound off the grid (a quiet room's noise): no step here
-        elif weak:
-            if abs(step.t_s - pred) <= twitch_s:
-                failed, step = step, None
-            else:
-                step = None
-        elif step is not None and typical is not None and abs(step.t_s - pred) <= twitch_s:
-            # a rotor that fell back can sound like a step; the correction pulse that then turns it is
-            # wider than the drive and sounds louder than any step (CORRECTION_OVER_STEP_DB)
-            cors = [o for o in self._open if step.t_s + late_s <= o.t_s <= step.t_s + cfg.correction_max_s
-                    and o.match >= cfg.good_match and o.imp.peak_dbfs >= typical + CORRECTION_OVER_STEP_DB
-                    and step.imp.peak_dbfs < typical + CORRECTION_OVER_STEP_DB / 2]
-            if cors:
-                failed, correction, step = step, min(cors, key=lambda o: o.t_s), None
-        if step is None and typical is not None:
-            if failed is None:
-                near = [o for o in in_slot if abs(o.t_s - pred) <= twitch_s and weak_sound(o)]
-                if near:
-                    failed = min(near, key=lambda o: o.t_s)
-            if failed is not None and correction is None:
-                cors = [o for o in self._open if failed.t_s + late_s <= o.t_s <= failed.t_s + cfg.correction_max_s
-                        and o.match >= cfg.good_match and not weak_sound(o)
-                        and o.imp.peak_dbfs >= failed.imp.peak_dbfs + CORRECTION_OVER_TWITCH_DB]
-                if cors:
-                    correction = min(cors, key=lambda o: o.t_s)
-            if failed is not None and not self._stands_out(failed, pred):
-                failed = correction = None  # as loud as the noise's own blips around it: no evidence of a twitch
-        return step, failed, correction
+        return slot_sounds(in_slot, pred, self._open, self.cfg, typical, self._stands_out)
 
     def _maybe_regrid(self, now_s: float) -> list[Event]:
         """After the slot at ``now_s``: look for the grid again when its steps have (mostly) vanished
@@ -591,24 +423,9 @@ class StepTracker:
         return res.median() if len(res) >= 4 else 0.0
 
     def _stands_out(self, o: OpenImpact, pred: float) -> bool:
-        """Whether a weak sound at a slot stands above the off-grid sounds of the seconds before it.
-
-        Where a phone's gain control lifts the noise while the movement is silent, the noise
-        itself starts an impact every few tens of ms; a twitch must be louder than every one of
-        those heard in the two seconds before it, and 6 dB over their median (our own margin, set
-        from the sweep of simulated phone recordings): with n such sounds, a blip of the same
-        noise would be the loudest by chance once in n + 1.
-        (Not those after it: the silence after a failed step lets the gain rise, whatever the
-        twitch was.)  With fewer than three such sounds before it (a quiet room, or a gain that
-        had not yet risen) any weak sound on the slot that sounds like a step counts.
-        """
-        TWITCH_NOISE_S = 2.0  # the noise's blips a twitch must stand above: those of the seconds before (s)
-        lo, hi = pred - TWITCH_NOISE_S, pred - self.cfg.slot_tolerance_s
-        levels = [p for t, p in self._offgrid if lo <= t < hi]  # rejected already
-        levels += [q.imp.peak_dbfs for q in self._open if lo <= q.t_s < hi and q is not o]  # to be rejected with this slot
-        if len(levels) < 3:
-            return True
-        return o.imp.peak_dbfs > max(levels) and o.imp.peak_dbfs >= statistics.median(levels) + 6.0
+        """Whether a weak sound at a slot stands above the off-grid sounds of the seconds before it
+        (see slotsounds.stands_out)."""
+        return stands_out(o, pred, self._offgrid, self._open, self.cfg.slot_tolerance_s)
 
     def _in_gap(self, t: float) -> bool:
         return any(a - 0.03 <= t <= b + 0.03 for a, b in self._gaps)

@@ -35,7 +35,7 @@ def ringdown_line(x: np.ndarray, samplerate: float, noise_power: float, start_db
 
 def newton_peaks(C: np.ndarray, tau: np.ndarray, val: np.ndarray, w: np.ndarray, w1: np.ndarray, w2: np.ndarray,
                  nfft: int, iters: int) -> None:
-    """The compiled Newton refinement of :func:`tickscope.core.timing._newton_peaks` (tau updated
+    """The compiled Newton refinement of :func:`tickscope.core.corrpeaks._newton_peaks` (tau updated
     and val filled in place).  Only call when :func:`compiled` is true."""
     _c.newton_peaks(C, tau, val, w, w1, w2, int(nfft), int(iters))
 
@@ -65,7 +65,7 @@ def match_pick(c: np.ndarray, C: np.ndarray, xp: np.ndarray, l0: int, n_lags: in
                pref: np.ndarray | None, energy: float, w: np.ndarray, w1: np.ndarray, w2: np.ndarray, nfft: int,
                iters: int, tau: np.ndarray, val: np.ndarray, rho: np.ndarray, tie: float = 0.03,
                refine: float = 0.0) -> None:
-    """The compiled :func:`tickscope.core.timing._pick_numpy` (c float32 and C complex64 rows;
+    """The compiled :func:`tickscope.core.corrpeaks._pick_numpy` (c float32 and C complex64 rows;
     tau, val and rho filled in place).  Only call when :func:`compiled` is true."""
     _c.match_pick(c, C, xp, int(l0), int(n_lags), int(nt), int(width),
                   None if pref is None else np.ascontiguousarray(pref, dtype=np.float64), float(energy),

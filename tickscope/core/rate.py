@@ -185,6 +185,28 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     sxx, span_steps = _spread_of_steps(kk, gg, sw)
     dof = max(n - 1 - n_groups - int(polarity_term), 1)
     s2 = float(np.sum(res**2)) / dof
+    var_b, n_eff, rho = _slope_variance(kk, gg, sw, res, res_t, s2, sxx, span_steps)
+    rate, ci = _rate_and_ci(b, var_b, n_eff, nominal_interval_s, clock_ppm, clock_ppm_u95, min_ci_s_per_day)
+    return RateEstimate(
+        rate_s_per_day=float(rate),
+        ci95_s_per_day=float(ci),
+        interval_s=float(b),
+        n_steps=int(n),
+        n_outliers=int(len(k) - n),
+        span_s=float(tt.max() - tt.min()),
+        jitter_us=float(math.sqrt(np.mean(res_t**2)) * 1e6),
+        residual_correlation=rho,
+        clock_correction_ppm=float(clock_ppm),
+        polarity_offset_us=float(c * 1e6),
+    )
+
+
+def _slope_variance(kk: np.ndarray, gg: np.ndarray | None, sw: np.ndarray | None, res: np.ndarray,
+                    res_t: np.ndarray, s2: float, sxx: float, span_steps: float) -> tuple[float, float, float]:
+    """The variance of the fitted interval (s^2), the steps' effective number and the residuals'
+    lag-one correlation: white residuals inflated by their correlation, or the phase-plus-frequency
+    view, or the batch means, whichever is the largest where it applies."""
+    n = len(kk)
     order = np.argsort(kk, kind="stable") if gg is None else np.lexsort((kk, gg))
     kk_o, res_o = kk[order], res[order]
     same = np.ones(len(kk_o) - 1, dtype=bool) if gg is None else np.diff(gg[order]) == 0
@@ -205,6 +227,13 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
         if var_bm > BATCH_VIEW_F * var_b:
             var_b = var_bm
             n_eff = float(BATCHES)
+    return var_b, n_eff, rho
+
+
+def _rate_and_ci(b: float, var_b: float, n_eff: float, nominal_interval_s: float, clock_ppm: float,
+                 clock_ppm_u95: float, min_ci_s_per_day: float) -> tuple[float, float]:
+    """The daily rate (s/day) of the fitted interval ``b`` (s) and its 95 % half-width, the device
+    clock's correction and its uncertainty included."""
     q = dsp.t_ppf(0.975, max(n_eff - 2, 1))
     se_b = math.sqrt(var_b)
     scale = 1.0 + clock_ppm * 1e-6
@@ -213,18 +242,7 @@ def fit_rate(steps: np.ndarray, times_s: np.ndarray, nominal_interval_s: float, 
     ci_fit = q * se_b * SECONDS_PER_DAY * nominal_interval_s * scale / b**2
     ci_clock = clock_ppm_u95 * 1e-6 * SECONDS_PER_DAY
     ci = max(math.hypot(ci_fit, ci_clock), min_ci_s_per_day)
-    return RateEstimate(
-        rate_s_per_day=float(rate),
-        ci95_s_per_day=float(ci),
-        interval_s=float(b),
-        n_steps=int(n),
-        n_outliers=int(len(k) - n),
-        span_s=float(tt.max() - tt.min()),
-        jitter_us=float(math.sqrt(np.mean(res_t**2)) * 1e6),
-        residual_correlation=rho,
-        clock_correction_ppm=float(clock_ppm),
-        polarity_offset_us=float(c * 1e6),
-    )
+    return rate, ci
 
 
 def _spread_of_steps(kk: np.ndarray, gg: np.ndarray | None, sw: np.ndarray | None) -> tuple[float, float]:

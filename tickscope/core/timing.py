@@ -11,12 +11,15 @@ first reaches ``onset_fraction`` of its peak, i.e. the first impact of the step.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
+
 from ..errors import ParameterError
 from . import dsp, kernels
-
+# re-exported: the step grid, the escapement's timing, the tests and the compiled kernels' notes
+# import these from here
+from .coarsetiming import ATTACK_S, COARSE_TIE, attack_template, coarse_lags, dominant_period, refine_reach  # noqa: F401
+from .corrpeaks import _newton_peaks, _newton_weights, _pick_numpy, _rotate  # noqa: F401
+from .steptemplate import Template, _template_spectrum, _window_span  # noqa: F401
 
 #: the first impact's envelope peaks this soon after its coarse onset (an attack of a few ms;
 #: our own choice, wide enough for the simulator's and typical movements' attacks)
@@ -39,25 +42,6 @@ ARRIVAL_LEVEL = 0.5
 #: The arrival is also found at these levels: if the two polarities' rises differ in shape,
 #: their arrivals differ by level, and that difference bounds how well they share a reference.
 ARRIVAL_CHECK_LEVELS = (0.3, 0.7)
-
-
-@dataclass(frozen=True)
-class Template:
-    """The average sound of one polarity, aligned, in snippet coordinates.  Its time reference,
-    ``onset_index``, is the arrival of its first impact (:func:`first_arrival`)."""
-
-    wave: np.ndarray  # float64, same length and origin as the snippets it came from
-    onset_index: float  # sub-sample index of the first impact's onset in `wave`
-    window: np.ndarray  # taper applied to `wave` for matching (zero outside the window)
-    n_used: int  # snippets averaged
-    energy: float  # sum of squares of the windowed template
-    #: the arrival found at other levels of the first peak (ARRIVAL_CHECK_LEVELS): how much the
-    #: time reference depends on the level chosen (same indices as onset_index)
-    arrival_checks: tuple[float, ...] = ()
-
-    @property
-    def matched(self) -> np.ndarray:
-        return self.wave * self.window
 
 
 def _envelope(x: np.ndarray, samplerate: float, smooth_s: float = 0.0) -> np.ndarray:
@@ -143,78 +127,6 @@ def rising_crossing(env: np.ndarray, peak: int, lo: int, level: float) -> float:
     return float(i - 1 + (thr - env[i - 1]) / (env[i] - env[i - 1]))
 
 
-_NEWTON_WEIGHTS: dict[tuple[int, int], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
-
-
-def _newton_weights(nbins: int, nfft: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-bin weights of the real-signal sum (1 at DC and Nyquist, 2 between), times w and w^2."""
-    key = (nbins, nfft)
-    got = _NEWTON_WEIGHTS.get(key)
-    if got is None:
-        w = np.full(nbins, 2.0)
-        w[0] = 1.0
-        if nfft % 2 == 0:
-            w[-1] = 1.0
-        wk = 2 * np.pi * np.arange(nbins) / nfft
-        got = _NEWTON_WEIGHTS[key] = (w, w * wk, w * wk * wk)
-    return got
-
-
-def _rotate(C: np.ndarray, tau: np.ndarray, nfft: int) -> np.ndarray:
-    """Rows C[r, k] * exp(2 pi i k tau[r] / nfft): the phase ramps by running products (a complex
-    exp per bin costs twice as much; the products' rounding error stays near k * 1e-16)."""
-    ramp = np.repeat(np.exp(2j * np.pi * tau / nfft)[:, None], C.shape[1], axis=1)
-    ramp[:, 0] = 1.0
-    return C * np.cumprod(ramp, axis=1)
-
-
-def _newton_peaks(C: np.ndarray, nfft: int, tau0: np.ndarray, iters: int = 6, *,
-                  use_compiled: bool = True) -> tuple[np.ndarray, np.ndarray]:
-    """Refine the maxima of the correlations whose spectra are the rows of C (rfft bins), each
-    near its own lag tau0[r].  Returns the lags and the correlation values there."""
-    w, w1, w2 = _newton_weights(C.shape[1], nfft)
-    tau = np.array(tau0, dtype=np.float64)
-    if use_compiled and kernels.compiled():  # the same iteration in C, row by row (``_kernels.c``)
-        val = np.empty(len(tau))
-        kernels.newton_peaks(np.ascontiguousarray(C, dtype=np.complex128), tau, val, w, w1, w2, nfft, iters)
-        return tau, val
-    live = np.ones(len(tau), dtype=bool)
-    for _ in range(iters):
-        idx = np.flatnonzero(live)
-        if not len(idx):
-            break
-        ph = _rotate(C[idx], tau[idx], nfft)
-        d1 = -(ph.imag @ w1)
-        d2 = -(ph.real @ w2)
-        ok = d2 < 0  # past a maximum's concave part: stop there
-        step = np.clip(-d1 / np.where(ok, d2, -1.0), -0.5, 0.5)
-        tau[idx[ok]] += step[ok]
-        live[idx[~ok | (np.abs(step) < 1e-6)]] = False
-    val = (_rotate(C, tau, nfft).real @ w) / nfft
-    return tau, val
-
-
-def _window_span(template: Template) -> tuple[int, int]:
-    """First and one-past-last index of the template's matching window (cached on the template)."""
-    span = template.__dict__.get("_span")
-    if span is None:
-        nz = np.flatnonzero(template.window)
-        if not len(nz):
-            raise ParameterError("template window is empty")
-        span = template.__dict__["_span"] = (int(nz[0]), int(nz[-1]) + 1)
-    return span
-
-
-def _template_spectrum(template: Template, s0: int, s1: int, nfft: int) -> np.ndarray:
-    """conj(rfft) of the template's windowed part, cached on the template (it never changes)."""
-    cache = template.__dict__.setdefault("_spectra", {})
-    key = (s0, s1, nfft)
-    spec = cache.get(key)
-    if spec is None:
-        spec = cache[key] = np.conj(np.fft.rfft(template.matched[s0:s1], nfft)).astype(np.complex64)
-    return spec
-
-
 def match(snippet: np.ndarray, template: Template, *, max_lag: int, center: int = 0) -> tuple[float, float]:
     """Best lag (samples, sub-sample) of ``snippet`` against ``template`` and the correlation coefficient.
 
@@ -267,172 +179,6 @@ def match_many(snippets: np.ndarray, template: Template, *, max_lag: int, center
     else:
         out_tau, out_val, rho = _pick_numpy(c, C, x, lags, nt, nfft, pref, template.energy, tie, refine)
     return a + out_tau - s0, rho
-
-
-#: Carrier lobes within this share of the best are told apart by the onset (coarse) timing: the
-#: nearest to it wins (our own margin, to be checked on recordings not made by our simulator).
-COARSE_TIE = 0.15
-#: The attack: the part of a template a step's coarse time is matched on, from its arrival (s; our
-#: own choice: a few cycles of a ring, where a one-cycle shift moves the attack off its place)
-ATTACK_S = 0.0015
-
-
-def dominant_period(template: Template, samplerate: float) -> float:
-    """The period (samples) of the strongest frequency of the template's matched part (cached)."""
-    got = template.__dict__.get("_period")
-    if got is None:
-        x = template.matched
-        n = dsp.fast_len(4 * len(x))
-        P = np.abs(np.fft.rfft(x, n))
-        P[0] = 0.0
-        f = (int(np.argmax(P)) or 1) * samplerate / n
-        got = template.__dict__["_period"] = samplerate / f
-    return got
-
-
-def attack_template(template: Template, samplerate: float) -> Template:
-    """The template cut to its attack: from a carrier period before its matching window (where a
-    sound one cycle early would show) to ``ATTACK_S`` or two periods after the sound's start,
-    whichever is longer.  Its
-    correlation lobes one carrier cycle apart differ clearly, where those of a long steady ring are
-    nearly equal; cached on the template."""
-    got = template.__dict__.get("_attack")
-    if got is None:
-        L = len(template.wave)
-        per = dominant_period(template, samplerate)
-        # from where its matching window begins (half a ms before the sound's start, as onset_of
-        # finds it), not from its arrival: the attack must hold the sound's first cycles whatever
-        # peak the arrival was taken at
-        s0, _ = _window_span(template)
-        a = max(0, int(np.floor(s0 - per)))
-        b = min(L, int(np.ceil(s0 + 0.0005 * samplerate + max(ATTACK_S * samplerate, 2 * per))))
-        w = np.zeros(L)
-        if b > a:
-            w[a:b] = dsp.tukey(b - a, 0.2)
-        got = template.__dict__["_attack"] = Template(template.wave, template.onset_index, w, template.n_used,
-                                                      float(np.sum((template.wave * w) ** 2)))
-    return got
-
-
-def refine_reach(template: Template, samplerate: float) -> float:
-    """How far below the top a correlation lobe may read and still be refined: every lobe (0.7) when
-    the template's ring is sampled under five times a cycle, whose true peaks can fall between
-    samples and read low until refined; none beyond the choice's own margin otherwise."""
-    return 0.7 if dominant_period(template, samplerate) < 5.0 else 0.0
-
-
-def coarse_lags(snippets, template: Template, samplerate: float, *, max_lag: int,
-                center: int = 0) -> tuple[np.ndarray, np.ndarray]:
-    """Each snippet's lag against ``template`` from its attack alone (:func:`attack_template`): coarse,
-    but meant to be on the right carrier cycle (domain notes 5.1: the carrier phase only after
-    coarse timing is unambiguous), in the units of :func:`match_many`; and how clearly that cycle
-    wins: one minus the normalised attack correlation one carrier period either side over its own
-    (0: the neighbouring cycles match as well, 1: they do not match at all)."""
-    rows = np.atleast_2d(np.asarray(snippets if not isinstance(snippets, list) else np.stack(snippets),
-                                    dtype=np.float64))
-    at = attack_template(template, samplerate)
-    a0, a1 = _window_span(at)
-    seg = at.matched[a0:a1]
-    per = dominant_period(template, samplerate)
-    lo = max(0, a0 + center - max_lag)
-    hi = min(rows.shape[1], a1 + center + max_lag)
-    nt = len(seg)
-    if hi - lo < nt + 2:  # the lags asked for lie (mostly) outside the snippets
-        return np.full(len(rows), np.nan), np.zeros(len(rows))
-    x = rows[:, lo:hi]
-    nfft = 1 << int(np.ceil(np.log2(max(hi - lo, 1) + nt)))
-    c = np.fft.irfft(np.fft.rfft(x, nfft, axis=1) * np.conj(np.fft.rfft(seg, nfft)), nfft, axis=1)
-    nlag = x.shape[1] - nt + 1
-    if nlag < 3:
-        return np.full(len(rows), np.nan), np.zeros(len(rows))
-    cs = np.concatenate([np.zeros((len(x), 1)), np.cumsum(x * x, axis=1)], axis=1)
-    e = cs[:, nt: nt + nlag] - cs[:, :nlag]
-    r = c[:, :nlag] / np.sqrt(np.maximum(e * float(seg @ seg), 1e-300))
-    j = np.argmax(r, axis=1)
-    ar = np.arange(len(r))
-    y0, y1, y2 = r[ar, np.clip(j - 1, 0, nlag - 1)], r[ar, j], r[ar, np.clip(j + 1, 0, nlag - 1)]
-    den = y0 - 2 * y1 + y2
-    frac = np.where(den < 0, 0.5 * (y0 - y2) / np.where(den < 0, den, -1.0), 0.0)
-    lag = lo + j + np.clip(frac, -0.5, 0.5) - a0
-    p = max(1, int(round(per)))
-    side = np.maximum(r[ar, np.clip(j - p, 0, nlag - 1)], r[ar, np.clip(j + p, 0, nlag - 1)])
-    clear = np.where(y1 > 0, 1.0 - np.maximum(side, 0.0) / np.where(y1 > 0, y1, 1.0), 0.0)
-    return lag, clear
-
-
-def _pick_numpy(c: np.ndarray, C: np.ndarray, x: np.ndarray, lags: np.ndarray, nt: int, nfft: int,
-                pref: np.ndarray | None, energy: float, tie: float = 0.03,
-                refine: float = 0.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """match_many's choice for each row of the correlations c (spectra C, searched rows x, lag
-    indices ``lags`` into c): the refined lag index and correlation there, and the correlation
-    coefficient."""
-    nrow = len(c)
-    cl = c[:, lags]
-    top = cl.max(axis=1)
-    # A ringing step's correlation oscillates at its ring frequency.  At a low sample rate
-    # (8 kHz, a 1.2 kHz ring: 6.5 samples a cycle) the true peak can fall between samples
-    # and read lower than the next cycle's, so every lobe near the top is refined and the
-    # best refined one wins (otherwise whole ring cycles slip: ~0.8 ms at 8 kHz).
-    # the lobes refined: within `reach` of the top (see match_many's refine)
-    reach = max(tie, refine)
-    bar = np.float32(max(0.1, min(0.75, 1.0 - reach - 0.05)))
-    inner = (cl[:, 1:-1] >= cl[:, :-2]) & (cl[:, 1:-1] >= cl[:, 2:]) & (cl[:, 1:-1] >= bar * top[:, None])
-    am = np.argmax(cl, axis=1)
-    # candidate lobes (row, lag index, order): the local maxima in lag order, then the
-    # highest sample when it is not one of them
-    r_in, i_in = np.nonzero(inner)
-    i_in = i_in + 1
-    has = np.zeros(nrow, dtype=bool)
-    has[r_in[i_in == am[r_in]]] = True
-    extra = np.flatnonzero(~has)
-    rows = np.concatenate([r_in, extra])
-    j = lags[np.concatenate([i_in, am[extra]])]
-    order = np.concatenate([np.arange(len(r_in)), np.full(len(extra), len(lags))])
-    # rank the lobes by their three-point parabola peaks; refine those within 3 % of the best
-    y0, y1, y2 = c[rows, j - 1], c[rows, j], c[rows, (j + 1) % nfft]
-    den = y0 - 2 * y1 + y2
-    conc = den < 0
-    safe = np.where(conc, den, -1.0)
-    pv = np.where(conc, y1 - (y0 - y2) ** 2 / (8 * safe), y1)
-    start = np.where(conc, j + 0.5 * (y0 - y2) / safe, j.astype(np.float64))
-    top_p = np.full(nrow, -np.inf)
-    np.maximum.at(top_p, rows, pv)
-    keep = pv >= top_p[rows] - reach * np.abs(top_p[rows])
-    rows, j, start, order = rows[keep], j[keep], start[keep], order[keep]
-    # Newton from the parabola's peak: two or three steps then suffice
-    tau, val = _newton_peaks(C[rows], nfft, start, iters=3)
-    wander = np.abs(tau - j) > 1.0  # Newton wandered: keep the integer peak
-    tau = np.where(wander, j.astype(np.float64), tau)
-    val = np.where(wander, c[rows, j], val)
-    # the best refined lobe of each row (the first in candidate order among equals)
-    score = -val
-    tied_first = np.zeros(len(rows), dtype=bool)
-    if pref is not None:
-        pref = pref[rows]
-        row_best = np.full(nrow, -np.inf)
-        np.maximum.at(row_best, rows, val)
-        near_tie = (val >= row_best[rows] - tie * np.abs(row_best[rows])) & np.isfinite(pref)
-        # near-ties rank by distance to the preferred lag, ahead of every other lobe of the row
-        # (a key of its own: folded into one number, an offset of -1e300 swallowed the distance)
-        score = np.where(near_tie, np.abs(tau - np.where(np.isfinite(pref), pref, 0.0)), -val)
-        tied_first = ~near_tie
-    pick = np.lexsort((order, score, tied_first, rows))
-    first = np.ones(len(pick), dtype=bool)
-    first[1:] = rows[pick][1:] != rows[pick][:-1]
-    best = pick[first]
-    out_tau = np.zeros(nrow)
-    out_val = np.zeros(nrow)
-    out_tau[rows[best]] = tau[best]
-    out_val[rows[best]] = val[best]
-    i0 = np.rint(out_tau).astype(np.int64)
-    rho = np.zeros(nrow)
-    cs = np.concatenate([np.zeros((nrow, 1)), np.cumsum(x * x, axis=1, dtype=np.float64)], axis=1)
-    ok = (i0 >= 0) & (i0 + nt <= x.shape[1])
-    r_ok = np.flatnonzero(ok)
-    seg_e = cs[r_ok, i0[r_ok] + nt] - cs[r_ok, i0[r_ok]]
-    den = np.sqrt(energy * seg_e + 1e-300)
-    rho[r_ok] = np.where(den > 0, out_val[r_ok] / den, 0.0)
-    return out_tau, out_val, rho
 
 
 def _shift(x: np.ndarray, delay) -> np.ndarray:
