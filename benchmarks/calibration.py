@@ -26,7 +26,8 @@ import numpy as np
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.dirname(HERE))
 
-from tickscope.core.clockfit import fit_device_clock, simulate_readings  # noqa: E402
+from tickscope.core.clockfit import fit_device_clock
+from tickscope.core.clocksim import simulate_readings
 
 FS = 48000
 CASES = {

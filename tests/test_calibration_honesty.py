@@ -18,7 +18,8 @@ import numpy as np
 import pytest
 
 from tickscope.cli import main
-from tickscope.core.clockfit import fit_device_clock, simulate_readings
+from tickscope.core.clockfit import fit_device_clock
+from tickscope.core.clocksim import simulate_readings
 from tickscope.io import profiles
 
 FS = 48000

@@ -72,7 +72,7 @@ def test_kernels_reject_wrong_buffers():
 @needs_compiled
 @pytest.mark.parametrize("nfft", [64, 512, 2048])
 def test_newton_peaks_matches_numpy(nfft):
-    from tickscope.core.timing import _newton_peaks
+    from tickscope.core.corrpeaks import _newton_peaks
 
     rng = np.random.default_rng(nfft)
     rows = 25
@@ -92,7 +92,7 @@ def test_newton_peaks_matches_numpy(nfft):
 
 @needs_compiled
 def test_newton_peaks_finds_known_fractional_delays():
-    from tickscope.core.timing import _newton_peaks
+    from tickscope.core.corrpeaks import _newton_peaks
 
     rng = np.random.default_rng(5)
     nfft, n = 1024, 256

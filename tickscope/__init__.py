@@ -12,7 +12,10 @@ API map
   (:func:`fit_rate`), :mod:`~.core.ringdown` (:func:`measure_ringdown`), :mod:`~.core.soundkind`
   (:func:`classify_sound`), :mod:`~.core.diagnose` (:func:`diagnose` -> :class:`~tickscope.model.Diagnosis`),
   :mod:`~.core.stability` (TIE, Allan deviation), :mod:`~.core.clockfit` (the device clock),
-  :mod:`~.core.simulate` (the movement simulator: :class:`Scenario`, :class:`Renderer`).
+  :mod:`~.core.simulate` (the movement simulator: :class:`Scenario`, :class:`Renderer`),
+  :mod:`~.core.escapement` (:func:`escapement_figures`: beat rate, asymmetry, amplitude),
+  :mod:`~.core.beatsounds` (the sounds within a beat), :mod:`~.core.escapesim` (the escapement
+  simulator: :class:`EscapementScenario`).
 * :mod:`tickscope.advice` - the plain-words notes and reading built from the figures.
 * :mod:`tickscope.io` - audio files, live capture, the log database, clock profiles.
 * :mod:`tickscope.ui` - the terminal report, live screens and plots.

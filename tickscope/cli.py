@@ -64,7 +64,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--steps-csv", metavar="PATH", help="write one row per detected event to this CSV file")
     a.add_argument("--plot", metavar="PNG", help="draw the timing residuals and ring-downs to this PNG file")
 
-    d = sub.add_parser("devices", parents=[par["json"]], help="list audio input devices",
+    sub.add_parser("devices", parents=[par["json"]], help="list audio input devices",
                        description="List the audio input devices PortAudio can use: index, name, host API, default "
                        "sample rate, channels; * marks the default.")
 

@@ -16,10 +16,12 @@ from . import advice
 from .core.detect import ESCAPEMENT_PRE_S, DetectorConfig, ImpactDetector
 from .core.diagnose import diagnose
 from .core.faults import polarity_asymmetry
-from .core.grid import StepTracker, TrackerConfig
+from .core.grid import StepTracker
+from .core.trackconfig import TrackerConfig
 from .core.quality import mains_hum
 from .core.rate import fit_rate, level_shifts, residuals_s, stretch_weights
-from .core.ringdown import AbnormalJudge, CoherentDecay, ringdown_stats
+from .core.coherentdecay import CoherentDecay
+from .core.ringdown import AbnormalJudge, ringdown_stats
 from .core.escapement import check_escapement_options, escapement_figures, lift_resolved, nominal_beats
 from .core.soundkind import classify_sound
 from .errors import ParameterError

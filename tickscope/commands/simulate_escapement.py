@@ -101,7 +101,7 @@ def add_escapement_options(parser: argparse.ArgumentParser) -> None:
             g.add_argument(_opt(f.name), dest=f.name, action=argparse.BooleanOptionalAction, default=None,
                            help=helptext)
         elif f.name == "pendulum_escapement":
-            from ..core.escapesim import PENDULUM_ESCAPEMENTS
+            from ..core.escapechecks import PENDULUM_ESCAPEMENTS
 
             g.add_argument(_opt(f.name), dest=f.name, choices=PENDULUM_ESCAPEMENTS, default=None, help=helptext)
         elif isinstance(default, str):

@@ -22,9 +22,11 @@ from ..model import Bursts
 from .beatsides import _beats_apart
 from .burstpattern import _burst_pattern
 from .detect import Impact
-from .stepinterval import QUARTZ_INTERVALS_S, _grow_period, _step_phase, find_interval, nominal_interval  # noqa: F401  (QUARTZ_INTERVALS_S re-exported)
+from .stepinterval import _grow_period, _step_phase, find_interval, nominal_interval
 from .steppicks import _grid_line, _pick_steps, impact_weights
-from .timing import COARSE_TIE, Template, coarse_lags, learn_template, match_many
+from .coarsetiming import COARSE_TIE, coarse_lags
+from .steptemplate import Template
+from .timing import learn_template, match_many
 
 if TYPE_CHECKING:
     from .trackconfig import TrackerConfig

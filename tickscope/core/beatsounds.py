@@ -14,7 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import dsp
-from .timing import Template, _envelope, match_many, rising_crossing
+from .steptemplate import Template
+from .timing import _envelope, match_many, rising_crossing
 
 #: A lift lasts from (A = 360, LA = 20) 0.9 % to (A = 120, LA = 80) 10.8 % of the balance period
 #: (balance.lift_time_s): sounds are looked for within this share of the period after the first.

@@ -7,7 +7,8 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from ..model import Bursts
-from .timing import Template, match
+from .steptemplate import Template
+from .timing import match
 
 if TYPE_CHECKING:
     from .acquire import OpenImpact

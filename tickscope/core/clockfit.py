@@ -46,10 +46,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .clockadc import ADC_SETTLE_S, _adc_line  # noqa: F401  (ADC_SETTLE_S re-exported)
-from .clockbreaks import MIN_SHIFT_S, _block_kind, _find_breaks, _least_delayed  # noqa: F401  (MIN_SHIFT_S re-exported)
-from .clocksim import simulate_readings  # noqa: F401  (re-exported: tests and benchmarks import it from here)
-from .clockspread import FLOOR_WANDER_S, FLOOR_WANDER_TIME_S, _line_ci  # noqa: F401  (constants re-exported)
+from .clockadc import _adc_line
+from .clockbreaks import _block_kind, _find_breaks, _least_delayed
+from .clockspread import _line_ci
 from ..errors import ParameterError
 from ..units import s_per_day_to_ppm
 

@@ -24,7 +24,7 @@ import numpy as np
 
 from . import dsp
 from .balance import amplitude_from_lift_time
-from .beatsounds import BeatSounds, beat_sounds, sound_offsets  # noqa: F401  (beat_sounds, sound_offsets: re-exported)
+from .beatsounds import BeatSounds
 
 if TYPE_CHECKING:
     from ..model import Knocking, Stop, WheelPattern

@@ -48,7 +48,7 @@ import numpy as np
 
 from ..errors import ParameterError
 from .balance import circular_error_factor, lift_time_s
-from .escapechecks import PENDULUM_ESCAPEMENTS, _bad, check_scenario  # noqa: F401 (PENDULUM_ESCAPEMENTS: the option list)
+from .escapechecks import _bad, check_scenario
 from .soundscape import (EventMixer, RecordingChain, SoundEvent, band_limit, modal_waveform, peak_level,
                        room_impulse_response, room_transients, second_clock_events)
 

@@ -20,18 +20,13 @@ from ..model import Bursts, Event
 from .acquire import Grid, OpenImpact, find_grid
 from .detect import Impact
 from .dsp import MovingLine, RollingWindow
-from .escapement import BeatSounds, beat_sounds, sound_offsets
+from .beatsounds import BeatSounds, beat_sounds, sound_offsets
 from .ringdown import step_ringdown
 from .slotsounds import slot_sounds, stands_out
-from .slottiming import PREDICTION_TIE, time_on_slots  # noqa: F401  (PREDICTION_TIE re-exported)
-from .timing import FIRST_IMPACT_PEAK_S, Template, match, onset_of
-from .trackconfig import TrackerConfig  # re-exported: pipeline.py imports it from here
-
-# A decay curve whose line misfit (RMS, dB) exceeds this share of the dB it spans bends away from one
-# exponential: a room's reverberation or noise some 10-15 dB under the peak (simulated clean ring-downs
-# stay under 0.006, with a 250 ms room 0.02-0.03; our own threshold).  Such a step's decay time is
-# kept but not judged abnormal: it describes the recording more than the motor.
-BENT_DECAY = 0.03
+from .slottiming import time_on_slots
+from .steptemplate import Template
+from .timing import FIRST_IMPACT_PEAK_S, match, onset_of
+from .trackconfig import TrackerConfig
 
 
 class StepTracker:

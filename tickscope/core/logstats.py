@@ -34,7 +34,6 @@ from .logphase import polarity_offset_s, phase_figures
 from .rate import fit_rate, level_shifts, stretch_weights
 from .regulation import unseen_correction_ci95_s_per_day
 from ..model import FLAG_BITS, KIND_CODES
-from ..units import SECONDS_PER_DAY
 
 KIND_STEP, KIND_MISSED, KIND_FAILED, KIND_CORRECTION, KIND_REJECTED = (
     KIND_CODES[k] for k in ("step", "missed", "failed", "correction", "rejected"))

@@ -19,10 +19,10 @@ import numpy as np
 from ..model import RingDownStats
 from ..units import DB_PER_NEPER
 from . import kernels
-from .coherentdecay import CoherentDecay, CoherentResult  # noqa: F401  (re-exported: pipeline.py imports CoherentDecay from here)
+from .coherentdecay import CoherentDecay
 from .dsp import RollingWindow
-from .humremoval import EDGE_S, remove_hum, ring_frequency_hz  # noqa: F401  (ring_frequency_hz re-exported)
-from .stepdecay import BENT_SHARE, StepDecay, window_decay  # noqa: F401  (BENT_SHARE re-exported)
+from .humremoval import EDGE_S, remove_hum
+from .stepdecay import StepDecay, window_decay
 
 
 @dataclass(frozen=True)

@@ -10,7 +10,9 @@ from typing import Callable
 import numpy as np
 
 from .acquire import OpenImpact
-from .timing import COARSE_TIE, Template, coarse_lags, dominant_period, match_many, refine_reach
+from .coarsetiming import COARSE_TIE, coarse_lags, dominant_period, refine_reach
+from .steptemplate import Template
+from .timing import match_many
 
 #: the correlation margin by which the attack's lobe must beat the predicted one to be taken (the
 #: near-tie margin of earlier versions, which resolved near-tied lobes by the prediction alone)

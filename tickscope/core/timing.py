@@ -15,11 +15,9 @@ import numpy as np
 
 from ..errors import ParameterError
 from . import dsp, kernels
-# re-exported: the step grid, the escapement's timing, the tests and the compiled kernels' notes
-# import these from here
-from .coarsetiming import ATTACK_S, COARSE_TIE, attack_template, coarse_lags, dominant_period, refine_reach  # noqa: F401
-from .corrpeaks import _newton_peaks, _newton_weights, _pick_numpy, _rotate  # noqa: F401
-from .steptemplate import Template, _template_spectrum, _window_span  # noqa: F401
+from .coarsetiming import COARSE_TIE, coarse_lags
+from .corrpeaks import _newton_weights, _pick_numpy
+from .steptemplate import Template, _template_spectrum, _window_span
 
 #: the first impact's envelope peaks this soon after its coarse onset (an attack of a few ms;
 #: our own choice, wide enough for the simulator's and typical movements' attacks)

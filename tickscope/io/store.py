@@ -40,7 +40,7 @@ from ..errors import StoreError
 from ..model import KIND_CODES, flag_bits
 from .logerror import _store_error
 from .loglock import WriterLock, _unlink
-from .logschema import _COLUMNS, _FIELDS, _SCHEMA, SCHEMA_VERSION, Segment  # noqa: F401  (Segment re-exported)
+from .logschema import _COLUMNS, _FIELDS, _SCHEMA, SCHEMA_VERSION, Segment
 
 BLOCK_WINDOW_S = 10.0
 
