@@ -51,7 +51,7 @@ from .balance import circular_error_factor, lift_time_s
 from .escapechecks import check_scenario
 from .escapemotion import _uniform_intervals, beat_motion
 from .soundscape import (EventMixer, RecordingChain, SoundEvent, band_limit, modal_waveform, peak_level,
-                       room_impulse_response, room_transients, second_clock_events)
+                         render_chunks, room_impulse_response, room_transients, second_clock_events)
 
 SNR_WINDOW_S = 0.010  # as the quartz simulator: SNR on the first 10 ms of a beat
 ESCAPE_RISE_S = 0.04e-3  # attack of a steel-on-steel click (40 us; our own choice)
@@ -373,10 +373,4 @@ class EscapementRenderer:
 def render_all(sc: EscapementScenario, chunk: int = 1 << 16) -> tuple[np.ndarray, dict]:
     """The whole recording at once (for short scenarios): array [n, channels] and truth."""
     r = EscapementRenderer(sc)
-    parts = []
-    while True:
-        x = r.render(chunk)
-        if not len(x):
-            break
-        parts.append(x)
-    return (np.concatenate(parts) if parts else np.zeros((0, sc.channels))), r.truth
+    return render_chunks(r, sc.channels, chunk), r.truth

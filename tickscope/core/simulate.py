@@ -36,7 +36,7 @@ import numpy as np
 
 from ..errors import ParameterError
 from ..units import CRYSTAL_HZ, interval_from_rate
-from .soundscape import (EventMixer, RecordingChain, SoundEvent, band_limit, modal_waveform,
+from .soundscape import (EventMixer, RecordingChain, SoundEvent, band_limit, modal_waveform, render_chunks,
                          room_impulse_response, room_transients, second_clock_events)
 
 _waveform = modal_waveform  # the name this module used first (the benchmarks import it)
@@ -322,10 +322,4 @@ class Renderer:
 def render_all(sc: Scenario, chunk: int = 1 << 16) -> tuple[np.ndarray, dict]:
     """The whole recording at once (for short scenarios): array [n, channels] and truth."""
     r = Renderer(sc)
-    parts = []
-    while True:
-        x = r.render(chunk)
-        if not len(x):
-            break
-        parts.append(x)
-    return (np.concatenate(parts) if parts else np.zeros((0, sc.channels))), r.truth
+    return render_chunks(r, sc.channels, chunk), r.truth

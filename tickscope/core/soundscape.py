@@ -309,3 +309,15 @@ def peak_level(modes, rise_s: float = RISE_S) -> float:
         t = np.arange(0, 0.02, 1 / 192000.0)
         _PEAKS[key] = float(np.max(np.abs(modal_waveform(modes, t, rise_s)))) or 1.0
     return _PEAKS[key]
+
+
+def render_chunks(renderer, channels: int, chunk: int) -> np.ndarray:
+    """Everything a renderer (``render(n)`` -> the next samples, none at the end) makes, in chunks of
+    ``chunk`` samples: array [n, channels]."""
+    parts = []
+    while True:
+        x = renderer.render(chunk)
+        if not len(x):
+            break
+        parts.append(x)
+    return np.concatenate(parts) if parts else np.zeros((0, channels))
