@@ -562,3 +562,77 @@ def test_log_of_a_damaged_float_file_says_what_was_lost(tmp_path):
     rep = json.loads(r.stdout)
     assert any("305 samples" in n and "lost audio" in n for n in rep["notes"])
     assert [g["kind"] for g in rep["gaps"]].count("unusable audio") == 2 and rep["missed_steps"] == 0
+
+
+def test_a_logged_lever_gives_its_amplitude_hour_by_hour(tmp_path):
+    # The lever demo (28800 beats an hour, amplitude 275 deg at a 52 deg lift angle; simulator truth)
+    # logged with --movement escapement: each beat's lift time is stored, and the report gives each
+    # hour's balance amplitude from them -- as analyze gives the whole recording's -- and exports the
+    # lift times in the steps CSV.
+    src = os.path.join(os.path.dirname(__file__), "..", "recordings", "bench-lever-watch.flac")
+    truth = json.load(open(src.replace(".flac", ".truth.json")))["scenario"]
+    db = str(tmp_path / "lever.db")
+    r = _cli("log", db, "--source", src, "--movement", "escapement", "--json")
+    assert r.returncode == 0, r.stderr
+    with sqlite3.connect(db) as con:
+        lifts = [v for (v,) in con.execute("SELECT lift_us FROM events WHERE kind=0")]
+    assert sum(v is not None for v in lifts) >= 0.6 * len(lifts) > 100
+    r = _cli("report", db, "--json", "--steps-csv", str(tmp_path / "beats.csv"))
+    assert r.returncode == 0, r.stderr
+    rep = json.loads(r.stdout)
+    h = rep["hourly"][0]
+    assert h["amplitude_reason"] is None
+    assert abs(h["amplitude_deg"] - truth["amplitude_deg"]) <= h["amplitude_ci95_deg"]
+    a = _cli("analyze", src, "--json")
+    e = json.loads(a.stdout)["escapement"]
+    assert h["amplitude_deg"] == pytest.approx(e["amplitude_deg"], abs=0.5 * e["amplitude_ci95_deg"])
+    # an escapement has no logic regulation: its rate's interval is not widened for an unseen
+    # correction (30 s of a quartz motor would be), so the log's agrees with analyze's
+    a_rate = json.loads(a.stdout)
+    assert rep["rate_ci95_s_per_day"] == pytest.approx(a_rate["rate_ci95_s_per_day"], rel=0.25)
+    assert abs(rep["rate_s_per_day"] - truth["rate_s_per_day"]) <= rep["rate_ci95_s_per_day"]
+    # the hour's asymmetry carries the allowance for where each side is timed, as analyze's does
+    assert h["beat_asymmetry_ci95_ms"] >= 0.05 and abs(abs(h["beat_asymmetry_ms"]) - abs(
+        truth["beat_asymmetry_ms"])) <= h["beat_asymmetry_ci95_ms"]
+    rows = list(csv.DictReader(open(tmp_path / "beats.csv")))
+    got = [float(x["lift_ms"]) for x in rows if x["lift_ms"]]
+    # the lift time the amplitude relation gives, t = (T / pi) asin(LA / 2A) (shared/domain.md 10.3)
+    period_s = 2 * 3600 / truth["beats_per_hour"]
+    lift_ms = period_s / np.pi * np.arcsin(truth["lift_angle_deg"] / (2 * truth["amplitude_deg"])) * 1e3
+    assert len(got) >= 100 and np.median(got) == pytest.approx(lift_ms, rel=0.03)
+    r = _cli("report", db)
+    assert "beats hour by hour" in r.stdout and "balance amplitude" in r.stdout
+    r = _cli("report", db, "--out", str(tmp_path / "plots"), "--json")
+    assert r.returncode == 0, r.stderr
+    png = tmp_path / "plots" / "balance.png"
+    assert str(png) in json.loads(r.stdout)["plots"] and png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_a_version_1_log_gains_the_lift_column_when_written_again(tmp_path):
+    # a log written before lift times were stored: read as it is (no lift times), and the first
+    # writer adds the column and marks the schema 2; nothing already stored changes
+    db = str(tmp_path / "old.db")
+    con = sqlite3.connect(db)
+    con.executescript("""
+        CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT);
+        INSERT INTO meta VALUES ('schema_version', '1');
+        CREATE TABLE events (seg INTEGER NOT NULL, kind INTEGER NOT NULL, step INTEGER, time_s REAL NOT NULL,
+            pol INTEGER, peak_cdb INTEGER, snr_cdb INTEGER, match_pm INTEGER, decay_us INTEGER, flags INTEGER);
+        INSERT INTO events VALUES (1, 0, 0, 0.5, 0, -2000, 3000, 990, 8000, 0);
+    """)
+    con.commit()
+    con.close()
+    from tickscope.io.store import LogStore
+
+    ro = LogStore(db, readonly=True)
+    ev = ro.events()
+    assert ev["time_s"].tolist() == [0.5] and np.isnan(ev["lift_ms"]).all()
+    ro.close()
+    st = LogStore(db)
+    assert st.meta()["schema_version"] == "2"
+    st.add_event(1, "step", 1, 1.5, 1, -20.0, 30.0, 0.99, 8.0, (), lift_ms=1.25)
+    st.commit()
+    ev = st.events()
+    assert ev["time_s"].tolist() == [0.5, 1.5] and np.isnan(ev["lift_ms"][0]) and ev["lift_ms"][1] == 1.25
+    assert ev["decay_ms"].tolist() == [8.0, 8.0]
+    st.close()

@@ -347,8 +347,9 @@ def escapement_reading(e) -> tuple[str, ...]:
     src = {"given": "as given", "series": "the usual value nearest the beat heard",
            "nearest": "nearest the beat heard, which is off every usual value"}.get(e.nominal_source, e.nominal_source)
     if r is not None:
-        out.append(f"the escapement {'gains' if r.rate_s_per_day >= 0 else 'loses'} {abs(r.rate_s_per_day):.1f} "
-                   f"± {r.ci95_s_per_day:.1f} s/day against {e.beats_per_hour:.0f} beats per hour ({src}; "
+        nd = 1 if r.ci95_s_per_day >= 0.5 else 2 if r.ci95_s_per_day >= 0.05 else 3  # the interval's digits
+        out.append(f"the escapement {'gains' if r.rate_s_per_day >= 0 else 'loses'} {abs(r.rate_s_per_day):.{nd}f} "
+                   f"± {r.ci95_s_per_day:.{nd}f} s/day against {e.beats_per_hour:.0f} beats per hour ({src}; "
                    f"heard {e.beats_per_hour_heard:.1f})")
     if e.nominal_source == "nearest":
         out.append(f"the rate is against the nearest usual beat, {e.beats_per_hour:.0f} per hour, which the beat "

@@ -115,7 +115,7 @@ def build_parser() -> argparse.ArgumentParser:
                                     "per hour and minute, the time interval error, the overlapping Allan deviation, "
                                     "missed and failed steps, gaps and ring-down over time.")
     rp.add_argument("db", help="the log database")
-    rp.add_argument("--out", metavar="DIR", help="write rate.png, tie.png, adev.png, ringdown.png and report.json here")
+    rp.add_argument("--out", metavar="DIR", help="write rate.png, tie.png, adev.png, ringdown.png (balance.png for a balance's amplitudes) and report.json here")
     rp.add_argument("--steps-csv", metavar="PATH", help="export every logged event (same columns as analyze)")
     rp.add_argument("--clock-from-host", action="store_true",
                     help="correct each device segment by its own clock measured against the host clock during "

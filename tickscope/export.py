@@ -266,9 +266,10 @@ def write_log_csv(fh, T, K, ev: dict, P=None) -> int:
         if kind != "step":
             flags.insert(0, kind)
         pk, dc = float(ev["peak_dbfs"][i]), float(ev["decay_ms"][i])
+        lift = float(ev["lift_ms"][i]) if "lift_ms" in ev else math.nan
         pol = int(P[i])
         w.writerow([n, "" if k < 0 else k, f"{T[i]:.9f}", ("A" if pol == 0 else "B") if kind == "step" and pol >= 0 else "",
                     interval, "" if not math.isfinite(pk) else f"{pk:.2f}", "" if not math.isfinite(dc) else f"{dc:.3f}",
-                    ";".join(flags), ""])  # the log keeps no lift times
+                    ";".join(flags), "" if not math.isfinite(lift) else f"{lift:.3f}"])
         n += 1
     return n

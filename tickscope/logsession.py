@@ -252,7 +252,7 @@ class LogSession:
                 continue
             pol = None if ev.polarity not in ("A", "B") else (0 if ev.polarity == "A" else 1)
             self.store.add_event(self.seg, ev.kind, ev.step, ev.time_s, pol, ev.peak_dbfs, ev.snr_db, ev.match,
-                                 ev.decay_ms, ev.flags)
+                                 ev.decay_ms, ev.flags, ev.lift_ms)
             key = _count_key(ev.kind)
             if key in self.totals:
                 self.totals[key] += 1

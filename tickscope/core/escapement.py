@@ -366,27 +366,15 @@ def escapement_figures(rec, good: np.ndarray, *, rate, nominal: Nominal, sounds:
     lifts = [_side_lift(rec.lift_ms[good & (rec.pol == p)]) if lifts_heard and nominal.balance else (None, None, 0)
              for p in ((1, 0) if flip else (0, 1))]
     amp = amp_ci = None
-    reason = None
     sys_ms = LIFT_REFERENCE_SAMPLES / fs * 1e3
-    resolved = [(m, h) for m, h, _ in lifts if m is not None]
     if not nominal.balance:
         reason = "pendulum"
     elif not lifts_heard:
         reason = "short-window"
     elif not any(s is not None and s.last is not None for s in (s0, s1)):
         reason = "one-sound"
-    elif not resolved:
-        reason = "few-lifts"
-    elif len(resolved) == 2 and abs(resolved[0][0] - resolved[1][0]) > LIFT_SIDES_AGREE * max(r[0] for r in resolved):
-        reason = "sides-differ"
     else:
-        m = float(np.mean([r[0] for r in resolved]))
-        h = math.sqrt(sum(r[1] ** 2 for r in resolved)) / len(resolved)
-        got = amplitude_interval(m * 1e-3, math.hypot(h, sys_ms) * 1e-3, 2.0 * beat_s, la)
-        if got is None or not AMPLITUDE_PLAUSIBLE_DEG[0] <= got[0] <= AMPLITUDE_PLAUSIBLE_DEG[1]:
-            reason = "implausible"
-        else:
-            amp, amp_ci = got[0], math.hypot(got[1], AMPLITUDE_MODEL_SHARE * got[0])
+        amp, amp_ci, reason = lift_amplitude(lifts, beat_s=beat_s, lift_angle_deg=la, samplerate=fs)
     res = residuals_s(k, t) if len(k) >= 6 else np.zeros(0)
     scatter = float(np.sqrt(np.mean(res ** 2))) * 1e6 if len(res) >= 6 else None
     drop_s = max(((s.last if s.last is not None else s.first) - s.first) / fs for s in (s0, s1) if s is not None) \
@@ -404,6 +392,31 @@ def escapement_figures(rec, good: np.ndarray, *, rate, nominal: Nominal, sounds:
         lifts_measured=tuple(n for _, _, n in lifts), lift_angle_deg=la if nominal.balance else None,
         lift_angle_given=given, amplitude_deg=amp, amplitude_ci95_deg=amp_ci, amplitude_reason=reason,
         beat_scatter_us=scatter, knocking=knock, wheel=wheel, stops=st, missed_beats=int(len(rec.missed_k)))
+
+
+def side_lifts(lift_ms: np.ndarray, side: np.ndarray) -> list[tuple[float | None, float | None, int]]:
+    """Each side's mean lift time (ms), its 95 % half-width and how many beats gave it, from beats'
+    lift times (nan: not resolved) and their sides (0, 1)."""
+    return [_side_lift(lift_ms[side == p]) for p in (0, 1)]
+
+
+def lift_amplitude(lifts, *, beat_s: float, lift_angle_deg: float, samplerate: float
+                   ) -> tuple[float | None, float | None, str | None]:
+    """The balance amplitude (deg) and its 95 % half-width from each side's lift (``(mean_ms,
+    half_ms, n)``, see :func:`side_lifts`), or None and why not: ``few-lifts`` (no side has enough),
+    ``sides-differ`` (the two sides' lifts disagree), ``implausible`` (no balance's swing)."""
+    resolved = [(m, h) for m, h, _ in lifts if m is not None]
+    if not resolved:
+        return None, None, "few-lifts"
+    if len(resolved) == 2 and abs(resolved[0][0] - resolved[1][0]) > LIFT_SIDES_AGREE * max(r[0] for r in resolved):
+        return None, None, "sides-differ"
+    sys_ms = LIFT_REFERENCE_SAMPLES / samplerate * 1e3
+    m = float(np.mean([r[0] for r in resolved]))
+    h = math.sqrt(sum(r[1] ** 2 for r in resolved)) / len(resolved)
+    got = amplitude_interval(m * 1e-3, math.hypot(h, sys_ms) * 1e-3, 2.0 * beat_s, lift_angle_deg)
+    if got is None or not AMPLITUDE_PLAUSIBLE_DEG[0] <= got[0] <= AMPLITUDE_PLAUSIBLE_DEG[1]:
+        return None, None, "implausible"
+    return got[0], math.hypot(got[1], AMPLITUDE_MODEL_SHARE * got[0]), None
 
 
 MOVEMENTS = ("auto", "quartz", "escapement")

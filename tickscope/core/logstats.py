@@ -34,6 +34,7 @@ from .logphase import polarity_offset_s, phase_figures
 from .rate import fit_rate, level_shifts, stretch_weights
 from .regulation import unseen_correction_ci95_s_per_day
 from ..model import FLAG_BITS, KIND_CODES
+from ..units import interval_from_rate
 
 KIND_STEP, KIND_MISSED, KIND_FAILED, KIND_CORRECTION, KIND_REJECTED = (
     KIND_CODES[k] for k in ("step", "missed", "failed", "correction", "rejected"))
@@ -85,11 +86,14 @@ class LogFigures:
     ended: bool = True
 
 
-def _rate_allowing_unseen(k, t, nominal, **kw):
-    """:func:`~tickscope.core.rate.fit_rate`, with the interval widened while under two regulation
-    periods, as ``analyze`` does: a stretch shorter than 4 minutes may not yet hold a logic-regulation
-    correction (see :func:`~tickscope.core.regulation.unseen_correction_ci95_s_per_day`)."""
+def _rate_allowing_unseen(k, t, nominal, *, quartz: bool = True, **kw):
+    """:func:`~tickscope.core.rate.fit_rate`, with a quartz motor's interval widened while under two
+    regulation periods, as ``analyze`` does: a stretch shorter than 4 minutes may not yet hold a
+    logic-regulation correction (see :func:`~tickscope.core.regulation.unseen_correction_ci95_s_per_day`;
+    an escapement has no such correction: ``quartz=False``)."""
     r = fit_rate(k, t, nominal, **kw)
+    if not quartz:
+        return r
     return dataclasses.replace(r, ci95_s_per_day=unseen_correction_ci95_s_per_day(r.ci95_s_per_day, r.span_s))
 
 
@@ -242,18 +246,22 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     good = (kinds == KIND_STEP) & (ev["match"] >= GOOD_MATCH) & ((ev["flags"] & LOW_MATCH_BIT) == 0) & (K >= 0)
     steps_all = kinds == KIND_STEP
     calibrated, u95, clock_ppm = _clock_terms(segments, override_ppm, override_u95, notes)
-    rate = _overall_rate(K, T, G, good, ev, nominal, lossy, u95 if calibrated else 0.0, notes)
+    quartz = not escapement_log
+    rate = _overall_rate(K, T, G, good, ev, nominal, lossy, u95 if calibrated else 0.0, notes, quartz=quartz)
     spans, gap_list = _spans_and_gaps(segments, gaps, silences, override_ppm)
     duration = _union_length([(a, b) for a, b, _ in spans])  # a resumed replay re-reads a little
     t_lo = min(a for a, _, _ in spans)
     t_hi = max(b for _, b, _ in spans)
-    hourly, ring = _hourly(ev, T, K, G, P, good, silent, spans, t_lo, t_hi, nominal, u95 if calibrated else 0.0)
+    hourly, ring = _hourly(ev, T, K, G, P, good, silent, spans, t_lo, t_hi, nominal, u95 if calibrated else 0.0,
+                           quartz=quartz)
     if escapement_log:
-        _escapement_hours(hourly, T, K, good)
+        lifted = _escapement_hours(hourly, T, K, P, good, ev["lift_ms"], esc, nominal, segments[-1].samplerate)
         notes.insert(0, f"the log holds an escapement's beats, {esc['beats_per_hour']:.0f} per hour "
                         f"({esc.get('nominal_source')}): its steps are beats, its rates are against that beat, and "
-                        "each hour gives its beat asymmetry; the lift times are not logged, so the amplitude is "
-                        "the end of a segment's only")
+                        "each hour gives its beat asymmetry" + (
+                            f" and the balance amplitude from its beats' lift times (lift angle "
+                            f"{esc.get('lift_angle_deg'):g}°{'' if esc.get('lift_angle_given') else ', assumed'})"
+                            if lifted else ""))
         notes.extend(f"at the end of segment {segments[-1].id}: {line}" for line in last.get("reading") or ())
     adev = tie = None
     step_t, step_x, step_k = np.zeros(0), np.zeros(0), np.zeros(0, dtype=np.int64)
@@ -266,7 +274,7 @@ def log_figures(segments, ev: dict[str, np.ndarray], *, gaps=(), minutes=(), ove
     rejected_t = T[rej]
     worst = _worst_hour(hourly, rate)
     best = _best_stretch(spans, gap_list, np.sort(np.concatenate([missed_t, failed_t])), K, T, G, good, nominal, u95,
-                         calibrated)
+                         calibrated, quartz=quartz)
     return LogFigures(
         segments=len(segments), duration_s=duration, span_s=t_hi - t_lo, nominal_s=nominal,
         steps_detected=int(steps_all.sum()), missed_steps=int(len(missed_t)), failed_steps=int(len(failed_t)),
@@ -294,7 +302,7 @@ def _clock_terms(segments, override_ppm, override_u95: float, notes: list[str]) 
     return calibrated, u95, clock_ppm
 
 
-def _overall_rate(K, T, G, good, ev, nominal: float, lossy, u95: float, notes: list[str]):
+def _overall_rate(K, T, G, good, ev, nominal: float, lossy, u95: float, notes: list[str], *, quartz: bool = True):
     """The rate over the whole log: a common slope, one intercept per group (None with too few steps)."""
     if good.sum() < 3 or np.ptp(K[good]) < 2:
         return None
@@ -307,7 +315,7 @@ def _overall_rate(K, T, G, good, ev, nominal: float, lossy, u95: float, notes: l
             notes.append(f"the audio went through a lossy codec, which shifted the step times abruptly "
                          f"{int(shifts.max())} time{'s' if shifts.max() > 1 else ''}: the overall rate is "
                          "fitted within the stretches between shifts")
-    return _rate_allowing_unseen(K[good], T[good], nominal, clock_ppm=0.0, clock_ppm_u95=u95, groups=groups,
+    return _rate_allowing_unseen(K[good], T[good], nominal, quartz=quartz, clock_ppm=0.0, clock_ppm_u95=u95, groups=groups,
                                  weights=weights)
 
 
@@ -333,20 +341,42 @@ def _spans_and_gaps(segments, gaps, silences, override_ppm):
     return spans, gap_list
 
 
-def _escapement_hours(hourly: list[dict], T: np.ndarray, K: np.ndarray, good: np.ndarray) -> None:
+def _escapement_hours(hourly: list[dict], T: np.ndarray, K: np.ndarray, P: np.ndarray, good: np.ndarray,
+                      lift_ms: np.ndarray, esc: dict, nominal_s: float, samplerate: float) -> bool:
     """Each hour's beat asymmetry (ms, with its 95 % half-width) from its well-matched beats (the
-    sides by the log's beat numbers: which is tick cannot be told from the sound)."""
-    from .escapement import beat_asymmetry
+    sides by the log's beat numbers: which is tick cannot be told from the sound), and for a balance
+    its amplitude (deg, with its 95 % half-width, or why none) from the beats' lift times as
+    ``analyze`` gives it.  True when some hour has an amplitude."""
+    from .escapement import BEAT_REFERENCE_ALLOWANCE_S, beat_asymmetry, lift_amplitude, side_lifts
 
     hour = np.floor(T / 3600.0).astype(np.int64)
+    balance, la = bool(esc.get("balance")), esc.get("lift_angle_deg")
+    any_amp = False
     for h in hourly:
         sel = good & (hour == h["hour"])
         got = beat_asymmetry(K[sel], T[sel]) if sel.sum() >= 8 else None
         h["beat_asymmetry_ms"] = None if got is None else round(got[0] * 1e3, 4)
-        h["beat_asymmetry_ci95_ms"] = None if got is None else round(got[1] * 1e3, 4)
+        # (with the allowance for where the two sides' beats are timed, twice, as analyze's figure
+        # has at the least: escapement.escapement_figures)
+        h["beat_asymmetry_ci95_ms"] = None if got is None else round(
+            math.hypot(got[1], 2.0 * BEAT_REFERENCE_ALLOWANCE_S) * 1e3, 4)
+        if not balance or la is None:
+            continue
+        amp = ci = None
+        why = "few-lifts"
+        if np.isfinite(lift_ms[sel]).any():
+            beat_s = interval_from_rate(nominal_s, h["rate_s_per_day"] or 0.0)
+            amp, ci, why = lift_amplitude(side_lifts(lift_ms[sel], P[sel]), beat_s=beat_s,
+                                          lift_angle_deg=float(la), samplerate=samplerate)
+        h["amplitude_deg"] = None if amp is None else round(amp, 2)
+        h["amplitude_ci95_deg"] = None if ci is None else round(ci, 2)
+        h["amplitude_reason"] = why
+        any_amp = any_amp or amp is not None
+    return any_amp
 
 
-def _hourly(ev, T, K, G, P, good, silent, spans, t_lo: float, t_hi: float, nominal: float, u95: float):
+def _hourly(ev, T, K, G, P, good, silent, spans, t_lo: float, t_hi: float, nominal: float, u95: float, *,
+            quartz: bool = True):
     """Per hour of the timeline: rate, counts and coverage; and the ring-down per polarity."""
     kinds = ev["kind"]
     steps_all = kinds == KIND_STEP
@@ -358,7 +388,7 @@ def _hourly(ev, T, K, G, P, good, silent, spans, t_lo: float, t_hi: float, nomin
         gh = good & in_h
         r = None
         if gh.sum() >= 6 and np.ptp(K[gh]) >= 5:
-            r = _rate_allowing_unseen(K[gh], T[gh], nominal, clock_ppm=0.0, clock_ppm_u95=u95,
+            r = _rate_allowing_unseen(K[gh], T[gh], nominal, quartz=quartz, clock_ppm=0.0, clock_ppm_u95=u95,
                          groups=G[gh])
         covered = sum(max(0.0, min(b, (h + 1) * 3600) - max(a, h * 3600)) for a, b, _ in spans)
         hourly.append({"hour": h, "start_s": h * 3600.0, "covered_s": round(covered, 3),
@@ -453,7 +483,8 @@ def _worst_hour(hourly: list[dict], rate) -> dict | None:
     return {**w, "why": f"rate {w['rate_s_per_day'] - rate.rate_s_per_day:+.3f} s/day from the log's"}
 
 
-def _best_stretch(spans, gaps, anomalies_t, K, T, G, good, nominal, u95, calibrated) -> dict | None:
+def _best_stretch(spans, gaps, anomalies_t, K, T, G, good, nominal, u95, calibrated, *,
+                  quartz: bool = True) -> dict | None:
     """The longest stretch with no missed or failed step and no gap, and its rate."""
     cuts = sorted([a for a, _, _ in spans] + [b for _, b, _ in spans] + [g[0] for g in gaps] + [g[1] for g in gaps]
                   + list(anomalies_t))
@@ -471,7 +502,8 @@ def _best_stretch(spans, gaps, anomalies_t, K, T, G, good, nominal, u95, calibra
     sel = good & (T > a) & (T < b)
     r = None
     if sel.sum() >= 6 and np.ptp(K[sel]) >= 5:
-        r = _rate_allowing_unseen(K[sel], T[sel], nominal, clock_ppm=0.0, clock_ppm_u95=u95 if calibrated else 0.0, groups=G[sel])
+        r = _rate_allowing_unseen(K[sel], T[sel], nominal, quartz=quartz, clock_ppm=0.0,
+                                  clock_ppm_u95=u95 if calibrated else 0.0, groups=G[sel])
     return {"start_s": a, "end_s": b, "duration_s": b - a,
             "rate_s_per_day": None if r is None else r.rate_s_per_day,
             "rate_ci95_s_per_day": None if r is None else r.ci95_s_per_day}

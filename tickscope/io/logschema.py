@@ -3,7 +3,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-SCHEMA_VERSION = 1
+#: 2 added ``events.lift_us`` (an escapement's lift time per beat); a version 1 log gains the column
+#: when a writer opens it (``MIGRATIONS``), and reads as one without lift times until then.
+SCHEMA_VERSION = 2
 
 
 _SCHEMA = """
@@ -31,7 +33,8 @@ CREATE TABLE IF NOT EXISTS segments (
 );
 CREATE TABLE IF NOT EXISTS events (
     seg INTEGER NOT NULL, kind INTEGER NOT NULL, step INTEGER, time_s REAL NOT NULL,
-    pol INTEGER, peak_cdb INTEGER, snr_cdb INTEGER, match_pm INTEGER, decay_us INTEGER, flags INTEGER
+    pol INTEGER, peak_cdb INTEGER, snr_cdb INTEGER, match_pm INTEGER, decay_us INTEGER, flags INTEGER,
+    lift_us INTEGER
 );
 CREATE TABLE IF NOT EXISTS blocks (
     seg INTEGER NOT NULL, start_sample INTEGER NOT NULL, host_time_s REAL, wall_time_s REAL, adc_time_s REAL
@@ -48,6 +51,9 @@ CREATE TABLE IF NOT EXISTS clips (
 );
 """
 
+#: (table, column, its declaration): columns later schema versions added, added to an older log by
+#: the first writer that opens it
+MIGRATIONS = (("events", "lift_us", "INTEGER"),)
 
 
 @dataclass(frozen=True)

@@ -1,6 +1,6 @@
 """The log database: one SQLite file per log (WAL journal, no server).
 
-Layout (``SCHEMA_VERSION`` 1):
+Layout (``SCHEMA_VERSION`` 2; a version 1 log gains the columns added since when a writer opens it):
 
 ``meta``      key/value: schema version, movement label, creation time, tickscope version
 ``segments``  one row per run of ``tickscope log`` on this database: source, device, sample
@@ -9,7 +9,8 @@ Layout (``SCHEMA_VERSION`` 1):
               where the last run stopped; ``wall``: by the host's wall clock only)
 ``events``    every step, missed step, failed step, correction pulse and rejected sound:
               segment, kind, step number, time on the segment's audio time base, polarity,
-              level, SNR, template match, ring-down, flags (small integers: ~35 bytes a row)
+              level, SNR, template match, ring-down, flags, an escapement's lift time (small
+              integers: ~35 bytes a row)
 ``blocks``    host clock readings of the capture, thinned to the least-delayed block per
               ``BLOCK_WINDOW_S`` (all a device-clock fit needs; see core/clockfit.py)
 ``gaps``      audio lost inside a segment (input overflow)
@@ -40,7 +41,7 @@ from ..errors import StoreError
 from ..model import KIND_CODES, flag_bits
 from .logerror import _store_error
 from .loglock import WriterLock, _unlink
-from .logschema import _COLUMNS, _FIELDS, _SCHEMA, SCHEMA_VERSION, Segment
+from .logschema import _COLUMNS, _FIELDS, _SCHEMA, MIGRATIONS, SCHEMA_VERSION, Segment
 
 BLOCK_WINDOW_S = 10.0
 
@@ -95,6 +96,7 @@ class LogStore:
                 self.db.execute("PRAGMA synchronous=FULL")
                 self.db.executescript(_SCHEMA)
             self._check_schema()
+            self._lift = self._migrate()
         except sqlite3.Error as e:
             raise _store_error(path, e) from e
 
@@ -112,6 +114,18 @@ class LogStore:
             return
         if int(row[0]) > SCHEMA_VERSION:
             raise StoreError(f"log {self.path}: written by a newer tickscope (schema {row[0]}); upgrade to read it")
+
+    def _migrate(self) -> bool:
+        """Add the columns an older log lacks (a writer only) and say whether events hold lift times."""
+        for table, column, decl in MIGRATIONS:
+            have = {r[1] for r in self.db.execute(f"PRAGMA table_info({table})")}
+            if column in have or self.readonly:
+                continue
+            self.db.execute("BEGIN IMMEDIATE")
+            self.db.execute(f"ALTER TABLE {table} ADD COLUMN {column} {decl}")
+            self.db.execute("UPDATE meta SET value=? WHERE key='schema_version'", (str(SCHEMA_VERSION),))
+            self.db.execute("COMMIT")
+        return "lift_us" in {r[1] for r in self.db.execute("PRAGMA table_info(events)")}
 
     def init_meta(self, label: str, version: str) -> None:
         with self._guard():
@@ -193,9 +207,10 @@ class LogStore:
         self._write(f"UPDATE segments SET {sets} WHERE id=?", (*f.values(), seg))
 
     def add_event(self, seg: int, kind: str, step: int | None, time_s: float, pol: int | None,
-                  peak_dbfs: float, snr_db: float, match: float, decay_ms: float, flags: tuple[str, ...]) -> None:
+                  peak_dbfs: float, snr_db: float, match: float, decay_ms: float, flags: tuple[str, ...],
+                  lift_ms: float = float("nan")) -> None:
         self._event_rows.append((seg, KIND_CODES[kind], step, float(time_s), pol, _i(peak_dbfs, 100), _i(snr_db, 100),
-                                 _i(match, 1000), _i(decay_ms, 1000), flag_bits(flags)))
+                                 _i(match, 1000), _i(decay_ms, 1000), flag_bits(flags), _i(lift_ms, 1000)))
 
     def add_block(self, seg: int, start_sample: int, host_s, wall_s, adc_s) -> None:
         self._write("INSERT INTO blocks VALUES (?, ?, ?, ?, ?)", (seg, int(start_sample), host_s, wall_s, adc_s))
@@ -272,7 +287,7 @@ class LogStore:
             if self._event_rows:
                 self._begin()
                 with self._guard():
-                    self.db.executemany("INSERT INTO events VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    self.db.executemany("INSERT INTO events VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                                         self._event_rows)
             if self._in_tx:
                 with self._guard():
@@ -349,19 +364,20 @@ class LogStore:
             args.append(seg)
         if kinds is not None:
             where.append(f"kind IN ({','.join(str(KIND_CODES[k]) for k in kinds)})")
-        q = "SELECT seg, kind, step, time_s, pol, peak_cdb, snr_cdb, match_pm, decay_us, flags FROM events"
+        q = ("SELECT seg, kind, step, time_s, pol, peak_cdb, snr_cdb, match_pm, decay_us, flags, "
+             + ("lift_us" if self._lift else "NULL") + " FROM events")
         if where:
             q += " WHERE " + " AND ".join(where)
         q += " ORDER BY seg, time_s"
         with self._guard():
             rows = self.db.execute(q, args).fetchall()
-        a = np.array(rows, dtype=np.float64) if rows else np.zeros((0, 10))
+        a = np.array(rows, dtype=np.float64) if rows else np.zeros((0, 11))
         return {
             "seg": a[:, 0].astype(np.int64), "kind": a[:, 1].astype(np.int64),
             "step": np.nan_to_num(a[:, 2], nan=-1).astype(np.int64), "time_s": a[:, 3],
             "pol": np.nan_to_num(a[:, 4], nan=-1).astype(np.int64), "peak_dbfs": a[:, 5] / 100,
             "snr_db": a[:, 6] / 100, "match": a[:, 7] / 1000, "decay_ms": a[:, 8] / 1000,
-            "flags": np.nan_to_num(a[:, 9]).astype(np.int64),
+            "flags": np.nan_to_num(a[:, 9]).astype(np.int64), "lift_ms": a[:, 10] / 1000,
         }
 
     def gaps(self) -> list[tuple[int, float, float, str]]:

@@ -128,6 +128,8 @@ def render_log(fig, *, db: str, label: str, time_base: str, width: int = 100,
                              missed=h["missed"], complete=h["covered_s"] >= 3599) for h in fig.hourly]
     parts.append(Text(""))
     parts.extend(hourly_lines(hours, width - 4, max_rows=24 if width >= 100 else 12, empty=_no_hourly_rate(fig)))
+    if fig.hourly and "beat_asymmetry_ms" in fig.hourly[0]:
+        parts += _beat_hours(fig.hourly)
     if len(fig.step_x) >= 3:
         parts += _time_error_part(fig, width)
     if fig.adev is not None:
@@ -158,6 +160,24 @@ def render_log(fig, *, db: str, label: str, time_base: str, width: int = 100,
         parts.append(hanging("! ", n, style="yellow"))
     return Panel(Group(*parts), title=f"tickscope · log report · {db}", title_align="left", box=box.ROUNDED,
                  width=width)
+
+
+def _beat_hours(hourly: list[dict]) -> list[RenderableType]:
+    """An escapement log's hours: the beat asymmetry and, for a balance, the amplitude, each with
+    its 95 % interval (or why there is none)."""
+    amp = any("amplitude_reason" in h for h in hourly)
+    tb = Table(title="beats hour by hour (95 % intervals)", title_justify="left", box=box.SIMPLE_HEAD)
+    for col in ("hour", "beat asymmetry", *(("balance amplitude",) if amp else ())):
+        tb.add_column(col, justify="right")
+    for h in hourly[-24:]:
+        a = h.get("beat_asymmetry_ms")
+        row = [f"h{h['hour']}", "–" if a is None else f"{abs(a):.2f} ± {h['beat_asymmetry_ci95_ms']:.2f} ms"]
+        if amp:
+            v = h.get("amplitude_deg")
+            row.append(f"none ({h.get('amplitude_reason')})" if v is None else
+                       f"{v:.0f} ± {h['amplitude_ci95_deg']:.0f}°")
+        tb.add_row(*row)
+    return [Text(""), tb]
 
 
 def _time_error_part(fig, width: int) -> list[RenderableType]:

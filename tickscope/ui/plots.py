@@ -94,13 +94,45 @@ def _finish_timeline(plt, f, ax, fig, path: str, *, ylabel: str, title: str, leg
 
 
 def plot_log(fig, out_dir: str, *, title: str = "") -> list[str]:
-    """rate.png, tie.png, adev.png and ringdown.png of a log report; returns the paths written."""
+    """rate.png, tie.png, adev.png and ringdown.png of a log report, and balance.png for a balance's
+    beats with amplitudes; returns the paths written."""
     import os
 
     plt = _plt()
     os.makedirs(out_dir, exist_ok=True)
     _, per = time_unit(fig.span_s)
-    return [draw(plt, fig, out_dir, title, per) for draw in (_log_rate, _log_time_error, _log_adev, _log_ringdown)]
+    draws = [_log_rate, _log_time_error, _log_adev, _log_ringdown]
+    if any(h.get("amplitude_deg") is not None for h in fig.hourly):
+        draws.append(_log_balance)
+    return [draw(plt, fig, out_dir, title, per) for draw in draws]
+
+
+def _log_balance(plt, fig, out_dir: str, title: str, per: float) -> str:
+    """A balance's amplitude hour by hour, and each hour's rate against its amplitude (how the rate
+    follows the swing: isochronism), each with its 95 % interval."""
+    import os
+
+    unit, _ = time_unit(fig.span_s)
+    hrs = [h for h in fig.hourly if h.get("amplitude_deg") is not None]
+    f, (ax, ax2) = plt.subplots(1, 2, figsize=(12, 5), constrained_layout=True)
+    ax.errorbar([h["center_s"] / per for h in hrs], [h["amplitude_deg"] for h in hrs],
+                yerr=[h["amplitude_ci95_deg"] for h in hrs], fmt="o-", ms=4, capsize=3, color="tab:blue")
+    ax.set_xlabel(f"time since the log began ({unit})")
+    ax.set_ylabel("balance amplitude (°)")
+    ax.set_title(f"{title}: amplitude hour by hour")
+    ax.grid(alpha=0.3)
+    both = [h for h in hrs if h["rate_s_per_day"] is not None]
+    if both:
+        ax2.errorbar([h["amplitude_deg"] for h in both], [h["rate_s_per_day"] for h in both],
+                     xerr=[h["amplitude_ci95_deg"] for h in both], yerr=[h["rate_ci95_s_per_day"] for h in both],
+                     fmt="o", ms=4, capsize=3, color="tab:orange")
+    ax2.set_xlabel("balance amplitude (°)")
+    ax2.set_ylabel("rate (s/day, + gains)")
+    ax2.set_title("each hour's rate against its amplitude")
+    ax2.grid(alpha=0.3)
+    path = os.path.join(out_dir, "balance.png")
+    _save(plt, f, path)
+    return path
 
 
 def _log_rate(plt, fig, out_dir: str, title: str, per: float) -> str:
