@@ -124,6 +124,19 @@ def test_pendulum_clock_out_of_beat():
     assert any(line.startswith("out of beat") for line in s.reading)
 
 
+@pytest.mark.parametrize("asym_ms,seed", [(82.0, 5), (-95.0, 6)])
+def test_a_seconds_pendulum_far_out_of_beat_is_followed_on_both_sides(asym_ms, seed):
+    # 3600 beats an hour, 8-10 % out of beat: on a quartz motor's interval, with each side 40-50 ms
+    # off the line (no motor's polarities are 10 ms apart); it used to lose the grid again and again
+    # and read "stepping" or nothing at all
+    s, truth = _sim(movement="pendulum", duration_s=60, seed=seed, beats_per_hour=3600, beat_asymmetry_ms=asym_ms,
+                    beat_jitter_us=250.0, snr_db=20.0)
+    e = summary_to_dict(s)["escapement"]
+    assert s.sound == "escapement" and e["beats_per_hour"] == 3600 and s.steps_detected >= 55
+    assert abs(abs(e["beat_asymmetry_ms"]) - abs(asym_ms)) <= e["beat_asymmetry_ci95_ms"] + 0.1
+    assert abs(e["rate_s_per_day"] - truth["rate_s_per_day"]) <= e["rate_ci95_s_per_day"]
+
+
 @pytest.mark.slow
 def test_a_watch_in_beat_is_not_called_out_of_beat():
     # no asymmetry at all: the statement may not say out of beat (its test is at 1 %)

@@ -6,6 +6,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from .escapement import ESCAPE_BEAT_RANGE_S
 from .steppicks import _pick_steps, impact_weights
 
 if TYPE_CHECKING:
@@ -132,9 +133,20 @@ def _beats_apart(buf: list[OpenImpact], w: np.ndarray, chosen: dict, ks: np.ndar
         if f is not None:
             chosen, ks, ts, a, b, keep, sides = _split_beats(buf, chosen, a, b, f)
         else:  # a grid on one beat whose two sides sound at places of their own
-            d = _side_places(buf, w, a, b)
-            if d is not None:
-                tol = min(0.1 * b, 0.03)
-                picks = [_pick_steps(buf, a + d[p] + p * b, 2 * b, tol, tol) for p in (0, 1)]
-                chosen, ks, ts, a, b, keep, sides = _two_sides(picks)
+            chosen, ks, ts, a, b, keep, sides = _on_side_places(buf, w, chosen, ks, ts, a, b, keep)
+    elif ESCAPE_BEAT_RANGE_S[0] <= b <= ESCAPE_BEAT_RANGE_S[1]:
+        # a quartz interval an escapement beats at too: a seconds pendulum out of beat by more than a
+        # motor's polarities ever are (SIDES_APART_S) sounds each side at a place of its own (a
+        # slower grid is a motor's: its end-of-life bursts are not two sides)
+        chosen, ks, ts, a, b, keep, sides = _on_side_places(buf, w, chosen, ks, ts, a, b, keep)
     return chosen, ks, ts, a, b, keep, sides
+
+
+def _on_side_places(buf, w, chosen, ks, ts, a, b, keep):
+    """The grid's beats picked again at each side's own place (see :func:`_side_places`), or as given."""
+    d = _side_places(buf, w, a, b)
+    if d is None:
+        return chosen, ks, ts, a, b, keep, (0.0, 0.0)
+    tol = min(0.1 * b, 0.03)
+    picks = [_pick_steps(buf, a + d[p] + p * b, 2 * b, tol, tol) for p in (0, 1)]
+    return _two_sides(picks)
