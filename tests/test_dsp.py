@@ -52,6 +52,22 @@ def test_distribution_quantiles_match_scipy_stats():
                        stats.chi2.ppf([0.025, 0.975], [3.0, 300.0]))
     for k, n, p in ((5, 60, 1 / 60), (0, 10, 0.3), (9, 10, 0.5), (10, 10, 0.5), (-1, 5, 0.2)):
         assert dsp.binom_sf(k, n, p) == pytest.approx(stats.binom.sf(k, n, p), rel=1e-10, abs=1e-15)
+    # the knocking test's tails: a few hundred beats, small shares, p-values down to 1e-30
+    for k, n, p in ((40, 300, 0.02), (150, 400, 0.1), (3, 2000, 1e-4), (999, 1000, 0.999)):
+        assert dsp.binom_sf(k, n, p) == pytest.approx(stats.binom.sf(k, n, p), rel=1e-9, abs=1e-300)
+
+
+def test_incomplete_beta_and_the_f_tail_match_scipy():
+    # scipy.special.betainc and scipy.stats.f.sf as the reference (general-purpose library)
+    from scipy import special
+
+    for a, b, x in ((0.5, 0.5, 0.3), (2.0, 3.0, 0.9), (14.5, 100.0, 0.05), (200.0, 3.0, 0.99), (1.0, 1.0, 0.42),
+                    (29.0 / 2, 1000.0 / 2, 0.97), (0.7, 40.0, 1e-5)):
+        assert dsp.betainc_reg(a, b, x) == pytest.approx(special.betainc(a, b, x), rel=1e-11, abs=1e-300)
+    assert dsp.betainc_reg(2.0, 3.0, 0.0) == 0.0 and dsp.betainc_reg(2.0, 3.0, 1.0) == 1.0
+    # the escape wheel's F test: 29, 39 or 59 and a few hundred degrees of freedom
+    for F, d1, d2 in ((1.0, 29, 400), (2.5, 39, 1200), (0.3, 59, 300), (8.0, 29, 900), (1e-9, 5, 5)):
+        assert dsp.f_sf(F, d1, d2) == pytest.approx(stats.f.sf(F, d1, d2), rel=1e-9, abs=1e-300)
 
 
 def test_fast_len():

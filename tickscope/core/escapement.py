@@ -239,8 +239,6 @@ def wheel_pattern(k: np.ndarray, res_s: np.ndarray) -> "WheelPattern | None":
     """Beat times that repeat with the escape wheel's turn: the residuals, less a running mean over
     each period tried (a wandering beat is no pattern), folded at the period; a one-way analysis of
     variance of the folded means (F test), its p-value corrected for every period tried."""
-    from scipy.special import fdtrc
-
     from ..model import WheelPattern
 
     k = np.asarray(k, dtype=np.int64)
@@ -269,7 +267,7 @@ def wheel_pattern(k: np.ndarray, res_s: np.ndarray) -> "WheelPattern | None":
         if within <= 0 or df2 < 1:
             continue
         F = (between / df1) / (within / df2)
-        p = float(fdtrc(df1, df2, F)) * len(tried)
+        p = dsp.f_sf(F, df1, df2) * len(tried)
         amp = float(np.sqrt(np.mean((means - means.mean()) ** 2)))
         if p < WHEEL_P and amp * 1e6 >= WHEEL_MIN_US and (best is None or p < best[0]):
             best = (p, P, amp)
