@@ -58,3 +58,28 @@ def test_off_interval_grids_and_what_the_user_says():
     assert _kind(movement="quartz", alternation_us=50000.0).kind == "stepping"
     # a 2 s grid is no escapement's beat: scatter makes it neither
     assert _kind(nominal_s=2.0, interval_s=2.0, jitter_us=5000.0).kind == "not-ticking"
+
+
+@pytest.mark.parametrize("silence_samples", [215838, 231676, 247514])
+def test_a_motor_whose_every_step_sounds_twice_is_not_two_sides_of_a_pendulum(tmp_path, silence_samples):
+    # A 1 s motor whose hand bounces 45 ms after every step (own simulator), behind this much digital
+    # silence (a capture started before the playback: the live loopback test's case): every step
+    # sounds at both places, so the seconds pendulum's rule (each side at a place of its own,
+    # core/beatsides._side_places) must not take one polarity at its bounce -- which read the
+    # motor as an escapement whose beats differ by 90 ms, with its missed step unseen.
+    import numpy as np
+    import soundfile as sf
+
+    from tickscope.core.simulate import Scenario
+    from tickscope.pipeline import analyze_samples
+    from tickscope.simulation import write_simulation
+
+    sc = Scenario(duration_s=16, first_step_s=0.6, rate_s_per_day=-6.5, snr_db=35, missed_steps=(6,),
+                  second_impact_ms=45, seed=71)
+    wav = str(tmp_path / "play.wav")
+    truth = write_simulation(wav, sc)
+    x, fs = sf.read(wav, dtype="float32")
+    x = np.concatenate([np.zeros(silence_samples, np.float32), x, np.zeros(4 * fs, np.float32)])
+    s = analyze_samples(x, fs)
+    assert s.sound == "stepping" and s.missed_steps == 1
+    assert s.steps_detected == sum(1 for st in truth["steps"] if st["kind"] == "step")

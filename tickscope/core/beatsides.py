@@ -83,6 +83,13 @@ def _side_places(buf: list[OpenImpact], w: np.ndarray, a: float, b: float) -> tu
         out.append(float(np.average(r[at], weights=w[at])))
     if abs(out[0] - out[1]) < SIDES_APART_S:
         return None
+    # a motor whose every step sounds twice (a hand's bounce 45 ms after the step) has both places
+    # on both sides, and either may win a side: the sides are at places of their own only when each
+    # side's place is empty in half the other side's slots
+    for p in (0, 1):
+        sel = near & (k % 2 == 1 - p)
+        if len(np.unique(k[sel & (np.abs(r - out[p]) <= 1.5 * bw)])) >= 0.5 * len(np.unique(k[sel])):
+            return None
     return out[0], out[1]
 
 
