@@ -197,6 +197,31 @@ def test_listen_through_the_loopback(loopback, tmp_path):
     assert json.loads(r.stdout)["steps_detected"] == n_true
 
 
+def test_listen_to_a_lever_watch_gives_its_lift_times_without_being_told(loopback, tmp_path):
+    # The lever demo (simulator truth: 28800 beats an hour, amplitude 275 deg at a 52 deg lift angle)
+    # played into the virtual microphone, with no --movement: after its first seconds listen hears it
+    # again with an escapement's window, as analyze's second pass does, and gives the lift times and
+    # the amplitude that before needed --movement escapement.
+    src = os.path.join(os.path.dirname(__file__), "..", "recordings", "bench-lever-watch.flac")
+    truth = json.load(open(src.replace(".flac", ".truth.json")))["scenario"]
+    save = str(tmp_path / "cap.flac")
+    p = _listen(["--duration", "36", "--json", "--save", save, "--lift-angle", str(truth["lift_angle_deg"])])
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < 20:
+        if os.path.exists(save + ".blocks.csv") and sum(1 for _ in open(save + ".blocks.csv")) > 5:
+            break
+        time.sleep(0.1)
+    time.sleep(0.3)
+    subprocess.run(["paplay", f"--device={loopback}", src], check=True, timeout=60)
+    out, err = p.communicate(timeout=90)
+    assert p.returncode == 0, err
+    d = json.loads(out)
+    e = d["escapement"]
+    assert d["sound"] == "escapement" and e["beats_per_hour"] == 28800
+    assert all(v is not None for v in e["lift_time_ms"]), e
+    assert abs(e["amplitude_deg"] - truth["amplitude_deg"]) <= e["amplitude_ci95_deg"]
+
+
 def test_ctrl_c_keeps_a_valid_file_and_summary(loopback, tmp_path):
     save = str(tmp_path / "stop.flac")
     p = _listen(["--json", "--save", save])

@@ -115,3 +115,45 @@ def test_block_thresholds_in_runs_equal_one_block_at_a_time():
         got = (a._block_thresholds if full else a._block_thresholds_one_by_one)(qf, q20, q50, q90, 2.5, 1e-12)
         assert got == ref
         assert list(a._floors) == list(b._floors) and list(a._spreads) == list(b._spreads)
+
+
+# -- an escapement's window on a stream (listen, log): windowprobe.WindowProbe --------------------------
+def _probe_run(x, fs, n=2048, **options):
+    from tickscope.windowprobe import WindowProbe
+
+    w = WindowProbe(fs, **options)
+    events = []
+    for i in range(0, len(x), n):
+        events += w.feed(Block(x[i:i + n], i))
+    s = w.finish()
+    events += w.drain_final_events()
+    return w, s, events
+
+
+def test_a_quartz_stream_probed_for_an_escapement_keeps_every_event_as_it_was():
+    # a stepping motor is heard with a quartz step's window, as without the probe: the same events, in
+    # the same order (held back while probing, then handed on all at once)
+    w, s, events = _probe_run(X, SC.samplerate_hz)
+    assert s.sound == "stepping" and "quartz" in w.window_note
+    assert [(e.kind, e.step, round(e.time_s, 12)) for e in events] == REF
+
+
+def test_a_lever_stream_is_heard_again_with_an_escapement_window():
+    # a lever watch (own simulator: 21600 beats an hour, 240 deg at a 50 deg lift angle) streamed with
+    # the movement unknown gives its lift times, as analyze's second pass does -- whether the stream
+    # outlasts the probe (20 s) or ends within it (8 s: decided at the end); no beat is handed on twice
+    from tickscope.core.escapesim import EscapementScenario, render_all as render_escapement
+    from tickscope.pipeline import analyze_samples
+
+    sc = EscapementScenario(movement="lever", duration_s=20.0, beats_per_hour=21600, amplitude_deg=240,
+                            lift_angle_deg=50, snr_db=30, seed=5)
+    x = render_escapement(sc)[0][:, 0].astype(np.float32)
+    for dur_s in (20.0, 8.0):
+        xx = x[:int(dur_s * sc.samplerate_hz)]
+        w, s, events = _probe_run(xx, sc.samplerate_hz, lift_angle_deg=50)
+        ref = analyze_samples(xx, sc.samplerate_hz, lift_angle_deg=50)
+        assert s.sound == "escapement" and "escapement" in w.window_note
+        assert all(v is not None for v in s.escapement.lift_time_ms)
+        assert s.escapement.amplitude_deg == ref.escapement.amplitude_deg
+        beats = [e.step for e in events if e.kind == "step"]
+        assert len(beats) == len(set(beats)) == s.steps_detected == ref.steps_detected

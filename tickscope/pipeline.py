@@ -236,6 +236,11 @@ class Analyzer:
                 self._final_events = [e for e in self._final_events if not (e.kind == "missed" and e.time_s > last)]
         return self.summary()
 
+    @property
+    def finished(self) -> bool:
+        """:meth:`finish` has been called: the stream is over."""
+        return self._finished
+
     def drain_final_events(self) -> list[Event]:
         """The events decided by :meth:`finish` (once)."""
         out, self._final_events = self._final_events, []

@@ -16,15 +16,16 @@ def run(args) -> int:
     from ..export import summary_to_dict
     from ..io.audiofile import LiveRecorder
     from ..io.capture import Capture, resolve_device
-    from ..pipeline import Analyzer
+    from ..windowprobe import WindowProbe
 
     if not 8000 <= args.samplerate <= 192000:
         raise ParameterError(f"--rate-hz {args.samplerate}: expected 8000..192000")
     dev = resolve_device(args.device)
     clock = clock_from_args(args, device_name=args.device)
-    # short processing chunks: a step reaches the screen promptly (results equal those of `analyze`)
-    an = Analyzer(args.samplerate, channel=args.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                  detector=DetectorConfig(chunk_s=0.25), **movement_options(args))
+    # short processing chunks: a step reaches the screen promptly (results equal those of `analyze`);
+    # auto: an escapement is heard again with its own window after the first seconds (lift times)
+    an = WindowProbe(args.samplerate, channel=args.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                     detector=DetectorConfig(chunk_s=0.25), **movement_options(args))
     rec = LiveRecorder(args.save, args.samplerate) if args.save else None
     # ~43 ms blocks: fewer wake-ups than the driver's default (less CPU), well inside the 0.25 s chunk
     cap = Capture(dev, args.samplerate, channel=args.channel, blocksize=2048)

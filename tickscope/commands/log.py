@@ -56,7 +56,7 @@ def _run(args, store, started: dict) -> int:
     from ..io.clips import ClipKeeper
     from ..io.profiles import host_sync_status
     from ..logsession import HISTORY_STEPS, LogSession, check_label
-    from ..pipeline import Analyzer
+    from ..windowprobe import WindowProbe
 
     segs = store.segments()
     store.init_meta(args.label or "", __version__)
@@ -74,9 +74,10 @@ def _run(args, store, started: dict) -> int:
                             time_base=clock.time_base, host_sync=host_sync_status() if plan.kind == "device" else None,
                             version=__version__)
     started["seg"] = seg
-    an = Analyzer(samplerate, channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
-                  detector=src.detector, history_steps=HISTORY_STEPS, lossy=src.info is not None and src.info.lossy,
-                  **movement_options(args))
+    # auto: an escapement is heard again with its own window after the first seconds (lift times)
+    an = WindowProbe(samplerate, channel=plan.channel, clock_ppm=clock.ppm, clock_ppm_u95=clock.u95_ppm,
+                     detector=src.detector, history_steps=HISTORY_STEPS, lossy=src.info is not None and src.info.lossy,
+                     **movement_options(args))
     clips = None
     if args.keep_audio == "anomalies":
         clips = ClipKeeper(samplerate, int(args.clip_budget_mb * 1e6), used_bytes=store.clip_bytes())
