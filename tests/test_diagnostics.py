@@ -165,6 +165,22 @@ def test_failed_steps_and_their_silent_followers():
     assert ex["seconds_lost_per_day"] == pytest.approx(6 / 119 * 86400, rel=0.02)
 
 
+@pytest.mark.parametrize("over_floor_db,twitch", [(7.3, False), (9.5, False), (16.4, True)])
+def test_a_twitch_stands_over_the_noise_floor_even_in_a_quiet_room(over_floor_db, twitch):
+    # A slot of a missed step in a quiet recording (no blips of the noise in the seconds before):
+    # white noise that happens to start an impact on the slot, 7.3 dB over the floor (a clean click
+    # train, independent SoX corpus), is no twitch; our own simulator's twitches stand 16-37 dB over
+    # it (core/slotsounds.TWITCH_OVER_FLOOR_DB)
+    from tickscope.core.acquire import OpenImpact
+    from tickscope.core.slotsounds import stands_out
+    from tickscope.core.snippets import Impact
+
+    imp = Impact(onset_sample=49 * 8000, peak_dbfs=-60.7, frame_snr_db=over_floor_db, snippet_start=0,
+                 snippet=np.zeros(8), wsnippet=np.zeros(8))
+    o = OpenImpact(imp, t_s=49.34, slot=49, match=0.23)
+    assert stands_out(o, 49.34, offgrid=[], open_impacts=[o], slot_tolerance_s=0.03) is twitch
+
+
 def test_correction_pulses_are_counted_and_not_confused_with_bounces():
     sc = Scenario(duration_s=120, failed_steps=(20, 61, 90), correction_delay_ms=35, second_impact_ms=60,
                   snr_db=30, seed=59)

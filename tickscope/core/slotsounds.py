@@ -29,6 +29,12 @@ CORRECTION_OVER_STEP_DB = 6.0
 
 #: the noise's blips a twitch must stand above: those of the seconds before (s)
 TWITCH_NOISE_S = 2.0
+#: ... and the noise floor itself (peak frame energy over the floor, dB).  A quiet recording's noise
+#: seldom starts an impact, but one on the slot of a missed step was taken for a twitch: white noise
+#: at 7 dB over the floor, on a clean click train.  The twitches of our own simulator stand 16-37 dB
+#: over it (development split), and a twitch 9 dB under the steps (TrackerConfig.weak_db) needs
+#: steps 19 dB over the floor to be heard at all; our own margin.
+TWITCH_OVER_FLOOR_DB = 10.0
 
 
 def slot_sounds(in_slot: list[OpenImpact], pred: float, open_impacts: list[OpenImpact], cfg: "TrackerConfig",
@@ -127,8 +133,11 @@ def stands_out(o: OpenImpact, pred: float, offgrid: Iterable[tuple[float, float]
     noise would be the loudest by chance once in n + 1.
     (Not those after it: the silence after a failed step lets the gain rise, whatever the
     twitch was.)  With fewer than three such sounds before it (a quiet room, or a gain that
-    had not yet risen) any weak sound on the slot that sounds like a step counts.
+    had not yet risen) any weak sound on the slot counts that stands TWITCH_OVER_FLOOR_DB over
+    the noise floor (always required).
     """
+    if not o.imp.frame_snr_db >= TWITCH_OVER_FLOOR_DB:
+        return False
     lo, hi = pred - TWITCH_NOISE_S, pred - slot_tolerance_s
     levels = [p for t, p in offgrid if lo <= t < hi]  # rejected already
     levels += [q.imp.peak_dbfs for q in open_impacts if lo <= q.t_s < hi and q is not o]  # to be rejected with this slot
